@@ -1,0 +1,3 @@
+from benchseq.cli import main
+
+raise SystemExit(main())

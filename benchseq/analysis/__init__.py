@@ -1,0 +1,1 @@
+"""Measurement core: sine fits, noise floor, rejection, capture planning (numpy only)."""

@@ -1,0 +1,349 @@
+"""Bench file -> Bench: which instrument plays which role, the scope channels, the
+generator's load mode, the injector's component values and the device pin's load.
+
+A bench file describes one lab's wiring; a plan file (benchseq.plan) what to measure.
+``load_bench(None)`` or ``load_bench("sim")`` gives the embedded simulated bench.
+All values are SI floats (V, A, Hz, F, Ω, s, V/s).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+from benchseq.errors import FileKeyError
+from benchseq.tomlfile import Section, parse_toml_text, read_toml
+
+ROLES = ("generator", "supply", "scope", "load")
+LOAD_MODES = ("50 ohm", "high-z")
+COUPLINGS = ("AC", "DC")
+SIM_ADDRESS_PREFIX = "SIM::"
+
+
+@dataclass(frozen=True)
+class InstrumentSpec:
+    """How to reach one instrument and which driver speaks to it."""
+
+    role: str
+    address: str  # a VISA resource string, or "SIM::<role>" on the embedded simulated bench
+    profile: str  # a profile name in benchseq.drivers/profiles, or a path to a profile TOML
+    driver_class: str | None = None  # "package.module:Class" for an instrument no profile fits
+    channel: int = 1
+    timeout_s: float = 5.0
+
+
+@dataclass(frozen=True)
+class GeneratorSetup:
+    """The function generator's output as the injector sees it."""
+
+    load_mode: (
+        str  # "50 ohm": displayed amplitude is into 50 Ω (EMF = 2x); "high-z": EMF = displayed
+    )
+    source_resistance: float  # Ω
+    max_amplitude_pp: float  # V, largest displayed amplitude
+    min_amplitude_pp: float  # V, smallest displayed amplitude
+    max_frequency: float  # Hz
+
+    @property
+    def emf_per_displayed(self) -> float:
+        """Open-circuit EMF per volt of displayed amplitude (2 in 50 Ω mode, 1 in high-Z)."""
+        return 2.0 if self.load_mode == "50 ohm" else 1.0
+
+
+@dataclass(frozen=True)
+class SupplySetup:
+    """The DC supply that sets the operating point (into the injector's bias filter)."""
+
+    current_limit: float  # A
+    overvoltage_protection: float  # V
+    safe_level: float  # V, where the supply is left on a safe stop (0 = output off)
+    ramp_rate: float  # V/s, largest step rate when moving the DC operating point
+
+
+@dataclass(frozen=True)
+class ScopeChannel:
+    """One scope channel: input number, probe attenuation (10 for a 10:1 probe), coupling."""
+
+    channel: int
+    probe: float
+    coupling: str  # "AC" or "DC"
+
+
+@dataclass(frozen=True)
+class ScopeSetup:
+    pin: ScopeChannel  # ripple at the device's supply pin
+    output: ScopeChannel  # ripple at the device's output
+    bandwidth_limit: float | None  # Hz, None = full bandwidth
+    calibration: str | None  # path of a channel-match calibration file, if any
+
+
+@dataclass(frozen=True)
+class LoadSetup:
+    max_current: float  # A
+
+
+@dataclass(frozen=True)
+class OpAmp:
+    """The injector's op-amp: single-pole A(s) = A0 / (1 + s·A0/(2π·GBW))."""
+
+    open_loop_gain: float  # ratio (A0), not dB
+    gain_bandwidth: float  # Hz
+    slew_rate: float  # V/s
+    output_resistance: float  # Ω, open-loop
+    current_limit: float  # A
+    output_low: float  # V, lowest output it can drive
+    output_high: float  # V, highest output it can drive
+
+
+@dataclass(frozen=True)
+class InjectorValues:
+    """Component values of the op-amp injector (names as in DESIGN.md's physics section)."""
+
+    input_resistor: float  # Ω, Rin
+    coupling_capacitor: float  # F, Cc
+    feedback_resistor: float  # Ω, Rf
+    bias_resistor: float  # Ω, Rb
+    bias_capacitor: float  # F, Cb
+    opamp: OpAmp
+
+
+@dataclass(frozen=True)
+class PinLoad:
+    """What the injector drives: the device's supply pin."""
+
+    capacitance: float  # F, the pin's decoupling capacitance
+    capacitor_esr: float = 0.0  # Ω, series resistance of that capacitor
+    load_current: float | None = None  # A, DC current the device draws (or:)
+    load_resistance: float | None = None  # Ω, DC load as a resistance
+
+    def dc_current(self, dc_level: float) -> float:
+        """DC current drawn at ``dc_level`` volts."""
+        if self.load_current is not None:
+            return self.load_current
+        if self.load_resistance is not None:
+            return dc_level / self.load_resistance
+        return 0.0
+
+
+@dataclass(frozen=True)
+class Bench:
+    name: str
+    notes: str
+    source: str  # where it came from (file path, or "sim:<scenario>")
+    text: str  # the file's text, stored in results
+    visa_library: str  # "@py" (pyvisa-py) unless the file names another
+    instruments: dict[str, InstrumentSpec]
+    generator: GeneratorSetup
+    supply: SupplySetup
+    scope: ScopeSetup
+    load: LoadSetup | None
+    injector: InjectorValues
+    pin: PinLoad
+    simulation: str | None = None  # scenario name when this is the embedded simulated bench
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def is_simulated(self) -> bool:
+        return self.simulation is not None
+
+    @property
+    def text_hash(self) -> str:
+        return hashlib.sha256(self.text.encode("utf-8")).hexdigest()
+
+
+def _instrument(section: Section, role: str) -> InstrumentSpec:
+    address = section.text("address")
+    profile = section.text("profile", default=f"scpi-{role}")
+    driver_class = section.text("driver_class", default=None)
+    if driver_class is not None and ":" not in driver_class:
+        raise section.error("driver_class", "expected 'package.module:ClassName'")
+    channel = section.integer("channel", default=1, minimum=1, maximum=64)
+    timeout = section.quantity("timeout", "s", default=5.0, positive=True)
+    return InstrumentSpec(role, address, profile, driver_class, channel, timeout)
+
+
+def _scope_channel(section: Section) -> ScopeChannel:
+    channel = section.integer("channel", minimum=1, maximum=64)
+    probe = section.number("probe", default=1.0, positive=True)
+    coupling = section.text("coupling", default="AC", choices=COUPLINGS)
+    section.done()
+    return ScopeChannel(channel, probe, coupling)
+
+
+def parse_bench(
+    data: dict[str, Any], source: str, text: str, base_dir: Path | None = None
+) -> Bench:
+    """Validate a parsed bench TOML table into a Bench."""
+    top = Section(data, source)
+    lab = top.section("lab")
+    assert lab is not None
+    name = lab.text("name")
+    notes = lab.text("notes", default="")
+    visa_library = lab.text("visa_library", default="@py")
+    simulation = lab.text("simulation", default=None)
+    lab.done()
+
+    instruments: dict[str, InstrumentSpec] = {}
+
+    gen = top.section("generator")
+    assert gen is not None
+    instruments["generator"] = _instrument(gen, "generator")
+    load_mode = gen.text("load_mode", choices=LOAD_MODES)
+    generator = GeneratorSetup(
+        load_mode=load_mode,
+        source_resistance=gen.quantity("source_resistance", "ohm", default=50.0, nonnegative=True),
+        max_amplitude_pp=gen.amplitude("max_amplitude").peak_to_peak,
+        min_amplitude_pp=gen.amplitude("min_amplitude").peak_to_peak,
+        max_frequency=gen.quantity("max_frequency", "Hz", positive=True),
+    )
+    gen.done()
+    if generator.min_amplitude_pp >= generator.max_amplitude_pp:
+        raise gen.error("min_amplitude", "must be below max_amplitude")
+
+    sup = top.section("supply")
+    assert sup is not None
+    instruments["supply"] = _instrument(sup, "supply")
+    supply = SupplySetup(
+        current_limit=sup.quantity("current_limit", "A", positive=True),
+        overvoltage_protection=sup.quantity("overvoltage_protection", "V", positive=True),
+        safe_level=sup.quantity("safe_level", "V", default=0.0, nonnegative=True),
+        ramp_rate=sup.quantity("ramp_rate", "V/s", default=5.0, positive=True),
+    )
+    sup.done()
+
+    sco = top.section("scope")
+    assert sco is not None
+    instruments["scope"] = _instrument(sco, "scope")
+    pin_section = sco.section("pin")
+    out_section = sco.section("output")
+    assert pin_section is not None and out_section is not None
+    pin_channel = _scope_channel(pin_section)
+    out_channel = _scope_channel(out_section)
+    if pin_channel.channel == out_channel.channel:
+        raise out_section.error("channel", "the pin and the output need different scope channels")
+    bandwidth = sco.raw("bandwidth_limit", default="off")
+    bandwidth_limit = (
+        None if bandwidth == "off" else sco.parse_value(bandwidth, "Hz", "bandwidth_limit")
+    )
+    calibration = sco.text("calibration", default=None)
+    if calibration is not None and base_dir is not None and not Path(calibration).is_absolute():
+        calibration = str(base_dir / calibration)
+    scope = ScopeSetup(pin_channel, out_channel, bandwidth_limit, calibration)
+    sco.done()
+
+    load: LoadSetup | None = None
+    load_section = top.section("load", required=False)
+    if load_section is not None:
+        instruments["load"] = _instrument(load_section, "load")
+        load = LoadSetup(max_current=load_section.quantity("max_current", "A", positive=True))
+        load_section.done()
+
+    inj = top.section("injector")
+    assert inj is not None
+    amp = inj.section("opamp")
+    assert amp is not None
+    gain_text = amp.raw("open_loop_gain")
+    if isinstance(gain_text, str) and gain_text.strip().endswith("dB"):
+        open_loop_gain = 10 ** (amp.parse_value(gain_text, "dB", "open_loop_gain") / 20.0)
+    else:
+        open_loop_gain = amp.parse_value(gain_text, "", "open_loop_gain")
+    if not open_loop_gain > 1:
+        raise amp.error("open_loop_gain", "must be greater than 1 (or 0 dB)")
+    opamp = OpAmp(
+        open_loop_gain=open_loop_gain,
+        gain_bandwidth=amp.quantity("gain_bandwidth", "Hz", positive=True),
+        slew_rate=amp.quantity("slew_rate", "V/s", positive=True),
+        output_resistance=amp.quantity("output_resistance", "ohm", nonnegative=True),
+        current_limit=amp.quantity("current_limit", "A", positive=True),
+        output_low=amp.quantity("output_low", "V"),
+        output_high=amp.quantity("output_high", "V"),
+    )
+    if opamp.output_high <= opamp.output_low:
+        raise amp.error("output_high", "must be above output_low")
+    amp.done()
+    injector = InjectorValues(
+        input_resistor=inj.quantity("input_resistor", "ohm", positive=True),
+        coupling_capacitor=inj.quantity("coupling_capacitor", "F", positive=True),
+        feedback_resistor=inj.quantity("feedback_resistor", "ohm", positive=True),
+        bias_resistor=inj.quantity("bias_resistor", "ohm", positive=True),
+        bias_capacitor=inj.quantity("bias_capacitor", "F", positive=True),
+        opamp=opamp,
+    )
+    inj.done()
+
+    pin_load = top.section("pin")
+    assert pin_load is not None
+    load_current = pin_load.quantity("load_current", "A", default=None, nonnegative=True)
+    load_resistance = pin_load.quantity("load_resistance", "ohm", default=None, positive=True)
+    if load_current is not None and load_resistance is not None:
+        raise pin_load.error("load_resistance", "give load_current or load_resistance, not both")
+    pin = PinLoad(
+        capacitance=pin_load.quantity("capacitance", "F", positive=True),
+        capacitor_esr=pin_load.quantity("capacitor_esr", "ohm", default=0.0, nonnegative=True),
+        load_current=load_current,
+        load_resistance=load_resistance,
+    )
+    pin_load.done()
+    top.done()
+
+    for role, spec in instruments.items():
+        simulated_address = spec.address.upper().startswith(SIM_ADDRESS_PREFIX)
+        if simulated_address and simulation is None:
+            raise FileKeyError(
+                source, f"{role}.address", "a SIM:: address needs lab.simulation to name a scenario"
+            )
+    return Bench(
+        name=name,
+        notes=notes,
+        source=source,
+        text=text,
+        visa_library=visa_library,
+        instruments=instruments,
+        generator=generator,
+        supply=supply,
+        scope=scope,
+        load=load,
+        injector=injector,
+        pin=pin,
+        simulation=simulation,
+    )
+
+
+def embedded_bench_text(scenario: str = "demo") -> str:
+    """The bench file of one of the simulated bench's scenarios (shipped in benchseq.sim)."""
+    folder = resources.files("benchseq.sim") / "scenarios"
+    resource = folder / f"{scenario}.bench.toml"
+    if not resource.is_file():
+        available = sorted(
+            p.name.removesuffix(".bench.toml")
+            for p in folder.iterdir()
+            if p.name.endswith(".bench.toml")
+        )
+        raise FileKeyError(
+            f"sim:{scenario}", "", f"no such simulated scenario; available: {', '.join(available)}"
+        )
+    return resource.read_text(encoding="utf-8")
+
+
+def load_bench(path: str | Path | None) -> Bench:
+    """Load a bench file; None, "sim" or "sim:<scenario>" give the embedded simulated bench."""
+    if path is None or str(path) == "sim" or str(path).startswith("sim:"):
+        scenario = "demo" if path is None or str(path) == "sim" else str(path)[4:]
+        source = f"sim:{scenario}"
+        text, data = parse_toml_text(embedded_bench_text(scenario), source)
+        return parse_bench(data, source, text)
+    text, data = read_toml(path)
+    return parse_bench(data, str(path), text, base_dir=Path(path).parent)
+
+
+def describe_band(low: float, high: float) -> str:
+    """'15.2 Hz – 2.3 MHz' style text for a frequency band (used by reports and the CLI)."""
+    from benchseq.units import format_si
+
+    if not math.isfinite(high):
+        return f"from {format_si(low, 'Hz', 3)}"
+    return f"{format_si(low, 'Hz', 3)} – {format_si(high, 'Hz', 3)}"

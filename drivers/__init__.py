@@ -1,0 +1,1 @@
+"""Generic SCPI instrument drivers and instrument profiles (benchseq.drivers)."""

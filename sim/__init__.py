@@ -1,0 +1,1 @@
+"""The simulated bench: circuit, device models, SCPI instruments and servers (benchseq.sim)."""
