@@ -667,7 +667,7 @@ def _describe(feas: Feasibility, i: int, code: str, severity: str) -> str:
     if code == "outside-usable-band":
         return (
             f"at {f} the injector's gain is {float(feas.gain_error_db[i]):+.2f} dB off its "
-            f"passband: the pin ripple leans on the model (it is measured, and trimmed)"
+            f"passband: the pin ripple there relies on the model more than in the passband"
         )
     if code == "gbw-sensitive":
         return (

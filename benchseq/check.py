@@ -1,0 +1,539 @@
+"""The `check` and `injector` reports: a plan's feasibility and bench time, the injector's response.
+
+``check_plan(plan, bench)`` expands the plan, runs the injector model's feasibility check on
+every point (and on the linearity repeats), estimates the bench time and groups the
+verdicts by reason. ``injector_report(bench, ripple)`` tabulates the injector at spot
+frequencies. Both give plain data with ``to_dict()``; ``render_check`` / ``render_injector``
+build rich renderables for the CLI, ``plot_injector`` writes a Bode-style PNG.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from benchseq.bench import Bench, describe_band
+from benchseq.injector import REASON_TITLES, REASONS, Corners, Feasibility, InjectorModel
+from benchseq.units import Amplitude, format_si
+
+if TYPE_CHECKING:
+    from benchseq.plan import Plan
+
+SPOT_FREQUENCIES = (10.0, 100.0, 1e3, 10e3, 100e3, 1e6, 10e6)  # Hz
+BIAS_SETTLE_TIME_CONSTANTS = 7.0  # the sequencer waits 7 x Rb·Cb after moving the DC level
+LOW_PHASE_MARGIN_DEG = 45.0
+PEAKING_WARN_DB = 1.0
+WORST_LISTED = 10
+
+
+def _plain(value: Any) -> Any:
+    """JSON-able: numpy scalars to Python, non-finite floats to None, complex to re/im."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [_plain(v) for v in value.tolist()]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, complex):
+        return {"re": _plain(value.real), "im": _plain(value.imag)}
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def corners_dict(corners: Corners) -> dict[str, Any]:
+    return _plain({name: getattr(corners, name) for name in corners.__dataclass_fields__})
+
+
+def bench_warnings(model: InjectorModel, corners: Corners) -> list[str]:
+    """Things about the injector itself a bench engineer should know before a run."""
+    notes = []
+    if math.isfinite(corners.phase_margin_deg) and corners.phase_margin_deg < LOW_PHASE_MARGIN_DEG:
+        notes.append(
+            f"the injector's loop has {corners.phase_margin_deg:.0f}° phase margin "
+            f"(crossover {format_si(corners.crossover_hz, 'Hz', 3)}): the op-amp's "
+            f"{format_si(model.opamp.output_resistance, 'Ω', 3)} output resistance with the pin's "
+            f"{format_si(model.pin.capacitance, 'F', 3)} puts a pole inside the loop; "
+            "an isolation resistor or less pin capacitance restores it"
+        )
+    if corners.peaking_db > PEAKING_WARN_DB:
+        notes.append(
+            f"the injector's gain peaks {corners.peaking_db:.1f} dB above its passband at "
+            f"{format_si(corners.peak_hz, 'Hz', 3)}"
+        )
+    return notes
+
+
+# -- check_plan ------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class ReasonGroup:
+    """All points sharing one reason at one severity, with the worst of them."""
+
+    code: str
+    severity: str  # "refused" | "marginal"
+    title: str
+    count: int
+    worst_point: int  # index into CheckReport's points (sweep points first, then repeats)
+    worst_text: str
+    first_points: tuple[int, ...]
+
+
+@dataclass(frozen=True)
+class PointVerdict:
+    index: int  # sweep point id, or n + k for the k-th linearity repeat
+    kind: str  # "sweep" | "linearity"
+    frequency: float
+    ripple_peak: float
+    dc_level: float
+    load_current: float
+    verdict: str
+    generator_pp: float
+    messages: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class CheckReport:
+    plan_source: str
+    plan_title: str
+    bench_name: str
+    bench_source: str
+    point_count: int  # sweep points
+    repeat_count: int  # linearity repeats (checked too)
+    ok_count: int
+    marginal_count: int
+    refused_count: int
+    estimated_time_s: float
+    time_breakdown: dict[str, float]  # s, per activity
+    capture_estimate: str  # how capture time was estimated
+    corners: Corners
+    warnings: tuple[str, ...]
+    groups: tuple[ReasonGroup, ...]
+    worst: tuple[PointVerdict, ...]
+    feasibility: Feasibility = field(repr=False)
+
+    @property
+    def exit_code(self) -> int:
+        """0 when no point is refused, 1 otherwise."""
+        return 1 if self.refused_count else 0
+
+    @property
+    def all_feasible(self) -> bool:
+        return self.refused_count == 0
+
+    def to_dict(self) -> dict[str, Any]:
+        return _plain(
+            {
+                "plan": {"source": self.plan_source, "title": self.plan_title},
+                "bench": {"name": self.bench_name, "source": self.bench_source},
+                "point_count": self.point_count,
+                "repeat_count": self.repeat_count,
+                "ok": self.ok_count,
+                "marginal": self.marginal_count,
+                "refused": self.refused_count,
+                "all_feasible": self.all_feasible,
+                "estimated_time_s": self.estimated_time_s,
+                "time_breakdown_s": self.time_breakdown,
+                "capture_estimate": self.capture_estimate,
+                "corners": corners_dict(self.corners),
+                "warnings": list(self.warnings),
+                "reasons": [g.__dict__ for g in self.groups],
+                "worst_points": [p.__dict__ for p in self.worst],
+            }
+        )
+
+
+def _linearity_points(plan: Plan, sweep: Any) -> dict[str, np.ndarray]:
+    """The linearity repeats: each sweep point at a chosen frequency, x each factor."""
+    empty = np.zeros(0)
+    lin = getattr(plan, "linearity", None)
+    if lin is None or len(lin.frequencies) == 0:
+        return {"frequency": empty, "ripple_peak": empty, "dc_level": empty, "load_current": empty}
+    chosen = np.isclose(sweep.frequency[:, None], np.asarray(lin.frequencies)[None, :], rtol=1e-3)
+    at = np.nonzero(chosen.any(axis=1))[0]
+    factors = np.asarray(lin.factors, dtype=float)
+    return {
+        "frequency": np.repeat(sweep.frequency[at], factors.size),
+        "ripple_peak": (sweep.ripple_peak[at][:, None] * factors[None, :]).ravel(),
+        "dc_level": np.repeat(sweep.dc_level[at], factors.size),
+        "load_current": np.repeat(sweep.load_current[at], factors.size),
+    }
+
+
+def capture_seconds(frequency: np.ndarray, plan: Plan) -> tuple[np.ndarray, str]:
+    """Capture time per point: the analysis capture planner when present, else cycle-bound."""
+    rules = plan.capture
+    cycles = rules.min_cycles / np.asarray(frequency, dtype=float)
+    estimate = np.minimum(np.maximum(cycles, 1e-3), rules.max_time_s)
+    return estimate, (
+        f"cycle-bound estimate: max({rules.min_cycles} cycles, 1 ms) per point, at most "
+        f"{format_si(rules.max_time_s, 's', 3)}; no averaging or range retries (a lower bound)"
+    )
+
+
+def _time_budget(
+    plan: Plan, bench: Bench, sweep: Any, repeats: dict[str, np.ndarray], corners: Corners
+) -> tuple[float, dict[str, float], str]:
+    n = len(sweep)
+    settle_each = plan.settle.fixed_s + plan.settle.time_constants * corners.slowest_time_constant_s
+    dc = np.asarray(sweep.dc_level, dtype=float)
+    load = np.asarray(sweep.load_current, dtype=float)
+    previous_dc = np.concatenate([[0.0], dc[:-1]])
+    dc_moves = np.abs(dc - previous_dc) > 1e-9
+    load_key = np.where(np.isfinite(load), load, -1.0)
+    load_moves = np.concatenate(
+        [[np.isfinite(load[0])] if n else [], load_key[1:] != load_key[:-1]]
+    )
+    ramp = float(np.sum(np.abs(dc - previous_dc))) / bench.supply.ramp_rate
+    bias_wait = (
+        BIAS_SETTLE_TIME_CONSTANTS
+        * bench.injector.bias_resistor
+        * bench.injector.bias_capacitor
+        * float(np.count_nonzero(dc_moves))
+    )
+    operating = plan.settle.operating_point_s * float(np.count_nonzero(dc_moves | load_moves))
+    captures, method = capture_seconds(
+        np.concatenate([sweep.frequency, repeats["frequency"]]), plan
+    )
+    floor = getattr(plan, "floor", None)
+    floor_s = 0.0
+    if floor is not None:
+        if floor.every_point:
+            floor_s = float(np.sum(captures[:n]))
+        elif len(floor.frequencies):
+            hit = np.isclose(
+                sweep.frequency[:, None], np.asarray(floor.frequencies)[None, :], rtol=1e-3
+            )
+            floor_s = float(np.sum(captures[:n][hit.any(axis=1)]))
+    breakdown = {
+        "settling": settle_each * (n + repeats["frequency"].size),
+        "dc_ramps": ramp,
+        "bias_filter": bias_wait,
+        "operating_point_waits": operating,
+        "captures": float(np.sum(captures)),
+        "floor_captures": floor_s,
+    }
+    return float(sum(breakdown.values())), breakdown, method
+
+
+def check_plan(plan: Plan, bench: Bench) -> CheckReport:
+    """Feasibility of every planned point (and linearity repeat), bench time, reasons."""
+    model = InjectorModel(bench.injector, bench.generator, bench.pin)
+    corners = model.corners()
+    sweep = plan.expand()
+    n = len(sweep)
+    repeats = _linearity_points(plan, sweep)
+    device = plan.device
+    if bench.load is not None and (
+        device.max_load_current is None or bench.load.max_current < device.max_load_current
+    ):
+        device = _Limits(device.absolute_max_v, device.min_operating_v, bench.load.max_current)
+    feas = model.feasibility(
+        np.concatenate([sweep.frequency, repeats["frequency"]]),
+        np.concatenate([sweep.ripple_peak, repeats["ripple_peak"]]),
+        np.concatenate([sweep.dc_level, repeats["dc_level"]]),
+        np.concatenate([sweep.load_current, repeats["load_current"]]),
+        device=device,
+    )
+    total, breakdown, method = _time_budget(plan, bench, sweep, repeats, corners)
+    groups = _groups(feas)
+    worst_ids = sorted({g.worst_point for g in groups if g.severity == "refused"})
+    worst_ids += sorted(
+        {g.worst_point for g in groups if g.severity == "marginal"} - set(worst_ids)
+    )
+    worst = tuple(_point(feas, i, n) for i in worst_ids[:WORST_LISTED])
+    return CheckReport(
+        plan_source=plan.source,
+        plan_title=plan.title,
+        bench_name=bench.name,
+        bench_source=bench.source,
+        point_count=n,
+        repeat_count=int(repeats["frequency"].size),
+        ok_count=int(np.count_nonzero(feas.ok)),
+        marginal_count=int(np.count_nonzero(feas.marginal)),
+        refused_count=int(np.count_nonzero(feas.refused)),
+        estimated_time_s=total,
+        time_breakdown=breakdown,
+        capture_estimate=method,
+        corners=corners,
+        warnings=tuple(bench_warnings(model, corners)),
+        groups=groups,
+        worst=worst,
+        feasibility=feas,
+    )
+
+
+@dataclass(frozen=True)
+class _Limits:
+    absolute_max_v: float
+    min_operating_v: float
+    max_load_current: float | None
+
+
+def _groups(feas: Feasibility) -> tuple[ReasonGroup, ...]:
+    out = []
+    for severity in ("refused", "marginal"):
+        for code in REASONS:
+            ids = feas.indices(code, severity)
+            if ids.size == 0:
+                continue
+            worst = int(ids[np.argmax(np.nan_to_num(feas.severity[code][ids], nan=-np.inf))])
+            text = next(
+                (
+                    m
+                    for (c, _), m in zip(feas.reasons(worst), feas.messages(worst), strict=True)
+                    if c == code
+                ),
+                REASON_TITLES[code],
+            )
+            out.append(
+                ReasonGroup(
+                    code=code,
+                    severity=severity,
+                    title=REASON_TITLES[code],
+                    count=int(ids.size),
+                    worst_point=worst,
+                    worst_text=text,
+                    first_points=tuple(int(i) for i in ids[:20]),
+                )
+            )
+    return tuple(out)
+
+
+def _point(feas: Feasibility, i: int, n: int) -> PointVerdict:
+    return PointVerdict(
+        index=i,
+        kind="sweep" if i < n else "linearity",
+        frequency=float(feas.frequency[i]),
+        ripple_peak=float(feas.ripple_peak[i]),
+        dc_level=float(feas.dc_level[i]),
+        load_current=float(feas.dc_current[i]),
+        verdict=str(feas.verdict[i]),
+        generator_pp=float(feas.generator_pp[i]),
+        messages=tuple(feas.messages(i)),
+    )
+
+
+# -- injector_report ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class SpotRow:
+    frequency: float  # Hz
+    gain: complex  # V_pin / V_emf
+    gain_db: float
+    phase_deg: float
+    pin_per_displayed: float  # V_pin per displayed generator volt (magnitude)
+    dc_path_db: float  # |V_pin / V_dc| in dB
+    output_impedance: float  # Ω, magnitude
+    usable: bool
+    generator_pp: float | None  # displayed Vpp for the asked ripple (None without one)
+    verdict: str | None  # feasibility of that ripple at this frequency (no device limits)
+
+
+@dataclass(frozen=True)
+class InjectorReport:
+    bench_name: str
+    load_mode: str
+    corners: Corners
+    ripple: Amplitude | None
+    full_power_bandwidth_hz: float | None  # SR/(2π·ripple peak), for the asked ripple
+    rows: tuple[SpotRow, ...]
+    warnings: tuple[str, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        return _plain(
+            {
+                "bench": self.bench_name,
+                "generator_load_mode": self.load_mode,
+                "corners": corners_dict(self.corners),
+                "usable_band_hz": list(self.corners.usable_band),
+                "ripple_peak": None if self.ripple is None else self.ripple.peak,
+                "ripple_as_written": None if self.ripple is None else self.ripple.as_written(),
+                "full_power_bandwidth_hz": self.full_power_bandwidth_hz,
+                "spot": [row.__dict__ for row in self.rows],
+                "warnings": list(self.warnings),
+            }
+        )
+
+
+def injector_report(bench: Bench, ripple: Amplitude | None = None) -> InjectorReport:
+    """The injector at the spot frequencies, its corners and usable band, generator set-points."""
+    model = InjectorModel(bench.injector, bench.generator, bench.pin)
+    corners = model.corners()
+    f = np.array(SPOT_FREQUENCIES)
+    gain = model.ac_gain(f)
+    usable = model.usable_mask(f)
+    dc_path = 20 * np.log10(np.abs(model.dc_gain(f)))
+    zout = np.abs(model.output_impedance(f))
+    per_displayed = np.abs(model.pin_per_displayed(f))
+    setting: list[float | None] = [None] * f.size
+    verdicts: list[str | None] = [None] * f.size
+    fpbw = None
+    if ripple is not None:
+        setting = list(model.generator_setting_pp(f, ripple.peak))
+        # the DC level belongs to a plan: judge the ripple at the middle of the output swing
+        dc = 0.5 * (model.opamp.output_low + model.opamp.output_high)
+        verdicts = list(model.feasibility(f, ripple.peak, dc).verdict)
+        fpbw = model.full_power_bandwidth(ripple.peak)
+    rows = tuple(
+        SpotRow(
+            frequency=float(f[k]),
+            gain=complex(gain[k]),
+            gain_db=float(20 * np.log10(abs(gain[k]))),
+            phase_deg=float(np.degrees(np.angle(gain[k]))),
+            pin_per_displayed=float(per_displayed[k]),
+            dc_path_db=float(dc_path[k]),
+            output_impedance=float(zout[k]),
+            usable=bool(usable[k]),
+            generator_pp=None if setting[k] is None else float(setting[k]),
+            verdict=verdicts[k],
+        )
+        for k in range(f.size)
+    )
+    return InjectorReport(
+        bench_name=bench.name,
+        load_mode=bench.generator.load_mode,
+        corners=corners,
+        ripple=ripple,
+        full_power_bandwidth_hz=fpbw,
+        rows=rows,
+        warnings=tuple(bench_warnings(model, corners)),
+    )
+
+
+def plot_injector(bench: Bench, path: str | Path, ripple: Amplitude | None = None) -> Path:
+    """A Bode-style PNG: pin ripple per EMF and the DC path, with corners and usable band."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    model = InjectorModel(bench.injector, bench.generator, bench.pin)
+    corners = model.corners()
+    f = np.logspace(0, 8, 800)
+    gain = model.ac_gain(f)
+    fig = Figure(figsize=(8, 6), dpi=110)
+    FigureCanvasAgg(fig)
+    mag, phase = fig.subplots(2, 1, sharex=True)
+    mag.semilogx(f, 20 * np.log10(np.abs(gain)), label="pin / generator EMF")
+    mag.semilogx(f, 20 * np.log10(np.abs(model.dc_gain(f))), label="pin / DC set-point", ls="--")
+    phase.semilogx(f, np.degrees(np.unwrap(np.angle(gain))), label="pin / generator EMF")
+    lo, hi = corners.usable_band
+    for axis in (mag, phase):
+        if math.isfinite(lo) and math.isfinite(hi):
+            axis.axvspan(lo, hi, color="tab:green", alpha=0.08, label="usable band")
+        for x in (corners.highpass_hz, corners.minus3db_hz):
+            if math.isfinite(x):
+                axis.axvline(x, color="grey", lw=0.8, ls=":")
+        axis.grid(True, which="both", alpha=0.3)
+    mag.set_ylabel("gain (dB)")
+    mag.set_ylim(max(-80.0, float(np.min(20 * np.log10(np.abs(gain))))), None)
+    phase.set_ylabel("phase (°)")
+    phase.set_xlabel("frequency (Hz)")
+    title = f"{bench.name}: injector ({bench.generator.load_mode} generator)"
+    if ripple is not None:
+        title += f", {ripple.as_written()} at the pin"
+    mag.set_title(title, fontsize=9)
+    mag.legend(fontsize=8, loc="lower center")
+    fig.tight_layout()
+    out = Path(path)
+    fig.savefig(out)
+    return out
+
+
+# -- rich renderables (for the CLI) -------------------------------------------------------------
+def _duration(seconds: float) -> str:
+    if seconds < 120:
+        return f"{seconds:.1f} s"
+    minutes = seconds / 60
+    if minutes < 120:
+        return f"{minutes:.1f} min"
+    return f"{minutes / 60:.1f} h"
+
+
+def render_check(report: CheckReport) -> Any:
+    """A rich renderable of a CheckReport."""
+    from rich.console import Group
+    from rich.table import Table
+    from rich.text import Text
+
+    head = Text()
+    head.append(f"{report.plan_title}  ", style="bold")
+    head.append(f"on {report.bench_name}\n")
+    head.append(f"{report.point_count} points")
+    if report.repeat_count:
+        head.append(f" + {report.repeat_count} linearity repeats")
+    head.append(
+        f"; about {_duration(report.estimated_time_s)} on the bench ({report.capture_estimate})\n"
+    )
+    head.append(f"ok {report.ok_count}", style="green")
+    head.append("  ")
+    head.append(f"marginal {report.marginal_count}", style="yellow")
+    head.append("  ")
+    head.append(f"refused {report.refused_count}", style="red bold" if report.refused_count else "")
+    c = report.corners
+    head.append(
+        f"\ninjector: passband {c.passband_gain:.3f} V/V, usable {describe_band(*c.usable_band)}"
+    )
+    parts: list[Any] = [head]
+    for note in report.warnings:
+        parts.append(Text(f"note: {note}", style="yellow"))
+    if report.groups:
+        table = Table(title="reasons", title_justify="left")
+        for name in ("verdict", "reason", "points", "worst case"):
+            table.add_column(name)
+        for g in report.groups:
+            style = "red" if g.severity == "refused" else "yellow"
+            table.add_row(Text(g.severity, style=style), g.title, str(g.count), g.worst_text)
+        parts.append(table)
+    return Group(*parts)
+
+
+def render_injector(report: InjectorReport) -> Any:
+    """A rich renderable of an InjectorReport."""
+    from rich.console import Group
+    from rich.table import Table
+    from rich.text import Text
+
+    c = report.corners
+    head = Text()
+    head.append(f"{report.bench_name}\n", style="bold")
+    head.append(
+        f"passband {c.passband_gain:.3f} V/V ({20 * math.log10(abs(c.passband_gain)):.2f} dB), "
+        f"noise gain {c.noise_gain:.3f}; high-pass {format_si(c.highpass_hz, 'Hz', 3)}, "
+        f"bias low-pass {format_si(c.bias_lowpass_hz, 'Hz', 3)}; "
+        f"−3 dB {format_si(c.minus3db_hz, 'Hz', 3)} "
+        f"(GBW/noise gain {format_si(c.minus3db_estimate_hz, 'Hz', 3)})\n"
+        f"usable band {describe_band(*c.usable_band)}; phase margin {c.phase_margin_deg:.0f}°; "
+        f"settling time constant {format_si(c.slowest_time_constant_s, 's', 3)}; "
+        f"generator in {report.load_mode} mode"
+    )
+    if report.ripple is not None and report.full_power_bandwidth_hz is not None:
+        head.append(
+            f"\n{report.ripple.as_written()} at the pin; full-power bandwidth "
+            f"{format_si(report.full_power_bandwidth_hz, 'Hz', 3)}"
+        )
+    table = Table(title="spot frequencies", title_justify="left")
+    columns = ["frequency", "gain dB", "phase °", "pin/displayed", "DC path dB", "|Zout|", "usable"]
+    if report.ripple is not None:
+        columns += ["generator", "verdict"]
+    for name in columns:
+        table.add_column(name, justify="right")
+    for row in report.rows:
+        cells = [
+            format_si(row.frequency, "Hz", 3),
+            f"{row.gain_db:.3f}",
+            f"{row.phase_deg:.1f}",
+            f"{row.pin_per_displayed:.4f}",
+            f"{row.dc_path_db:.1f}",
+            format_si(row.output_impedance, "Ω", 3),
+            "yes" if row.usable else "no",
+        ]
+        if report.ripple is not None:
+            cells += [format_si(row.generator_pp or math.nan, "Vpp", 3), row.verdict or ""]
+        table.add_row(*cells)
+    parts: list[Any] = [head, table]
+    parts += [Text(f"note: {note}", style="yellow") for note in report.warnings]
+    return Group(*parts)
