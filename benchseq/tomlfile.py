@@ -84,9 +84,10 @@ class Section:
 
     # -- typed getters -------------------------------------------------------------
     def section(self, key: str, required: bool = True) -> Section | None:
-        value = self.raw(key, _MISSING if required else None)
-        if value is None:
+        if not required and key not in self.data:
+            self._used.add(key)
             return None
+        value = self.raw(key)
         if not isinstance(value, dict):
             raise self.error(key, f"expected a table, got {_kind(value)}")
         return Section(value, self.source, self.key_path(key))

@@ -35,7 +35,7 @@ _UNIT_SPELLINGS: dict[str, tuple[str, ...]] = {
     "A": ("A",),
     "Hz": ("Hz", "hz", "HZ"),
     "F": ("F",),
-    "ohm": ("Ω", "Ω", "ohm", "Ohm", "ohms", "R"),
+    "ohm": ("Ω", "\u2126", "ohm", "Ohm", "ohms", "R"),
     "s": ("s", "sec"),
     "V/s": ("V/s",),
     "dB": ("dB",),
