@@ -17,7 +17,14 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from benchseq.bench import Bench, describe_band
-from benchseq.injector import REASON_TITLES, REASONS, Corners, Feasibility, InjectorModel
+from benchseq.injector import (
+    REASON_TITLES,
+    REASONS,
+    Corners,
+    DeviceLimitsLike,
+    Feasibility,
+    InjectorModel,
+)
 from benchseq.units import Amplitude, format_si
 
 if TYPE_CHECKING:
@@ -228,7 +235,7 @@ def check_plan(plan: Plan, bench: Bench) -> CheckReport:
     sweep = plan.expand()
     n = len(sweep)
     repeats = _linearity_points(plan, sweep)
-    device = plan.device
+    device: DeviceLimitsLike = plan.device
     if bench.load is not None and (
         device.max_load_current is None or bench.load.max_current < device.max_load_current
     ):
@@ -239,6 +246,7 @@ def check_plan(plan: Plan, bench: Bench) -> CheckReport:
         np.concatenate([sweep.dc_level, repeats["dc_level"]]),
         np.concatenate([sweep.load_current, repeats["load_current"]]),
         device=device,
+        supply_protection_v=bench.supply.overvoltage_protection,
     )
     total, breakdown, method = _time_budget(plan, bench, sweep, repeats, corners)
     groups = _groups(feas)
@@ -374,7 +382,7 @@ def injector_report(bench: Bench, ripple: Amplitude | None = None) -> InjectorRe
     verdicts: list[str | None] = [None] * f.size
     fpbw = None
     if ripple is not None:
-        setting = list(model.generator_setting_pp(f, ripple.peak))
+        setting = [float(x) for x in model.generator_setting_pp(f, ripple.peak)]
         # the DC level belongs to a plan: judge the ripple at the middle of the output swing
         dc = 0.5 * (model.opamp.output_low + model.opamp.output_high)
         verdicts = list(model.feasibility(f, ripple.peak, dc).verdict)
@@ -389,7 +397,7 @@ def injector_report(bench: Bench, ripple: Amplitude | None = None) -> InjectorRe
             dc_path_db=float(dc_path[k]),
             output_impedance=float(zout[k]),
             usable=bool(usable[k]),
-            generator_pp=None if setting[k] is None else float(setting[k]),
+            generator_pp=setting[k],
             verdict=verdicts[k],
         )
         for k in range(f.size)

@@ -51,6 +51,7 @@ REASONS: tuple[str, ...] = (
     "device-absolute-max",
     "device-min-operating",
     "device-load-current",
+    "supply-overvoltage",
     "outside-usable-band",
     "gbw-sensitive",
 )
@@ -66,6 +67,7 @@ REASON_TITLES: dict[str, str] = {
     "device-absolute-max": "DC + ripple above the device's absolute maximum",
     "device-min-operating": "DC − ripple below the device's minimum operating level",
     "device-load-current": "load current above the device's maximum",
+    "supply-overvoltage": "DC set-point at the supply's over-voltage protection",
     "outside-usable-band": "outside the injector's usable band (gain off passband)",
     "gbw-sensitive": "gain sensitive to the op-amp's gain-bandwidth",
 }
@@ -74,9 +76,12 @@ REASON_TITLES: dict[str, str] = {
 class DeviceLimitsLike(Protocol):
     """What feasibility needs of the device (benchseq.plan.DeviceLimits fits)."""
 
-    absolute_max_v: float
-    min_operating_v: float
-    max_load_current: float | None
+    @property
+    def absolute_max_v(self) -> float: ...
+    @property
+    def min_operating_v(self) -> float: ...
+    @property
+    def max_load_current(self) -> float | None: ...
 
 
 @dataclass(frozen=True)
@@ -382,12 +387,24 @@ class InjectorModel:
         *,
         device: DeviceLimitsLike | None = None,
         margins: Margins | None = None,
+        supply_protection_v: float | None = None,
     ) -> Feasibility:
         """Per planned point: ok / marginal / refused with reason codes (vectorised).
 
         ``frequency`` Hz, ``ripple_peak`` V peak at the pin, ``dc_level`` V at the pin,
-        ``load_current`` A (nan or None: the bench's pin load sets the DC current)."""
-        return _evaluate(self, frequency, ripple_peak, dc_level, load_current, device, margins)
+        ``load_current`` A (nan or None: the bench's pin load sets the DC current);
+        ``device`` limits (None: not checked); ``supply_protection_v`` the set-point supply's
+        over-voltage protection (None: not checked)."""
+        return _evaluate(
+            self,
+            frequency,
+            ripple_peak,
+            dc_level,
+            load_current,
+            device,
+            margins,
+            supply_protection_v,
+        )
 
     def sweep_feasibility(
         self, sweep: Any, device: DeviceLimitsLike | None = None, margins: Margins | None = None
@@ -477,6 +494,7 @@ def _evaluate(
     load_current: Any,
     device: DeviceLimitsLike | None,
     margins: Margins | None,
+    supply_protection_v: float | None = None,
 ) -> Feasibility:
     """The vectorised feasibility check behind InjectorModel.feasibility."""
     m = margins or Margins()
@@ -537,6 +555,12 @@ def _evaluate(
             "device-load-current": (
                 np.abs(dc_current) / max_load if max_load else np.zeros(f.shape)
             ),
+            "supply-overvoltage": (
+                model.supply_setting(vdc, np.where(pin.load_resistance is None, dc_current, 0.0))
+                / supply_protection_v
+                if supply_protection_v
+                else np.zeros(f.shape)
+            ),
             "outside-usable-band": np.abs(gain_error),
             "gbw-sensitive": sensitivity,
         }
@@ -551,6 +575,7 @@ def _evaluate(
         "device-absolute-max": 0.0,
         "device-min-operating": 0.0,
         "device-load-current": 1.0,
+        "supply-overvoltage": 0.999,
     }
     flag_at = {
         "generator-amplitude-high": m.generator_fraction,
@@ -585,6 +610,7 @@ def _evaluate(
         "absolute_max_v": absolute_max,
         "min_operating_v": min_operating,
         "max_load_current": math.nan if max_load is None else max_load,
+        "supply_protection_v": math.nan if supply_protection_v is None else supply_protection_v,
     }
     return Feasibility(
         frequency=f,
@@ -631,9 +657,9 @@ def _describe(feas: Feasibility, i: int, code: str, severity: str) -> str:
             f"{format_si(lim['generator_min_pp'], 'Vpp', 3)} minimum"
         )
     if code == "slew-rate":
-        need = float(feas.slew_needed[i]) / 1e6
+        slew = float(feas.slew_needed[i]) / 1e6
         return (
-            f"{format_si(vpk, 'Vpk', 3)} at {f} needs {need:.3g} V/µs at the op-amp output, "
+            f"{format_si(vpk, 'Vpk', 3)} at {f} needs {slew:.3g} V/µs at the op-amp output, "
             f"{word} its {lim['slew_rate'] / 1e6:.3g} V/µs slew rate"
         )
     if code == "output-current":
@@ -663,6 +689,11 @@ def _describe(feas: Feasibility, i: int, code: str, severity: str) -> str:
         return (
             f"load current {format_si(float(feas.dc_current[i]), 'A', 3)} is over the device's "
             f"{format_si(lim['max_load_current'], 'A', 3)} maximum"
+        )
+    if code == "supply-overvoltage":
+        return (
+            f"DC {vdc:.4g} V needs the set-point supply at its "
+            f"{lim['supply_protection_v']:.4g} V over-voltage protection: it would trip"
         )
     if code == "outside-usable-band":
         return (

@@ -280,3 +280,13 @@ def test_invalid_points_and_vectors() -> None:
     assert list(result.verdict) == ["refused", "refused"]
     many = model.feasibility(np.logspace(1, 6, 10_000), 0.05, 5.0, device=DEVICE)
     assert len(many) == 10_000 and many.verdict.shape == (10_000,)
+
+
+def test_supply_overvoltage_protection() -> None:
+    """A DC set-point at the supply's over-voltage protection would trip it (FIELD.md:
+    set over-voltage limits before any output turns on): refused when checked."""
+    model = demo_model()
+    result = model.feasibility(1e3, 0.05, [6.6, 5.0], supply_protection_v=6.5)
+    assert result.refused_bits[0] & REASON_BIT["supply-overvoltage"]
+    assert result.verdict[1] == "ok"
+    assert "over-voltage" in " ".join(result.messages(0))
