@@ -495,8 +495,8 @@ def _frequencies(sweep: Section) -> np.ndarray:
 
 
 def _band(band: Section) -> list[float]:
-    """One band: {from, to, per_decade} (log), {from, to, step} or {from, to, points}
-    (linear), or {at = [...]} (a list)."""
+    """One band: {from, to, per_decade} (log: from x 10^(k/per_decade), and to), {from, to,
+    step} or {from, to, points} (linear), or {at = [...]} (a list)."""
     _only(band, ("from", "to", "per_decade", "step", "points", "at"))
     if band.has("at"):
         for other in ("from", "to", "per_decade", "step", "points"):
@@ -531,13 +531,15 @@ def _band(band: Section) -> list[float]:
         raise band.error(
             "per_decade", f"gives {count_f + 1:,.0f} frequencies; at most {MAX_FREQUENCIES:,}"
         )
-    intervals = math.ceil(count_f - 1e-9)
-    if intervals < 1:
-        return [start]
-    values = start * 10.0 ** (np.arange(intervals + 1) * (decades / intervals))
-    values[0], values[-1] = start, stop
+    # A grid anchored at `from` (a decade start keeps every decade point, whatever `to` is);
+    # `to` is appended when it is off the grid, so the last interval may be shorter.
+    steps = math.floor(count_f + 1e-9)
+    values = _clean(start * 10.0 ** (np.arange(steps + 1) / per_decade))
+    values[0] = start
+    if stop > values[-1] * (1 + 1e-9):
+        values = np.append(values, stop)
     band.done()
-    return list(_clean(values))
+    return list(values)
 
 
 # -- the other tables ----------------------------------------------------------------------

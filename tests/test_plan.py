@@ -88,7 +88,7 @@ def test_overnight_plan_counts_and_order() -> None:
     assert plan.axes == ("load", "dc", "ripple", "frequency")
     assert np.all(sweep.load_current[:416] == 0.01) and np.all(sweep.load_current[416:] == 0.1)
     assert list(sweep.dc_level[::104][:4]) == [4.2, 4.5, 5.0, 5.5]
-    assert list(sweep.ripple_peak[:104:52]) == [0.05, 0.1]
+    assert list(sweep.ripple_peak[:104:52]) == [0.05, 0.075]
     assert np.array_equal(sweep.frequency[:52], plan.frequencies)
     assert np.array_equal(sweep.index, np.arange(832))
     assert plan.linearity is not None and list(plan.linearity.frequencies) == [1e3, 1e5]
@@ -103,6 +103,18 @@ def test_every_point_of_the_examples_is_inside_the_device_limits() -> None:
         sweep = plan.expand()
         assert np.all(sweep.dc_level + sweep.ripple_peak <= plan.device.absolute_max_v)
         assert np.all(sweep.dc_level - sweep.ripple_peak >= plan.device.min_operating_v)
+
+
+@pytest.mark.parametrize("name", ["demo.toml", "overnight.toml"])
+def test_example_plans_are_feasible_on_the_demo_bench(name: str) -> None:
+    """The feasibility check (benchseq.check) refuses no point of the example plans on the
+    embedded simulated bench, so `benchseq run plans/<name>` starts."""
+    from benchseq.bench import load_bench
+    from benchseq.check import check_plan
+
+    report = check_plan(load_plan(PLANS / name), load_bench(None)).to_dict()
+    assert report["refused"] == 0, report["reasons"]
+    assert report["point_count"] == load_plan(PLANS / name).point_count
 
 
 def test_text_and_hash_are_kept() -> None:
@@ -164,7 +176,8 @@ def test_dc_levels_keep_the_written_order() -> None:
         (10.0, 1e6, 3, 16),  # 5 x 3 + 1
         (10.0, 1e6, 4, 21),
         (100.0, 1e3, 1, 2),
-        (20.0, 1e6, 10, 48),  # log10(5e4) = 4.699 decades -> 47 intervals, 48 points
+        (20.0, 1e6, 10, 48),  # 20 Hz x 10^(k/10), k = 0..46 (796 kHz), then 1 MHz
+        (10.0, 5e5, 10, 48),  # 10 Hz ... 398 kHz (k = 0..46), then 500 kHz
         (1e3, 1e3, 10, 1),
     ],
 )
@@ -182,19 +195,22 @@ def test_log_sweep_keeps_both_ends_and_spacing(
     assert f[0] == start and f[-1] == stop
     if count > 1:
         steps = np.diff(np.log10(f))
-        assert np.allclose(steps, steps[0], rtol=1e-9)
-        assert steps[0] <= 1 / per_decade + 1e-12  # never sparser than asked
+        # a grid anchored at `from`; `to` closes it, so only the last step may be shorter
+        assert np.allclose(steps[:-1], 1 / per_decade, rtol=1e-9)
+        assert 0 < steps[-1] <= 1 / per_decade * (1 + 1e-9)
 
 
-def test_decade_points_come_out_exact() -> None:
-    """At 10 per decade from 10 Hz, every 10th point is an exact decade: 100 Hz, 1 kHz..."""
+@pytest.mark.parametrize("stop", ["1 MHz", "500 kHz", "1.2 MHz"])
+def test_decade_points_come_out_exact(stop: str) -> None:
+    """At 10 per decade from 10 Hz, every 10th point is an exact decade: 100 Hz, 1 kHz...,
+    wherever the band ends."""
     plan = plan_from(
         with_sweep(
             'dc = "5 V"\nripple = "100 mVpp"\n'
-            'frequency = { from = "10 Hz", to = "1 MHz", per_decade = 10 }'
+            f'frequency = {{ from = "10 Hz", to = "{stop}", per_decade = 10 }}'
         )
     )
-    assert list(plan.frequencies[::10]) == [10.0, 100.0, 1e3, 1e4, 1e5, 1e6]
+    assert list(plan.frequencies[:41:10]) == [10.0, 100.0, 1e3, 1e4, 1e5]
 
 
 @pytest.mark.parametrize(
