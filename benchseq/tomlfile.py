@@ -4,12 +4,13 @@ asked for are reported (with the nearest valid name) instead of being silently i
 
 from __future__ import annotations
 
+import math
 import tomllib
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
-from benchseq.errors import FileKeyError, unknown_key_message
+from benchseq.errors import FileKeyError, nearest, unknown_key_message
 from benchseq.units import (
     DIMENSION_WORDS,
     Amplitude,
@@ -28,6 +29,8 @@ def read_toml(path: str | Path) -> tuple[str, dict[str, Any]]:
         raw = Path(path).read_bytes()
     except FileNotFoundError:
         raise FileKeyError(source, "", "file not found") from None
+    except ValueError:  # e.g. a NUL character in the path
+        raise FileKeyError(source, "", "not a usable file name") from None
     except IsADirectoryError:
         raise FileKeyError(source, "", "is a directory, not a TOML file") from None
     except OSError as exc:
@@ -44,6 +47,10 @@ def parse_toml_text(raw: bytes | str, source: str) -> tuple[str, dict[str, Any]]
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
+        raise FileKeyError(source, "", f"not valid TOML: {exc}") from None
+    except RecursionError:
+        raise FileKeyError(source, "", "not valid TOML: nested too deeply") from None
+    except ValueError as exc:  # a number with thousands of digits
         raise FileKeyError(source, "", f"not valid TOML: {exc}") from None
     return text, data
 
@@ -75,7 +82,9 @@ class Section:
         self._used.add(key)
         if key not in self.data:
             if default is _MISSING:
-                raise self.error(key, "missing (required)")
+                guess = nearest(key, [k for k in self.data if k not in self._used])
+                hint = f'; is "{guess}" a misspelling of it?' if guess is not None else ""
+                raise self.error(key, f"missing (required){hint}")
             return default
         return self.data[key]
 
@@ -136,6 +145,8 @@ class Section:
             return value
         if isinstance(value, bool) or not isinstance(value, int | float):
             raise self.error(key, f"expected a number, got {_kind(value)}")
+        if not math.isfinite(_as_float(value)):
+            raise self.error(key, f"expected a finite number, got {_kind(value)}")
         if positive and not value > 0:
             raise self.error(key, f"must be greater than zero, got {value}")
         return float(value)
@@ -212,11 +223,21 @@ def _drop_where(exc: QuantityError) -> str:
     return message
 
 
+def _as_float(value: float) -> float:
+    """float(value), or inf for an integer too large for a float."""
+    try:
+        return float(value)
+    except OverflowError:
+        return math.inf
+
+
 def _kind(value: object) -> str:
     if isinstance(value, bool):
         return "true/false"
     if isinstance(value, str):
         return f"text '{value}'"
+    if isinstance(value, int) and abs(value) > 10**30:
+        return "a number too large to use"
     if isinstance(value, int | float):
         return f"the number {value}"
     if isinstance(value, list):

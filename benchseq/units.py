@@ -162,7 +162,10 @@ def parse_quantity(value: object, expected: str, where: str = "") -> float:
     if isinstance(value, bool):
         raise QuantityError(value, expected, where, "a true/false value is not a quantity")
     if isinstance(value, int | float):
-        number = float(value)
+        try:
+            number = float(value)
+        except OverflowError:
+            raise QuantityError("(a huge number)", expected, where, "not a finite number") from None
     elif isinstance(value, str):
         number, rest = _split(value, expected, where)
         if expected == "V" and (rest[-2:] in ("pp", "pk") or rest.endswith("rms")):
