@@ -10,7 +10,7 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
-from benchseq.errors import FileKeyError, nearest, unknown_key_message
+from benchseq.errors import FileKeyError, unknown_key_message
 from benchseq.units import (
     DIMENSION_WORDS,
     Amplitude,
@@ -82,7 +82,7 @@ class Section:
         self._used.add(key)
         if key not in self.data:
             if default is _MISSING:
-                guess = nearest(key, [k for k in self.data if k not in self._used])
+                guess = _respelling(key, self.data)
                 hint = f'; is "{guess}" a misspelling of it?' if guess is not None else ""
                 raise self.error(key, f"missing (required){hint}")
             return default
@@ -221,6 +221,20 @@ def _drop_where(exc: QuantityError) -> str:
     if "(" in text and text.endswith(")"):
         message += " " + text[text.rindex("(") :]
     return message
+
+
+def _respelling(key: str, data: dict[str, Any]) -> str | None:
+    """A key of ``data`` that is ``key`` written differently (case, '_'/'-'/' ', a plural s):
+    conservative on purpose, so a missing key is never blamed on another valid one."""
+
+    def plain(name: str) -> str:
+        return "".join(ch for ch in name.lower() if ch.isalnum()).removesuffix("s")
+
+    wanted = plain(key)
+    for other in data:
+        if isinstance(other, str) and other != key and plain(other) == wanted:
+            return other
+    return None
 
 
 def _as_float(value: float) -> float:

@@ -312,3 +312,12 @@ def test_template_text_with_lines_dropped_or_cut(data: st.DataObject) -> None:
         _never_a_traceback(parsed, parsed_text)
     except BadInput as exc:
         assert "fuzz.toml" in str(exc)
+
+
+def test_a_missing_key_is_not_blamed_on_another_valid_one() -> None:
+    """'max_amplitude' missing while 'min_amplitude' is given: no misspelling hint."""
+    error = error_of(_replace('max_amplitude = "10 Vpp"', ""))
+    assert error.key == "generator.max_amplitude"
+    assert str(error).endswith("missing (required)")
+    renamed = error_of(_replace("load_mode =", "Load-Mode ="))
+    assert renamed.key == "generator.load_mode" and '"Load-Mode" a misspelling' in str(renamed)
