@@ -88,7 +88,7 @@ def test_overnight_plan_counts_and_order() -> None:
     assert plan.axes == ("load", "dc", "ripple", "frequency")
     assert np.all(sweep.load_current[:416] == 0.01) and np.all(sweep.load_current[416:] == 0.1)
     assert list(sweep.dc_level[::104][:4]) == [4.2, 4.5, 5.0, 5.5]
-    assert list(sweep.ripple_peak[:104:52]) == [0.05, 0.075]
+    assert list(sweep.ripple_peak[:104:52]) == [0.05, 0.1]
     assert np.array_equal(sweep.frequency[:52], plan.frequencies)
     assert np.array_equal(sweep.index, np.arange(832))
     assert plan.linearity is not None and list(plan.linearity.frequencies) == [1e3, 1e5]
