@@ -1,7 +1,272 @@
-"""The `benchseq` command (placeholder until the commands land)."""
+"""The `benchseq` command: parse, call, print. Exit codes: 0 ok, 1 measurement or
+instrument failure (or refused points), 2 bad input."""
 
 from __future__ import annotations
 
+import argparse
+import json
+import sys
+from collections.abc import Sequence
+from typing import Any
 
-def main(argv: list[str] | None = None) -> int:
-    return 0
+from benchseq import __version__
+from benchseq.errors import BadInput, BenchseqError
+
+EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
+
+
+def _console(stderr: bool = False) -> Any:
+    from rich.console import Console
+
+    return Console(stderr=stderr, highlight=False)
+
+
+def _escape(value: object) -> str:
+    from rich.markup import escape
+
+    return escape(str(value))
+
+
+def _print_json(data: Any) -> None:
+    sys.stdout.write(json.dumps(data, indent=2, default=_json_default) + "\n")
+
+
+def _json_default(value: Any) -> Any:
+    import numpy as np
+
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, complex):
+        return {"re": value.real, "im": value.imag}
+    raise TypeError(f"not JSON-serialisable: {type(value).__name__}")
+
+
+# -- commands --------------------------------------------------------------------------
+def cmd_check(args: argparse.Namespace) -> int:
+    from benchseq.bench import load_bench
+    from benchseq.check import check_plan, render_check
+    from benchseq.plan import load_plan
+
+    bench = load_bench(args.bench)
+    plan = load_plan(args.plan)
+    report = check_plan(plan, bench)
+    if args.json:
+        _print_json(report.to_dict())
+    else:
+        _console().print(render_check(report))
+    return report.exit_code
+
+
+def cmd_injector(args: argparse.Namespace) -> int:
+    from benchseq.bench import load_bench
+    from benchseq.check import injector_report, plot_injector, render_injector
+    from benchseq.units import parse_amplitude
+
+    bench = load_bench(args.bench)
+    ripple = parse_amplitude(args.ripple, "--ripple") if args.ripple else None
+    report = injector_report(bench, ripple)
+    if args.plot:
+        plot_injector(bench, args.plot, ripple)
+    if args.json:
+        _print_json(report.to_dict())
+    else:
+        _console().print(render_injector(report))
+        if args.plot:
+            _console().print(f"Bode plot written to {args.plot}")
+    return EXIT_OK
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from benchseq.display import RunDisplay, duration_text
+    from benchseq.runner import resume_run, start_run
+    from benchseq.stopping import StopControl
+
+    console = _console()
+    stop = StopControl()
+    state: dict[str, Any] = {}
+
+    def emit(event: Any) -> None:
+        display = state.get("display")
+        if display is None:
+            display = RunDisplay(console, event.total or 0, state.get("planned", 0.0))
+            display.__enter__()
+            state["display"] = display
+        display.handle(event)
+
+    with stop.installed():
+        try:
+            if args.resume:
+                outcome, path = resume_run(args.resume, args.plan, args.bench, emit=emit, stop=stop)
+            else:
+                if not args.plan:
+                    raise BadInput("give a plan file (or --resume RESULT.h5)")
+                outcome, path = start_run(
+                    args.plan,
+                    args.bench,
+                    args.out,
+                    force=args.force,
+                    keep_waveforms=args.keep_waveforms,
+                    seed=args.seed,
+                    emit=emit,
+                    stop=stop,
+                )
+        finally:
+            if state.get("display") is not None:
+                state["display"].__exit__()
+    if outcome is None:
+        console.print(f"{_escape(path)} is already complete; nothing to do.")
+        return EXIT_OK
+    if args.json:
+        _print_json(
+            {
+                "status": outcome.status,
+                "reason": outcome.reason,
+                "file": str(path),
+                "measured": outcome.measured,
+                "bounds": outcome.bounds,
+                "flagged": outcome.flagged,
+                "bench_time_s": outcome.bench_time,
+            }
+        )
+    else:
+        colour = {"complete": "green", "stopped": "yellow"}.get(outcome.status, "red")
+        console.print(f"[bold {colour}]run {outcome.status}[/]: {_escape(outcome.reason)}")
+        console.print(
+            f"points measured this session: {outcome.measured} "
+            f"(lower bounds: {outcome.bounds}, flagged: {outcome.flagged}); "
+            f"bench time {duration_text(outcome.bench_time)}"
+        )
+        console.print("safe state: " + _escape("; ".join(outcome.safe_state)))
+        console.print(f"results: [bold]{_escape(path)}[/]")
+        if outcome.status != "complete":
+            console.print(f"continue with: benchseq run --resume {_escape(path)}")
+        console.print(f"summary: benchseq show {_escape(path)}")
+    return EXIT_OK if outcome.status in ("complete", "stopped") else EXIT_FAILURE
+
+
+def cmd_show(args: argparse.Namespace) -> int:
+    from benchseq.display import points_table
+    from benchseq.store import read_meta, read_results
+
+    meta = read_meta(args.result)
+    frame = read_results(args.result)
+    if args.json:
+        _print_json(
+            {
+                "meta": {k: v for k, v in meta.items() if not k.endswith("_text")},
+                "points": frame.to_dict(orient="records"),
+            }
+        )
+        return EXIT_OK
+    console = _console()
+    console.print(f"[bold]{_escape(meta.get('title', ''))}[/] — {_escape(meta.get('device', ''))}")
+    console.print(
+        f"status {_escape(meta.get('status'))}; started {_escape(meta.get('started'))}; "
+        f"{len(frame)} of {meta.get('point_count', '?')} points stored; bench {_escape(meta.get('bench_name', ''))}"
+    )
+    rows = frame.to_dict(orient="records")
+    console.print(points_table(rows, title="points"))
+    return EXIT_OK
+
+
+def cmd_scan(args: argparse.Namespace) -> int:
+    from benchseq.drivers.session import scan
+
+    entries = scan(args.visa_library, timeout_s=args.timeout)
+    if args.json:
+        _print_json(
+            [{"resource": e.resource, "identity": e.identity, "error": e.error} for e in entries]
+        )
+        return EXIT_OK
+    from rich.table import Table
+
+    table = Table(title=f"VISA resources ({args.visa_library})")
+    table.add_column("resource")
+    table.add_column("*IDN? reply or error")
+    for e in entries:
+        table.add_row(_escape(e.resource), _escape(e.identity or f"no answer: {e.error}"))
+    _console().print(table if entries else "no VISA resources found")
+    return EXIT_OK
+
+
+def cmd_sim_serve(args: argparse.Namespace) -> int:
+    from benchseq.sim.server import sim_serve_main
+
+    return int(
+        sim_serve_main(args.scenario, base_port=args.port, seed=args.seed, console=_console())
+    )
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="benchseq",
+        description="Supply-ripple rejection (PSRR) sweeps on SCPI instruments or a simulated bench.",
+        epilog="Exit codes: 0 ok, 1 measurement/instrument failure or refused points, 2 bad input.",
+    )
+    parser.add_argument("--version", action="version", version=f"benchseq {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("check", help="validate a plan and bench, list refused or marginal points")
+    p.add_argument("plan", help="plan file (TOML)")
+    p.add_argument("--bench", help="bench file; omit (or 'sim') for the embedded simulated bench")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("injector", help="the injector's computed response, corners and usable band")
+    p.add_argument("--bench", help="bench file; omit (or 'sim') for the embedded simulated bench")
+    p.add_argument("--ripple", help="pin ripple to show the generator setting for, e.g. 100mVpp")
+    p.add_argument("--plot", metavar="FILE", help="write a Bode-style PNG")
+    p.add_argument("--json", action="store_true", help="print the figures as JSON")
+    p.set_defaults(func=cmd_injector)
+
+    p = sub.add_parser("run", help="run a plan's sweep and store every point (HDF5)")
+    p.add_argument("plan", nargs="?", help="plan file (TOML)")
+    p.add_argument("--bench", help="bench file; omit (or 'sim') for the embedded simulated bench")
+    p.add_argument("--out", help="result file (default: results/<plan>-<time>.h5)")
+    p.add_argument("--resume", metavar="RESULT", help="continue an interrupted run")
+    p.add_argument("--force", action="store_true", help="overwrite an existing result file")
+    p.add_argument("--keep-waveforms", action="store_true", help="store raw scope records")
+    p.add_argument("--seed", type=int, default=0, help="seed of the simulated bench (default 0)")
+    p.add_argument("--json", action="store_true", help="print the outcome as JSON")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("show", help="summary and table of a stored run")
+    p.add_argument("result", help="result file (.h5)")
+    p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
+    p.set_defaults(func=cmd_show)
+
+    p = sub.add_parser("scan", help="list reachable VISA instruments and their *IDN?")
+    p.add_argument("--visa-library", default="@py", help="VISA library (default @py: pyvisa-py)")
+    p.add_argument("--timeout", type=float, default=1.0, help="seconds per instrument")
+    p.add_argument("--json", action="store_true", help="print as JSON")
+    p.set_defaults(func=cmd_scan)
+
+    p = sub.add_parser("sim", help="the simulated bench")
+    simsub = p.add_subparsers(dest="sim_command", metavar="ACTION")
+    q = simsub.add_parser("serve", help="serve a simulated bench over SCPI/TCP on 127.0.0.1")
+    q.add_argument("--scenario", default="demo", help="scenario name (default demo)")
+    q.add_argument("--port", type=int, default=5025, help="first TCP port (one per instrument)")
+    q.add_argument("--seed", type=int, default=0, help="noise seed")
+    q.set_defaults(func=cmd_sim_serve)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return EXIT_BAD_INPUT
+    try:
+        return int(args.func(args))
+    except BadInput as exc:
+        _console(stderr=True).print(f"[bold red]error:[/] {_escape(exc)}")
+        return EXIT_BAD_INPUT
+    except BenchseqError as exc:
+        _console(stderr=True).print(f"[bold red]failed:[/] {_escape(exc)}")
+        return exc.exit_code
+    except KeyboardInterrupt:
+        _console(stderr=True).print("interrupted")
+        return EXIT_FAILURE

@@ -1,0 +1,73 @@
+"""The `check` and `injector` commands: exit codes, JSON output, refusal with reasons."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from benchseq.cli import main
+
+PLANS = Path(__file__).resolve().parent.parent / "plans"
+
+
+def _plan_with(tmp_path: Path, old: str, new: str) -> Path:
+    text = (PLANS / "demo.toml").read_text(encoding="utf-8")
+    assert old in text
+    path = tmp_path / "variant.toml"
+    path.write_text(text.replace(old, new), encoding="utf-8")
+    return path
+
+
+def test_check_demo_is_feasible(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["check", str(PLANS / "demo.toml"), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["point_count"] == 16
+    assert report["refused"] == 0 and report["all_feasible"] is True
+
+
+def test_check_refuses_what_the_injector_cannot_do(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """2 Vpp at 5 MHz: 2π·5 MHz·1 V = 31 V/µs > 10 V/µs slew rate (Horowitz & Hill,
+    full-power bandwidth SR/(2π·Vpk)); the command says so and exits 1."""
+    plan = _plan_with(
+        tmp_path,
+        'frequency = { from = "10 Hz", to = "1 MHz", per_decade = 3 }',
+        'frequency = ["1 kHz", "5 MHz"]',
+    )
+    text = plan.read_text(encoding="utf-8").replace('ripple = ["100 mVpp"]', 'ripple = ["2 Vpp"]')
+    text = text.replace('absolute_max = "6 V"', 'absolute_max = "6.5 V"')
+    text = text.replace('min_operating = "3.8 V"', 'min_operating = "3.5 V"')
+    plan.write_text(text, encoding="utf-8")
+    assert main(["check", str(plan)]) == 1
+    out = capsys.readouterr().out
+    assert "refused" in out and "slew" in out.lower()
+
+
+def test_check_bad_plan_exits_2_with_file_and_key(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    plan = _plan_with(tmp_path, "min_cycles = 10", "min_cycle = 10")
+    assert main(["check", str(plan)]) == 2
+    err = capsys.readouterr().err
+    assert "variant.toml" in err and "capture.min_cycle" in err and "min_cycles" in err
+
+
+def test_check_missing_bench_file_exits_2(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["check", str(PLANS / "demo.toml"), "--bench", "no/such/bench.toml"]) == 2
+    assert "file not found" in capsys.readouterr().err
+
+
+def test_injector_json_and_plot(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Passband gain −Rf/(Rs+Rin) = −0.952 for the demo board (FIELD.md worked example,
+    computed); the 50 Ω-mode generator setting for 100 mVpp is about 100/1.905 mVpp."""
+    png = tmp_path / "bode.png"
+    assert main(["injector", "--ripple", "100mVpp", "--plot", str(png), "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    text = json.dumps(data)
+    assert "usable_band" in text
+    assert main(["injector", "--ripple", "100 mA"]) == 2
+    assert "voltage" in capsys.readouterr().err
