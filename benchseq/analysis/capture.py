@@ -1,0 +1,198 @@
+"""Capture planning: timebase, record length and averaging for a target uncertainty.
+
+Per channel the fitted amplitude's relative variance is S(f)/(T·A²), S the one-sided noise
+density at f after aliasing and T the total recorded time (MEASUREMENT.md: σ_A² ≈ S/T,
+equivalently N ≥ 2(σ/A)²/u_rel² white samples). The rejection's uncertainty adds both
+channels and the calibration in quadrature (GUM, JCGM 100 §5.1.2):
+
+    u_dB² = (20/ln 10)²·[(S_pin/A_pin² + S_out/A_out²)/T + u_cal²]
+
+Every offered (sample interval, record length) is tried; triggered averages M multiply T
+(each record costs its duration plus the re-arm time); a record must hold min_cycles and
+each cycle ≥ min_samples_per_cycle samples. The plan with the least bench time that meets
+the target wins; if none does within max_time_s, the most accurate one that fits does.
+Finally the generator is nudged to a whole number of cycles: f' = J/T (IEEE Std 1241),
+J = max(min_cycles, round(f·T)), a relative shift of at most 1/(2J).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Protocol
+
+from benchseq.analysis.errors import AnalysisError
+from benchseq.analysis.rejection import DB_PER_NEPER
+
+DEFAULT_MIN_SAMPLES_PER_CYCLE = 8
+
+
+class ScopeLimits(Protocol):
+    """What the planner needs to know of a scope (ScopeCapabilities has these)."""
+
+    sample_intervals: Sequence[float]
+    record_lengths: Sequence[int]
+    max_averages: int
+    rearm_time: float
+
+
+@dataclass(frozen=True)
+class ScopeTimebase:
+    """A plain ScopeLimits, for tests and for callers without a driver."""
+
+    sample_intervals: Sequence[float]
+    record_lengths: Sequence[int]
+    max_averages: int = 1
+    rearm_time: float = 0.0
+
+
+@dataclass(frozen=True)
+class CapturePlan:
+    """One point's capture. frequency is the coherent generator frequency J/T (Hz)."""
+
+    sample_interval: float  # s
+    record_length: int  # samples per record
+    averages: int  # triggered records the scope averages into one waveform
+    records: int  # waveforms to read (averaged sample-wise by the caller)
+    frequency: float  # Hz, nudged so the record holds exactly `cycles` periods
+    requested_frequency: float  # Hz
+    cycles: int  # J
+    expected_uncertainty_db: float  # standard uncertainty this plan should reach
+    capture_time: float  # s of signal recorded: records·averages·record_length·interval
+    bench_time: float  # s including re-arm times
+    limited_by: str  # "cycles", "noise", "max_time" (target unmet) or "calibration" (unmet)
+    meets_target: bool
+
+    @property
+    def record_duration(self) -> float:
+        """T = N·Δt of one record (s)."""
+        return self.record_length * self.sample_interval
+
+
+def _effective_density(
+    interval: float, sigma: float | None, density: float | None, bandwidth: float | None
+) -> float:
+    """One-sided noise density at f after aliasing (V²/Hz) for this sample interval."""
+    nyquist = 0.5 / interval
+    if bandwidth is None:
+        if density is not None:
+            return density**2
+        assert sigma is not None
+        return sigma**2 / nyquist
+    white = density**2 if density is not None else (sigma or 0.0) ** 2 / bandwidth
+    return white * max(1.0, bandwidth / nyquist)
+
+
+def plan_capture(
+    scope: ScopeLimits,
+    frequency: float,
+    pin_amplitude: float,
+    output_amplitude: float,
+    target_uncertainty_db: float,
+    min_cycles: int = 10,
+    max_time_s: float = 10.0,
+    noise_sigma: float | None = None,
+    noise_density: float | None = None,
+    noise_bandwidth: float | None = None,
+    pin_noise_sigma: float | None = None,
+    pin_noise_density: float | None = None,
+    calibration_uncertainty: float = 0.0,
+    min_samples_per_cycle: int = DEFAULT_MIN_SAMPLES_PER_CYCLE,
+) -> CapturePlan:
+    """Least-bench-time capture of one point (amplitudes peak V at the scope input).
+
+    Noise (output channel; the pin channel uses the same unless given): noise_sigma (V rms
+    per sample) or noise_density (V/√Hz, one-sided), white up to noise_bandwidth (Hz) and
+    aliased by sampling below 2× that; without a bandwidth, noise_sigma is taken as white at
+    whatever rate is chosen (a scope's own quantiser-like noise).
+    """
+    if not (frequency > 0 and pin_amplitude > 0 and output_amplitude > 0):
+        raise AnalysisError(
+            "capture planning needs a positive frequency and positive expected amplitudes"
+        )
+    if (noise_sigma is None) == (noise_density is None):
+        raise AnalysisError(
+            "give the expected noise as exactly one of noise_sigma or noise_density"
+        )
+    if target_uncertainty_db <= 0 or min_cycles < 1 or max_time_s <= 0:
+        raise AnalysisError("target uncertainty, minimum cycles and maximum time must be positive")
+    if pin_noise_sigma is None and pin_noise_density is None:
+        pin_noise_sigma, pin_noise_density = noise_sigma, noise_density
+    cal_db2 = (DB_PER_NEPER * calibration_uncertainty) ** 2
+    budget = target_uncertainty_db**2 - cal_db2
+    lengths = sorted(int(n) for n in scope.record_lengths)
+    intervals = sorted(float(dt) for dt in scope.sample_intervals)
+    max_averages = max(int(scope.max_averages), 1)
+    min_record_time = min_cycles / frequency
+    best: tuple[tuple[float, ...], CapturePlan] | None = None
+    for dt in intervals:
+        if dt * frequency * min_samples_per_cycle > 1.0:
+            continue
+        weight = (
+            _effective_density(dt, pin_noise_sigma, pin_noise_density, noise_bandwidth)
+            / pin_amplitude**2
+        )
+        weight += (
+            _effective_density(dt, noise_sigma, noise_density, noise_bandwidth)
+            / output_amplitude**2
+        )
+        needed = DB_PER_NEPER**2 * weight / budget if budget > 0 else math.inf
+        for length in lengths:
+            duration = length * dt
+            if duration < min_record_time * (1 - 1e-9):
+                continue
+            total = (
+                max(1, math.ceil(needed / duration * (1 - 1e-12)))
+                if math.isfinite(needed)
+                else max_averages
+            )
+            records = math.ceil(total / max_averages)
+            averages = math.ceil(total / records)
+            bench = records * averages * (duration + scope.rearm_time)
+            if bench > max_time_s and total > 1:
+                # the time cap binds: as many averages as fit
+                fit_in = max(1, int(max_time_s // (duration + scope.rearm_time)))
+                records = math.ceil(fit_in / max_averages)
+                averages = max(1, fit_in // records)
+                bench = records * averages * (duration + scope.rearm_time)
+            recorded = records * averages * duration
+            u = math.sqrt(DB_PER_NEPER**2 * weight / recorded + cal_db2)
+            meets = u <= target_uncertainty_db * (1 + 1e-9) and bench <= max_time_s
+            within = bench <= max_time_s
+            key = (
+                0.0 if meets else 1.0,
+                0.0 if within else 1.0,
+                bench if meets else (u if within else duration),
+                u,
+                float(length),
+            )
+            if best is None or key < best[0]:
+                if meets:
+                    limited = "cycles" if needed <= min_record_time else "noise"
+                else:
+                    limited = "calibration" if budget <= 0 else "max_time"
+                cycles = max(min_cycles, round(frequency * duration))
+                best = (
+                    key,
+                    CapturePlan(
+                        sample_interval=dt,
+                        record_length=length,
+                        averages=averages,
+                        records=records,
+                        frequency=cycles / duration,
+                        requested_frequency=frequency,
+                        cycles=cycles,
+                        expected_uncertainty_db=u,
+                        capture_time=recorded,
+                        bench_time=bench,
+                        limited_by=limited,
+                        meets_target=meets,
+                    ),
+                )
+    if best is None:
+        raise AnalysisError(
+            f"no offered timebase records {min_cycles} cycles of {frequency:.6g} Hz with "
+            f"{min_samples_per_cycle} samples per cycle: the frequency is out of this scope's reach"
+        )
+    return best[1]

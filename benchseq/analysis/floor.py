@@ -1,0 +1,105 @@
+"""Local noise floor at the test frequency from fits at neighbouring frequencies.
+
+The residual of a fit holds harmonics, mains pickup and spurs as well as noise, so it can
+misstate the noise at f. Like a spectrum analyser's noise marker, fit f_k = f ± k/T
+(k = 2…K, T the record duration) jointly with f itself (so the tone at f cannot leak in),
+skip neighbours near harmonics of f, DC and Nyquist, and read the noise per quadrature
+from their amplitudes: with no signal E[A_k²] = 2σ_c² (Rayleigh; MEASUREMENT.md).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from benchseq.analysis import _blocks
+from benchseq.analysis.errors import AnalysisError
+from benchseq.analysis.sinefit import as_records
+
+DEFAULT_NEIGHBOURS = 10  # K: neighbours at k = 2…K bins on each side
+DEFAULT_DETECTION_K = 3.5  # detected when A > 3.5·σ_c: false alarm e^(−3.5²/2) = 0.22 %
+SKIP_BINS = 1.5  # neighbours this close (in bins) to a harmonic, DC or Nyquist are skipped
+RAYLEIGH_MEAN = math.sqrt(math.pi / 2.0)  # mean of a noise-only amplitude, in σ_c
+
+
+@dataclass(frozen=True)
+class NoiseFloor:
+    """Noise at the test frequency of one record.
+
+    sigma: σ_c, the standard deviation per quadrature a fit at f would have (V);
+    mean_amplitude: what a noise-only fit at f reads on average, √(π/2)·σ_c (V);
+    density: one-sided noise density at f after aliasing, σ_c·√T (V/√Hz);
+    used: how many neighbour fits went into it.
+    """
+
+    sigma: float
+    mean_amplitude: float
+    density: float
+    used: int
+    frequencies: tuple[float, ...]
+
+
+def neighbour_frequencies(
+    frequency: float, duration: float, sample_rate: float, neighbours: int = DEFAULT_NEIGHBOURS
+) -> np.ndarray:
+    """f ± k/T for k = 2…K, without those near harmonics of f (and its multiples), DC and Nyquist."""
+    bin_width = 1.0 / duration
+    ks = np.arange(2, max(neighbours, 2) + 1, dtype=float)
+    cand = np.concatenate([frequency - ks * bin_width, frequency + ks * bin_width])
+    nyquist = sample_rate / 2.0
+    keep = (cand > SKIP_BINS * bin_width) & (cand < nyquist - SKIP_BINS * bin_width)
+    order = np.round(cand / frequency)
+    near_harmonic = (order >= 2) & (np.abs(cand - order * frequency) < SKIP_BINS * bin_width)
+    return np.sort(cand[keep & ~near_harmonic])
+
+
+def noise_floor(
+    samples: object,
+    sample_rate: float,
+    frequency: float,
+    t0: float = 0.0,
+    neighbours: int = DEFAULT_NEIGHBOURS,
+) -> NoiseFloor:
+    """σ_c at ``frequency`` from joint fits [f, f_k, offset] at each neighbour f_k of one record."""
+    record = as_records(samples)
+    if record.shape[0] != 1:
+        raise AnalysisError("noise_floor takes one record")
+    n = record.shape[1]
+    duration = n / sample_rate
+    near = neighbour_frequencies(frequency, duration, sample_rate, neighbours)
+    if near.size == 0:
+        raise AnalysisError(
+            f"no neighbour frequencies around {frequency:.6g} Hz fit in a {duration:.4g} s record "
+            f"at {sample_rate:.6g} Sa/s: capture more cycles"
+        )
+    freqs = np.concatenate([[frequency], near])
+    x = freqs / sample_rate
+    phi = _blocks.TWO_PI * np.mod(freqs * t0, 1.0)
+    proj, sums, _ = _blocks.project(record, x, phi)
+    scaled = []
+    for i in range(1, freqs.size):
+        pair = np.array([0, i])
+        gram = _blocks.sine_gram(n, x[pair], phi[pair])
+        rhs = np.array(
+            [proj[0, 0].real, -proj[0, 0].imag, proj[0, i].real, -proj[0, i].imag, sums[0]]
+        )
+        inverse = np.linalg.inv(gram)
+        a, b = (inverse @ rhs)[2:4]
+        own = inverse[2, 2] + inverse[3, 3]
+        at_f = inverse[0, 0] + inverse[1, 1]
+        scaled.append((a * a + b * b) * at_f / own)
+    sigma = math.sqrt(float(np.mean(scaled)) / 2.0)
+    return NoiseFloor(
+        sigma=sigma,
+        mean_amplitude=RAYLEIGH_MEAN * sigma,
+        density=sigma * math.sqrt(duration),
+        used=len(scaled),
+        frequencies=tuple(float(f) for f in near),
+    )
+
+
+def is_detected(amplitude: float, sigma: float, k: float = DEFAULT_DETECTION_K) -> bool:
+    """A fitted amplitude counts as a signal when it exceeds k·σ_c."""
+    return bool(amplitude > k * sigma)
