@@ -10,7 +10,13 @@ from benchseq.analysis.capture import CapturePlan, ScopeLimits, ScopeTimebase, p
 from benchseq.analysis.codes import CodeCheck, RangeVerdict, check_codes, suggest_range
 from benchseq.analysis.distortion import HarmonicFit, fit_harmonics
 from benchseq.analysis.errors import AnalysisError, FitNotConverged
-from benchseq.analysis.floor import NoiseFloor, is_detected, neighbour_frequencies, noise_floor
+from benchseq.analysis.floor import (
+    NoiseFloor,
+    is_detected,
+    neighbour_frequencies,
+    noise_floor,
+    widened_quantile,
+)
 from benchseq.analysis.point import ChannelCodes, PointMeasurement, measure_point
 from benchseq.analysis.refine import (
     FreeSineFit,
@@ -75,4 +81,5 @@ __all__ = [
     "refine_frequency",
     "rejection",
     "suggest_range",
+    "widened_quantile",
 ]

@@ -100,6 +100,21 @@ def noise_floor(
     )
 
 
+def widened_quantile(z: float, dof: float) -> float:
+    """Student-t quantile for a normal quantile z when σ is estimated with ``dof`` degrees of
+    freedom (Cornish–Fisher expansion, Abramowitz & Stegun 26.7.5, from memory).
+
+    The neighbour floor estimates σ_c² from 2·used squared quadratures, so a bound built
+    with it needs t rather than z to keep its coverage.
+    """
+    if not math.isfinite(dof):
+        return z
+    if dof < 3:
+        raise AnalysisError(f"{dof:g} degrees of freedom is too few to widen a quantile")
+    z3, z5 = z**3, z**5
+    return z + (z3 + z) / (4 * dof) + (5 * z5 + 16 * z3 + 3 * z) / (96 * dof**2)
+
+
 def is_detected(amplitude: float, sigma: float, k: float = DEFAULT_DETECTION_K) -> bool:
     """A fitted amplitude counts as a signal when it exceeds k·σ_c."""
     return bool(amplitude > k * sigma)

@@ -13,7 +13,13 @@ from benchseq.analysis.calibration import ChannelCalibration
 from benchseq.analysis.codes import CodeCheck, RangeVerdict, check_codes
 from benchseq.analysis.distortion import DEFAULT_ORDERS, HarmonicFit, fit_harmonics
 from benchseq.analysis.errors import AnalysisError
-from benchseq.analysis.floor import DEFAULT_DETECTION_K, DEFAULT_NEIGHBOURS, NoiseFloor, noise_floor
+from benchseq.analysis.floor import (
+    DEFAULT_DETECTION_K,
+    DEFAULT_NEIGHBOURS,
+    NoiseFloor,
+    noise_floor,
+    widened_quantile,
+)
 from benchseq.analysis.refine import DEFAULT_MIN_SNR, FrequencyRefinement, refine_frequency
 from benchseq.analysis.rejection import BOUND_Z, Rejection, rejection
 from benchseq.analysis.sinefit import SineFit, as_records, fit_sine
@@ -158,6 +164,7 @@ def measure_point(
         floor = None
     if floor is not None and floor.used >= MIN_FLOOR_NEIGHBOURS:
         sigma = floor.sigma
+        z = widened_quantile(z, 2 * floor.used)
     else:
         sigma = out_fit.quadrature_sigma
         flags.append("floor_from_residual")

@@ -18,7 +18,7 @@ import numpy as np
 from benchseq.analysis import _blocks
 from benchseq.analysis.errors import AnalysisError
 
-# Below this ratio RSS/Σ(y−ȳ)², Σy² − xᵀDᵀy has lost too many digits: recompute directly.
+# Below this ratio RSS/Σy², Σy² − xᵀDᵀy has lost too many digits: recompute directly.
 _CANCELLATION_GUARD = 1e-6
 _MAX_CONDITION = 1e12
 
@@ -205,8 +205,7 @@ def solve(
             "the record contains NaN or infinite samples (or values too large to square)"
         )
     rss = energy - np.einsum("mp,mp->m", coef, rhs)
-    centred = energy - sums**2 / n
-    suspect = rss < _CANCELLATION_GUARD * np.maximum(centred, np.finfo(float).tiny)
+    suspect = rss < _CANCELLATION_GUARD * np.maximum(energy, np.finfo(float).tiny)
     if np.any(suspect):
         direct = _blocks.residual_sum_squares(
             records[suspect],
