@@ -543,6 +543,12 @@ class RunWriter:
             )
         try:
             path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise ResultPathError(
+                f"cannot create results at {path}: the folder {path.parent} cannot be made "
+                f"({exc.strerror or exc})"
+            ) from None
+        try:
             journal = _new_journal(jpath, header, replace=force)
         except FileExistsError:
             raise OutputExists(f"{jpath} already exists (another run started?)") from None
@@ -709,7 +715,11 @@ class RunWriter:
             final["traceback"] = traceback
         if reason is not None:
             final["reason"] = reason
-        self.update_meta(**final)
+        self._check_open()
+        clean = _jsonable(final, "final metadata")
+        self._write({"kind": "meta", "items": clean})
+        self.meta.update(clean)
+        self._meta_revision += 1
         self._consolidate()
         self.close()
         self._finished = True
