@@ -165,3 +165,8 @@ def test_measure_point_flags_a_frequency_outside_the_calibration() -> None:
 def test_bad_calibration_sweeps_are_refused(freqs: list[float], ratio: list[complex]) -> None:
     with pytest.raises(AnalysisError, match="calibration"):
         ChannelCalibration.from_sweep(freqs, ratio)
+
+
+def test_a_pin_without_ripple_is_an_error_not_a_number() -> None:
+    with pytest.raises(AnalysisError, match="no ripple"):
+        rejection(_fit(0.0, 1e-5), _fit(1e-4, 1e-6))

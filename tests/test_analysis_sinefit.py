@@ -217,3 +217,27 @@ def test_bad_records_give_clear_errors() -> None:
         fit_sine(np.zeros(4), 10.0, 1.0)
     with pytest.raises(AnalysisError, match="longer record"):
         fit_sine(np.random.default_rng(0).normal(size=100), 1e6, 1e-3)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    n=st.integers(8, 5000),
+    cycles_per_sample=st.floats(0.01, 0.45),
+    t0=st.floats(-1e3, 1e3),
+    seed=st.integers(0, 2**16),
+)
+def test_block_engine_equals_lstsq_for_any_length(
+    n: int, cycles_per_sample: float, t0: float, seed: int
+) -> None:
+    """Any record length (block size √N with a ragged tail) and time origin: the O(N) fit
+    equals numpy.linalg.lstsq on the explicit design matrix."""
+    rng = np.random.default_rng(seed)
+    fs = 1.0
+    f = max(cycles_per_sample, 3.0 / n)  # at least a few cycles, so the problem is well posed
+    t = t0 + np.arange(n) / fs
+    y = rng.normal(0.0, 1.0, n) + np.cos(2 * np.pi * f * t + 0.5)
+    fit = fit_sine(y, fs, f, t0=t0)
+    d = _design(t, [f])
+    coef, *_ = np.linalg.lstsq(d, y, rcond=None)
+    assert abs(fit.phasor - complex(coef[0], -coef[1])) < 1e-8
+    assert abs(fit.offset - coef[2]) < 1e-8

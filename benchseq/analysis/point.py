@@ -171,9 +171,9 @@ def measure_point(
 
     cal_ratio, cal_u, calibrated = 1.0 + 0.0j, 0.0, False
     if calibration is not None:
-        found = calibration.lookup(f_fit)
-        if found.inside:
-            cal_ratio, cal_u, calibrated = found.ratio, found.uncertainty, True
+        cal = calibration.lookup(f_fit)
+        if cal.inside:
+            cal_ratio, cal_u, calibrated = cal.ratio, cal.uncertainty, True
         else:
             flags.append("outside_calibration")
 

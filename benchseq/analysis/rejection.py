@@ -13,6 +13,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from benchseq.analysis.errors import AnalysisError
 from benchseq.analysis.floor import DEFAULT_DETECTION_K, is_detected
 from benchseq.analysis.sinefit import SineFit
 
@@ -92,16 +93,21 @@ def rejection(
     The output's Rice bias (A² reads 2σ_c² high) is removed before converting a value
     [GUM §3.2.4: correct recognised systematic effects].
     """
+    if not pin.amplitude > 0:
+        raise AnalysisError(
+            "the pin channel shows no ripple at the test frequency: check the generator output "
+            "and the pin probe before computing rejection"
+        )
+    if not (calibration_ratio != 0 and math.isfinite(abs(calibration_ratio))):
+        raise AnalysisError(
+            f"channel calibration ratio {calibration_ratio!r} cannot be divided out"
+        )
     sigma = output.quadrature_sigma if output_sigma is None else float(output_sigma)
     gain = abs(calibration_ratio)
     pin_amp = pin.amplitude
     out_amp = output.amplitude / gain
     sigma_corr = sigma / gain
-    ratio = (
-        (output.phasor / pin.phasor) / complex(calibration_ratio)
-        if pin_amp > 0
-        else complex(math.nan, math.nan)
-    )
+    ratio = (output.phasor / pin.phasor) / complex(calibration_ratio)
     snr = out_amp / sigma_corr if sigma_corr > 0 else math.inf
     lower = (
         lower_bound_db(pin_amp, out_amp, sigma_corr, z)
