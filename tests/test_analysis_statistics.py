@@ -147,3 +147,19 @@ def test_neighbour_floor_is_unbiased_in_white_noise_and_ignores_spurs() -> None:
     assert float(np.mean(plain)) == pytest.approx(sigma_c**2, rel=0.06)
     assert float(np.mean(spurred)) == pytest.approx(sigma_c**2, rel=0.06)
     assert float(np.mean(residual)) > 10 * sigma_c**2
+
+
+def test_neighbour_floor_is_clean_of_harmonics_in_a_non_coherent_record() -> None:
+    """Harmonics 40 dB over the noise, record not a whole number of cycles: they are fitted
+    with every neighbour, so the floor still reads σ_c² = 2σ²/N (mean over records)."""
+    rng = np.random.default_rng(6)
+    fs, n, f = 10e3, 2000, 250.37
+    t = np.arange(n) / fs
+    harmonics = 0.02 * np.cos(2 * np.pi * 2 * f * t + 0.3) + 0.02 * np.cos(2 * np.pi * 3 * f * t)
+    floors = [noise_floor(harmonics + rng.normal(0, 1e-3, n), fs, f).sigma ** 2 for _ in range(150)]
+    assert float(np.mean(floors)) == pytest.approx(2 * (1e-3) ** 2 / n, rel=0.06)
+    leaky = [
+        noise_floor(harmonics + rng.normal(0, 1e-3, n), fs, f, harmonics=1).sigma ** 2
+        for _ in range(20)
+    ]
+    assert float(np.mean(leaky)) > 1.3 * 2 * (1e-3) ** 2 / n

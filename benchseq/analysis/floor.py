@@ -19,6 +19,7 @@ from benchseq.analysis.errors import AnalysisError
 from benchseq.analysis.sinefit import as_records
 
 DEFAULT_NEIGHBOURS = 10  # K: neighbours at k = 2…K bins on each side
+DEFAULT_HARMONICS = 5  # harmonics of f fitted along with each neighbour
 DEFAULT_DETECTION_K = 3.5  # detected when A > 3.5·σ_c: false alarm e^(−3.5²/2) = 0.22 %
 SKIP_BINS = 1.5  # neighbours this close (in bins) to a harmonic, DC or Nyquist are skipped
 RAYLEIGH_MEAN = math.sqrt(math.pi / 2.0)  # mean of a noise-only amplitude, in σ_c
@@ -61,8 +62,14 @@ def noise_floor(
     frequency: float,
     t0: float = 0.0,
     neighbours: int = DEFAULT_NEIGHBOURS,
+    harmonics: int = DEFAULT_HARMONICS,
 ) -> NoiseFloor:
-    """σ_c at ``frequency`` from joint fits [f, f_k, offset] at each neighbour f_k of one record."""
+    """σ_c at ``frequency`` from joint fits [f, 2f…, f_k, offset] at each neighbour f_k.
+
+    The tone at f and its harmonics up to ``harmonics`` (below Nyquist) are fitted with every
+    neighbour, so they cannot leak into it even when the record is not coherent; other
+    spurs vanish from the neighbours only in a coherent record (f = J/T).
+    """
     record = as_records(samples)
     if record.shape[0] != 1:
         raise AnalysisError("noise_floor takes one record")
@@ -74,22 +81,36 @@ def noise_floor(
             f"no neighbour frequencies around {frequency:.6g} Hz fit in a {duration:.4g} s record "
             f"at {sample_rate:.6g} Sa/s: capture more cycles"
         )
-    freqs = np.concatenate([[frequency], near])
+    nyquist = sample_rate / 2.0
+    known = [frequency] + [
+        h * frequency
+        for h in range(2, harmonics + 1)
+        if h * frequency < nyquist - SKIP_BINS / duration
+    ]
+    freqs = np.concatenate([known, near])
     x = freqs / sample_rate
     phi = _blocks.TWO_PI * np.mod(freqs * t0, 1.0)
     proj, sums, _ = _blocks.project(record, x, phi)
+    single = np.linalg.inv(_blocks.sine_gram(n, x[:1], phi[:1]))
+    at_f = single[0, 0] + single[1, 1]  # σ_c² of the single-tone fit at f, in units of s²
+    m = len(known)
     scaled = []
-    for i in range(1, freqs.size):
-        pair = np.array([0, i])
-        gram = _blocks.sine_gram(n, x[pair], phi[pair])
-        rhs = np.array(
-            [proj[0, 0].real, -proj[0, 0].imag, proj[0, i].real, -proj[0, i].imag, sums[0]]
-        )
-        inverse = np.linalg.inv(gram)
-        a, b = (inverse @ rhs)[2:4]
-        own = inverse[2, 2] + inverse[3, 3]
-        at_f = inverse[0, 0] + inverse[1, 1]
+    for i in range(m, freqs.size):
+        cols = np.array([*range(m), i])
+        gram = _blocks.sine_gram(n, x[cols], phi[cols])
+        rhs = np.empty(2 * cols.size + 1)
+        rhs[0:-1:2] = proj[0, cols].real
+        rhs[1:-1:2] = -proj[0, cols].imag
+        rhs[-1] = sums[0]
+        try:
+            inverse = np.linalg.inv(gram)
+        except np.linalg.LinAlgError:
+            continue
+        a, b = (inverse @ rhs)[2 * m : 2 * m + 2]
+        own = inverse[2 * m, 2 * m] + inverse[2 * m + 1, 2 * m + 1]
         scaled.append((a * a + b * b) * at_f / own)
+    if not scaled:
+        raise AnalysisError(f"no usable neighbour fits around {frequency:.6g} Hz")
     sigma = math.sqrt(float(np.mean(scaled)) / 2.0)
     return NoiseFloor(
         sigma=sigma,
