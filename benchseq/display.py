@@ -1,0 +1,115 @@
+"""Terminal rendering of a run (rich): progress with the planned bench time left, a live
+table of the latest points, and the closing summary. Library code never prints; the CLI
+hands ``RunDisplay.handle`` to the sequencer as its event sink."""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from typing import Any
+
+from rich.console import Console, Group
+from rich.live import Live
+from rich.markup import escape
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+from rich.table import Table
+
+from benchseq.units import format_si
+
+
+def rejection_text(row: dict[str, Any]) -> str:
+    """'62.31 dB' for a value, '≥ 91.8 dB' for a lower bound."""
+    if row.get("is_bound"):
+        return f"≥ {row['bound_db']:.1f} dB"
+    value = row.get("rejection_db", float("nan"))
+    return f"{value:.2f} dB" if math.isfinite(value) else "—"
+
+
+def duration_text(seconds: float) -> str:
+    seconds = max(0.0, float(seconds))
+    if seconds < 60:
+        return f"{seconds:.1f} s"
+    minutes, sec = divmod(round(seconds), 60)
+    if minutes < 60:
+        return f"{minutes} min {sec:02d} s"
+    hours, minutes = divmod(minutes, 60)
+    return f"{hours} h {minutes:02d} min"
+
+
+def points_table(rows: list[dict[str, Any]], title: str = "latest points") -> Table:
+    table = Table(title=title, title_justify="left", expand=False)
+    table.add_column("#", justify="right")
+    table.add_column("frequency", justify="right")
+    table.add_column("DC", justify="right")
+    table.add_column("pin ripple", justify="right")
+    table.add_column("rejection", justify="right")
+    table.add_column("± (1σ)", justify="right")
+    table.add_column("flags")
+    for row in rows:
+        pin = abs(complex(row["pin"]))
+        u = row.get("uncertainty_db", float("nan"))
+        table.add_row(
+            str(row["point_id"]),
+            format_si(row["frequency"], "Hz", 4),
+            f"{row['dc_level']:.3g} V",
+            format_si(2 * pin, "Vpp", 3),
+            rejection_text(row),
+            f"{u:.2f} dB" if math.isfinite(u) else "",
+            escape(str(row.get("flags", ""))),
+        )
+    return table
+
+
+class RunDisplay:
+    """Event sink rendering progress and the latest points."""
+
+    def __init__(
+        self, console: Console, total: int, planned_bench_time: float, keep: int = 8
+    ) -> None:
+        self.console = console
+        self.total = total
+        self.planned = planned_bench_time
+        self.latest: deque[dict[str, Any]] = deque(maxlen=keep)
+        self.bench_spent = 0.0
+        self.progress = Progress(
+            TextColumn("[bold]sweep"),
+            BarColumn(),
+            MofNCompleteColumn(),
+            TextColumn("{task.fields[left]}"),
+            console=console,
+            transient=False,
+        )
+        self.task = self.progress.add_task("sweep", total=total, left="")
+        self.live = Live(self._render(), console=console, refresh_per_second=4, transient=False)
+
+    def __enter__(self) -> RunDisplay:
+        self.live.__enter__()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.live.update(self._render())
+        self.live.__exit__(None, None, None)
+
+    def _render(self) -> Group:
+        parts: list[Any] = [self.progress]
+        if self.latest:
+            parts.append(points_table(list(self.latest)))
+        return Group(*parts)
+
+    def handle(self, event: Any) -> None:
+        if event.kind == "point_stored" and event.row is not None:
+            self.latest.append(event.row)
+            self.bench_spent += float(event.row.get("bench_time", 0.0))
+            done = event.done
+            per_point = self.planned / max(self.total, 1)
+            left = max(0.0, (self.total - done) * per_point)
+            self.progress.update(
+                self.task, completed=done, left=f"planned bench time left ≈ {duration_text(left)}"
+            )
+        elif event.kind == "point_started":
+            self.progress.update(self.task, completed=event.done)
+        elif event.kind == "warning":
+            self.live.console.print(f"[yellow]warning:[/] {escape(event.message)}")
+        elif event.kind == "state":
+            self.live.console.print(f"[dim]{escape(event.message)}[/]")
+        self.live.update(self._render())

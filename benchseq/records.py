@@ -1,0 +1,108 @@
+"""The columns of a run's table of points: one definition used by the sequencer to build
+rows, by the store to describe them (units, meaning) and by reports to read them."""
+
+from __future__ import annotations
+
+from benchseq.store import Column
+
+SCHEMA_VERSION = 1
+SIGN_CONVENTION = (
+    "ratio = V_out / V_pin (complex, peak phasors); rejection_db = 20*log10(|V_pin|/|V_out|), "
+    "positive when the device attenuates ripple"
+)
+
+POINT_COLUMNS: tuple[Column, ...] = (
+    Column("point_id", "i8", "", "index of the point in the expanded plan (run order)"),
+    Column("frequency_planned", "f8", "Hz", "injection frequency asked for by the plan"),
+    Column("frequency", "f8", "Hz", "generator frequency actually set (coherent capture)"),
+    Column(
+        "frequency_fitted",
+        "f8",
+        "Hz",
+        "frequency refined by the four-parameter fit on the pin channel",
+    ),
+    Column("ripple_target", "f8", "V", "target pin ripple, peak"),
+    Column("ripple_convention", "str", "", "convention the plan wrote the ripple in (pp, pk, rms)"),
+    Column("dc_level", "f8", "V", "DC operating point (supply set-point)"),
+    Column("load_current", "f8", "A", "electronic load current (nan without a load axis)"),
+    Column("generator_pp", "f8", "V", "generator amplitude as displayed, peak to peak"),
+    Column("pin", "c16", "V", "measured pin ripple phasor (peak)"),
+    Column("pin_sigma", "f8", "V", "standard uncertainty of the pin amplitude"),
+    Column("output", "c16", "V", "measured output ripple phasor (peak)"),
+    Column("output_sigma", "f8", "V", "standard uncertainty of the output amplitude"),
+    Column(
+        "output_floor",
+        "f8",
+        "V",
+        "noise floor at the test frequency on the output channel (per quadrature)",
+    ),
+    Column(
+        "output_noise", "f8", "V", "output channel noise, rms per sample, from the fit residual"
+    ),
+    Column("ratio", "c16", "", "V_out / V_pin, calibration applied"),
+    Column(
+        "rejection_db",
+        "f8",
+        "dB",
+        "rejection 20*log10(|V_pin|/|V_out|); nan when only a bound is known",
+    ),
+    Column("uncertainty_db", "f8", "dB", "standard uncertainty of rejection_db"),
+    Column(
+        "bound_db",
+        "f8",
+        "dB",
+        "lower bound of rejection when the output is under the floor (nan otherwise)",
+    ),
+    Column(
+        "is_bound",
+        "bool",
+        "",
+        "true when the output was not detected and only a lower bound is known",
+    ),
+    Column(
+        "pin_model",
+        "c16",
+        "V",
+        "pin ripple predicted by the injector model for the generator setting",
+    ),
+    Column("pin_model_ratio_db", "f8", "dB", "20*log10(|measured pin| / |model pin|)"),
+    Column("thd", "f8", "", "total harmonic distortion of the pin ripple (ratio, harmonics 2-5)"),
+    Column("pin_dc", "f8", "V", "DC level measured at the pin for this operating point"),
+    Column("supply_current", "f8", "A", "DC supply current read back after the capture"),
+    Column("pin_range", "f8", "V", "pin channel full-scale range at the probe tip, peak to peak"),
+    Column(
+        "output_range", "f8", "V", "output channel full-scale range at the probe tip, peak to peak"
+    ),
+    Column("sample_interval", "f8", "s", "scope sample interval"),
+    Column("record_length", "i8", "", "samples per record"),
+    Column("averages", "i8", "", "records averaged in the scope"),
+    Column("captures", "i8", "", "acquisitions made for this point (ranging, trims, extension)"),
+    Column("trims", "i8", "", "generator amplitude trims made to reach the target pin ripple"),
+    Column("bench_time", "f8", "s", "bench time spent on this point"),
+    Column("started_at", "f8", "s", "UNIX time the point started"),
+    Column("stored_at", "f8", "s", "UNIX time the point was made durable"),
+    Column("flags", "str", "", "space-separated flags (see the report's flag glossary)"),
+)
+
+TRUTH_COLUMNS: tuple[Column, ...] = (
+    Column("point_id", "i8", "", "index of the point"),
+    Column("pin", "c16", "V", "simulator's true pin ripple phasor"),
+    Column("output", "c16", "V", "simulator's true output ripple phasor"),
+    Column("rejection_db", "f8", "dB", "simulator's true rejection of the device"),
+    Column("pin_dc", "f8", "V", "simulator's true pin DC level"),
+)
+
+FLAG_TEXT: dict[str, str] = {
+    "bound": "output under the noise floor: only a lower bound of rejection is known",
+    "pin_off_target": "pin ripple stayed more than 5 % from the target after the allowed trims",
+    "model_mismatch": "measured pin ripple disagrees with the injector model beyond the plan's threshold (wiring, values, saturation?)",
+    "distorted": "the injected ripple's harmonic distortion is above the plan's threshold (slew, clipping, current limit?)",
+    "current_limit": "the DC supply reported current limiting during the point",
+    "pin_dc_out_of_limits": "the pin DC level was outside the device's limits",
+    "clipped": "a scope channel clipped even at its largest usable range",
+    "unresolved": "a channel's signal was too small for the converter to resolve",
+    "uncalibrated": "no channel-match calibration covers this frequency",
+    "target_unmet": "the capture could not reach the plan's target uncertainty within its limits",
+    "instrument_retry": "an instrument fault occurred and the point was measured again after recovery",
+    "marginal": "the feasibility check marked this point marginal",
+}

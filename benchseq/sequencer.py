@@ -1,0 +1,612 @@
+"""The run: from a validated plan and a bench session to durable points.
+
+The sequencer talks to instruments only through the role classes of a BenchSession, to the
+analysis only through benchseq.analysis, and to the disk only through a RunWriter. It never
+prints: it emits events that the CLI renders.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import traceback
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from benchseq import analysis
+from benchseq.bench import Bench
+from benchseq.errors import BenchseqError, MeasurementFailure
+from benchseq.injector import InjectorModel
+from benchseq.plan import Plan, Sweep
+from benchseq.records import POINT_COLUMNS
+from benchseq.stopping import AbandonPoint, StopControl
+
+PIN_TOLERANCE = 0.02  # relative: trim the generator when the pin ripple is further off than this
+MAX_TRIMS = 3
+MAX_RANGING = 5
+MAX_POINT_RETRIES = 2
+RANGE_FILL = 0.7  # aim the sine's peak-to-peak at this fraction of full scale
+INITIAL_REJECTION_GUESS_DB = 40.0
+QUICK_TARGET_DB = 3.0  # the ranging capture only needs to see the signal
+DEFAULT_NOISE_GUESS = 200e-6  # V rms per sample, until a capture shows the real noise
+
+
+@dataclass
+class Event:
+    """Something the CLI may show: kind is 'state', 'point_started', 'point_stored' or 'warning'."""
+
+    kind: str
+    message: str = ""
+    point_id: int | None = None
+    row: dict[str, Any] | None = None
+    done: int = 0
+    total: int = 0
+    bench_time_left: float = 0.0
+
+
+EventSink = Callable[[Event], None]
+
+
+@dataclass
+class Carry:
+    """What one point tells the next (derived only from the stored row, so a resumed run
+    makes exactly the same choices as an uninterrupted one)."""
+
+    rejection_db: float = INITIAL_REJECTION_GUESS_DB
+    output_floor: float = float("nan")
+    pin_correction: float = 1.0  # measured/model pin ripple ratio seen last
+    output_range: float = float("nan")
+    noise_sigma: float = float("nan")  # output channel noise per sample, V
+
+    @classmethod
+    def from_row(cls, row: dict[str, Any]) -> Carry:
+        rejection = row["rejection_db"] if not row["is_bound"] else row["bound_db"]
+        pin_model = abs(row["pin_model"])
+        correction = abs(row["pin"]) / pin_model if pin_model > 0 else 1.0
+        if not math.isfinite(correction) or correction <= 0:
+            correction = 1.0
+        return cls(
+            rejection_db=float(rejection)
+            if math.isfinite(rejection)
+            else INITIAL_REJECTION_GUESS_DB,
+            output_floor=float(row["output_floor"]),
+            pin_correction=float(np.clip(correction, 0.5, 2.0)),
+            output_range=float(row["output_range"]),
+            noise_sigma=float(row["output_noise"]),
+        )
+
+
+@dataclass
+class RunOutcome:
+    status: str  # complete | stopped | aborted
+    reason: str
+    measured: int
+    skipped: int
+    bounds: int
+    flagged: int
+    bench_time: float
+    safe_state: list[str] = field(default_factory=list)
+
+
+class Sequencer:
+    """Runs one plan on one bench session, storing each point through ``writer``."""
+
+    def __init__(
+        self,
+        plan: Plan,
+        bench: Bench,
+        session: Any,
+        writer: Any,
+        emit: EventSink | None = None,
+        stop: StopControl | None = None,
+        keep_waveforms: bool = False,
+        seed: int = 0,
+    ) -> None:
+        self.plan = plan
+        self.bench = bench
+        self.session = session
+        self.writer = writer
+        self.emit = emit or (lambda event: None)
+        self.stop = stop or StopControl()
+        self.keep_waveforms = keep_waveforms
+        self.seed = seed
+        self.model = InjectorModel(bench.injector, bench.generator, bench.pin)
+        self.corners = self.model.corners()
+        self.sweep: Sweep = plan.expand()
+        self._dc_now: float | None = None
+        self._load_now: float | None = None
+        self._generator_on = False
+        self._freq_now: float | None = None
+        self._pin_dc = float("nan")
+        self.calibration: analysis.ChannelCalibration | None = None
+
+    # -- the whole run ---------------------------------------------------------------
+    def run(self) -> RunOutcome:
+        stored = set(self.writer.stored_ids)
+        total = len(self.sweep)
+        todo = [i for i in range(total) if int(self.sweep.index[i]) not in stored]
+        carry = self._carry_from_store(stored)
+        counts = {"measured": 0, "bounds": 0, "flagged": 0}
+        status, reason = "complete", "all points stored"
+        bench_start = self.session.clock.now()
+        self.writer.update_meta(status="running")
+        try:
+            if todo:
+                self._power_up(todo[0])
+            for position, i in enumerate(todo):
+                if self.stop.stop_requested:
+                    status, reason = "stopped", self.stop.reason
+                    break
+                row = self._measure_with_retries(i, carry, done=len(stored) + position, total=total)
+                self.writer.append(int(row["point_id"]), row)
+                carry = Carry.from_row(row)
+                counts["measured"] += 1
+                counts["bounds"] += int(bool(row["is_bound"]))
+                counts["flagged"] += int(bool(row["flags"]))
+                self.emit(
+                    Event(
+                        "point_stored",
+                        point_id=int(row["point_id"]),
+                        row=row,
+                        done=len(stored) + position + 1,
+                        total=total,
+                    )
+                )
+                self._check_stop_rules(row)
+        except AbandonPoint as exc:
+            status, reason = "stopped", f"{exc}; point in progress abandoned"
+        except _StopRun as exc:
+            status, reason = "stopped", str(exc)
+        except BenchseqError as exc:
+            status, reason = "aborted", str(exc)
+            self._last_traceback = traceback.format_exc()
+        except Exception as exc:  # an unexpected fault: keep its traceback in the file
+            status, reason = "aborted", f"unexpected error: {exc!r}"
+            self._last_traceback = traceback.format_exc()
+        finally:
+            with self.stop.shielded():
+                steps = self._safe_state()
+        bench_time = self.session.clock.now() - bench_start
+        self.writer.finish(status, traceback=getattr(self, "_last_traceback", None), reason=reason)
+        self.emit(Event("state", f"run {status}: {reason}"))
+        return RunOutcome(
+            status,
+            reason,
+            counts["measured"],
+            total - len(todo),
+            counts["bounds"],
+            counts["flagged"],
+            bench_time,
+            steps,
+        )
+
+    def _carry_from_store(self, stored: set[int]) -> Carry:
+        if not stored:
+            return Carry()
+        last = self.writer.last_row()
+        return Carry.from_row(last) if last is not None else Carry()
+
+    # -- power-up and operating point -------------------------------------------------
+    def _power_up(self, first: int) -> None:
+        s = self.session
+        self.emit(Event("state", "setting limits: generator off, supply limits and protection"))
+        s.generator.output(False)
+        self._generator_on = False
+        if s.load is not None:
+            s.load.input(False)
+        s.generator.set_load_mode(self.bench.generator.load_mode)
+        s.supply.set_current_limit(self.bench.supply.current_limit)
+        s.supply.set_overvoltage_protection(self.bench.supply.overvoltage_protection)
+        s.supply.set_voltage(0.0)
+        s.supply.output(True)
+        self._dc_now = 0.0
+        s.scope.trigger_external()
+        self._set_operating_point(first)
+
+    def _set_operating_point(self, i: int) -> None:
+        dc = float(self.sweep.dc_level[i])
+        load = float(self.sweep.load_current[i])
+        s = self.session
+        if self._dc_now is None or abs(dc - self._dc_now) > 1e-9:
+            self._ramp_supply(dc)
+        if math.isfinite(load) and s.load is not None and load != self._load_now:
+            s.load.set_current(load)
+            s.load.input(True)
+            self._load_now = load
+        if self._pin_dc != self._pin_dc or abs(dc - (self._dc_checked_at or -1)) > 1e-9:
+            self._pin_dc = self._check_pin_dc(dc)
+
+    _dc_checked_at: float | None = None
+
+    def _ramp_supply(self, target: float) -> None:
+        s = self.session
+        start = self._dc_now or 0.0
+        rate = self.bench.supply.ramp_rate
+        steps = max(1, math.ceil(abs(target - start) / (rate * 0.1)))
+        self.emit(Event("state", f"ramping DC from {start:.3f} V to {target:.3f} V"))
+        for k in range(1, steps + 1):
+            s.supply.set_voltage(start + (target - start) * k / steps)
+            s.clock.sleep(abs(target - start) / rate / steps)
+        self._dc_now = target
+        # the bias filter follows with its own time constant
+        s.clock.sleep(7.0 * self.bench.injector.bias_resistor * self.bench.injector.bias_capacitor)
+
+    def _check_pin_dc(self, dc: float) -> float:
+        """Measure the pin's DC level with the pin channel briefly DC-coupled."""
+        scope = self.session.scope
+        pin = self.bench.scope.pin
+        ranges = np.asarray(scope.capabilities.ranges) * pin.probe
+        fitting = ranges[ranges >= 2.4 * max(dc, 0.1)]
+        full_scale = float(fitting[0] if fitting.size else ranges[-1])
+        scope.configure_channel(
+            pin.channel, full_scale, 0.0, "DC", self.bench.scope.bandwidth_limit
+        )
+        interval, length = scope.set_timebase(1e-4, 1000)
+        scope.set_averages(1)
+        scope.acquire(length * interval)
+        level = float(np.mean(scope.read_waveform(pin.channel).volts()))
+        scope.configure_channel(
+            pin.channel, full_scale, 0.0, pin.coupling, self.bench.scope.bandwidth_limit
+        )
+        self._dc_checked_at = dc
+        limits = self.plan.device
+        if not (limits.min_operating_v - 0.05 <= level <= limits.absolute_max_v):
+            self._watch(
+                "pin_dc",
+                f"pin DC {level:.3f} V is outside the device limits "
+                f"{limits.min_operating_v:g}–{limits.absolute_max_v:g} V",
+            )
+        return level
+
+    # -- one point ----------------------------------------------------------------------
+    def _measure_with_retries(self, i: int, carry: Carry, done: int, total: int) -> dict[str, Any]:
+        from benchseq.drivers.errors import InstrumentError
+
+        attempt = 0
+        while True:
+            try:
+                row = self._measure_point(i, carry, done, total)
+                if attempt:
+                    row["flags"] = " ".join(filter(None, [row["flags"], "instrument_retry"]))
+                return row
+            except InstrumentError as exc:
+                attempt += 1
+                if attempt > MAX_POINT_RETRIES:
+                    raise MeasurementFailure(
+                        f"point {int(self.sweep.index[i])}: instrument fault persists after "
+                        f"{MAX_POINT_RETRIES} recoveries: {exc}"
+                    ) from exc
+                self.emit(Event("warning", f"instrument fault, recovering: {exc}"))
+                self.session.recover()
+                self._freq_now = None
+
+    def _measure_point(self, i: int, carry: Carry, done: int, total: int) -> dict[str, Any]:
+        s = self.session
+        clock = s.clock
+        point_id = int(self.sweep.index[i])
+        frequency = float(self.sweep.frequency[i])
+        target = float(self.sweep.ripple_peak[i])
+        started_at, bench_start = _unix(), clock.now()
+        self.emit(Event("point_started", point_id=point_id, done=done, total=total))
+        self._set_operating_point(i)
+
+        # generator: the model's setting, corrected by what the last point showed
+        setting_pp = (
+            float(self.model.generator_setting_pp(frequency, target)) / carry.pin_correction
+        )
+        actual_pp = s.generator.set_amplitude_pp(self._clamp_generator(setting_pp))
+        actual_frequency = s.generator.set_frequency(frequency)
+        if not self._generator_on:
+            s.generator.output(True)
+            self._generator_on = True
+        settle = (
+            self.plan.settle.fixed_s
+            + self.plan.settle.time_constants * self.corners.slowest_time_constant_s
+        )
+        clock.sleep(settle)
+
+        # a quick capture to range both channels and see the noise
+        expected_out = target * 10 ** (-carry.rejection_db / 20.0)
+        noise = carry.noise_sigma if math.isfinite(carry.noise_sigma) else None
+        quick = self._plan_capture(
+            actual_frequency, target, expected_out, noise, target_db=QUICK_TARGET_DB
+        )
+        pin_range = self._range_for(self.bench.scope.pin, target)
+        out_range = (
+            carry.output_range
+            if math.isfinite(carry.output_range)
+            else self._range_for(self.bench.scope.output, expected_out, noise or 0.0)
+        )
+        flags: list[str] = []
+        pin_range, out_range, result, captures = self._capture_ranged(
+            quick, actual_frequency, pin_range, out_range, flags
+        )
+
+        # the real capture: least bench time for the target uncertainty, coherent
+        plan = self._plan_capture(
+            actual_frequency,
+            max(result.pin.amplitude, target * 0.1),
+            max(result.output.amplitude, result.output_floor),
+            max(result.output.residual_rms, 1e-9),
+        )
+        actual_frequency = s.generator.set_frequency(plan.frequency)
+        trims = 0
+        while True:
+            pin_range, out_range, result, used = self._capture_ranged(
+                plan, actual_frequency, pin_range, out_range, flags
+            )
+            captures += used
+            measured_pin = result.pin.amplitude
+            if (
+                abs(measured_pin / target - 1.0) <= PIN_TOLERANCE
+                or trims >= MAX_TRIMS
+                or measured_pin <= 0
+            ):
+                break
+            trims += 1
+            actual_pp = s.generator.set_amplitude_pp(
+                self._clamp_generator(actual_pp * target / measured_pin)
+            )
+            clock.sleep(self.plan.settle.fixed_s + 3.0 * self.corners.coupling_time_constant_s)
+
+        if result.rejection.is_bound:
+            longer = self._longer_capture(plan, result)
+            if longer is not None:
+                actual_frequency = s.generator.set_frequency(longer.frequency)
+                pin_range, out_range, result, used = self._capture_ranged(
+                    longer, actual_frequency, pin_range, out_range, flags
+                )
+                captures += used
+                plan = longer
+        if abs(result.pin.amplitude / target - 1.0) > 0.05:
+            flags.append("pin_off_target")
+
+        pin_model = complex(self.model.pin_per_displayed(actual_frequency)) * actual_pp / 2.0
+        model_ratio_db = (
+            20 * math.log10(result.pin.amplitude / abs(pin_model))
+            if abs(pin_model) > 0 and result.pin.amplitude > 0
+            else float("nan")
+        )
+        if (
+            math.isfinite(model_ratio_db)
+            and abs(model_ratio_db) > self.plan.watch.model_mismatch_db
+        ):
+            flags.append("model_mismatch")
+        if math.isfinite(result.thd) and result.thd > self.plan.watch.distortion:
+            flags.append("distorted")
+        supply_current = float(s.supply.measure_current())
+        if s.supply.is_current_limited():
+            flags.append("current_limit")
+        limits = self.plan.device
+        if not (limits.min_operating_v - 0.05 <= self._pin_dc <= limits.absolute_max_v):
+            flags.append("pin_dc_out_of_limits")
+        if result.rejection.is_bound:
+            flags.append("bound")
+        if not plan.meets_target:
+            flags.append("target_unmet")
+        flags.extend(result.flags)
+
+        rej = result.rejection
+        row: dict[str, Any] = {
+            "point_id": point_id,
+            "frequency_planned": frequency,
+            "frequency": actual_frequency,
+            "frequency_fitted": result.frequency,
+            "ripple_target": target,
+            "ripple_convention": self.sweep.ripple_convention[i],
+            "dc_level": float(self.sweep.dc_level[i]),
+            "load_current": float(self.sweep.load_current[i]),
+            "generator_pp": actual_pp,
+            "pin": result.pin.phasor,
+            "pin_sigma": result.pin.amplitude_sigma,
+            "output": result.output.phasor,
+            "output_sigma": result.output.amplitude_sigma,
+            "output_floor": result.output_floor,
+            "output_noise": result.output.residual_rms,
+            "ratio": rej.ratio,
+            "rejection_db": rej.rejection_db if not rej.is_bound else float("nan"),
+            "uncertainty_db": rej.uncertainty_db if not rej.is_bound else float("nan"),
+            "bound_db": rej.bound_db if rej.is_bound else float("nan"),
+            "is_bound": bool(rej.is_bound),
+            "pin_model": pin_model,
+            "pin_model_ratio_db": model_ratio_db,
+            "thd": result.thd,
+            "pin_dc": self._pin_dc,
+            "supply_current": supply_current,
+            "pin_range": pin_range,
+            "output_range": out_range,
+            "sample_interval": plan.sample_interval,
+            "record_length": plan.record_length,
+            "averages": plan.averages,
+            "captures": captures,
+            "trims": trims,
+            "bench_time": clock.now() - bench_start,
+            "started_at": started_at,
+            "stored_at": _unix(),
+            "flags": " ".join(dict.fromkeys(flags)),
+        }
+        return row
+
+    # -- generator, ranging and capture -------------------------------------------------
+    def _clamp_generator(self, amplitude_pp: float) -> float:
+        g = self.bench.generator
+        return float(min(max(amplitude_pp, g.min_amplitude_pp), g.max_amplitude_pp))
+
+    def _tip_ranges(self, channel: Any) -> list[float]:
+        return [float(r) * channel.probe for r in self.session.scope.capabilities.ranges]
+
+    def _range_for(self, channel: Any, amplitude: float, noise: float = 0.0) -> float:
+        """Smallest range holding the sine (and 4σ of noise) at RANGE_FILL of full scale."""
+        needed = 2.0 * (amplitude + 4.0 * noise)
+        return analysis.suggest_range(needed, self._tip_ranges(channel), RANGE_FILL)
+
+    def _plan_capture(
+        self,
+        frequency: float,
+        pin: float,
+        output: float,
+        noise: float | None,
+        target_db: float | None = None,
+    ) -> analysis.CapturePlan:
+        rules = self.plan.capture
+        sigma = noise if noise is not None and noise > 0 else DEFAULT_NOISE_GUESS
+        return analysis.plan_capture(
+            self.session.scope.capabilities,
+            frequency,
+            max(pin, 1e-12),
+            max(output, sigma * 0.1, 1e-12),
+            target_db if target_db is not None else rules.target_uncertainty_db,
+            min_cycles=rules.min_cycles,
+            max_time_s=rules.max_time_s,
+            noise_sigma=sigma,
+        )
+
+    def _acquire(
+        self, plan: analysis.CapturePlan, pin_range: float, out_range: float
+    ) -> tuple[Any, Any]:
+        """One capture of both channels per ``plan``; returns (pin, output) as (volts, codes)."""
+        scope = self.session.scope
+        pin_ch, out_ch = self.bench.scope.pin, self.bench.scope.output
+        bandwidth = self.bench.scope.bandwidth_limit
+        scope.configure_channel(pin_ch.channel, pin_range, 0.0, pin_ch.coupling, bandwidth)
+        scope.configure_channel(out_ch.channel, out_range, 0.0, out_ch.coupling, bandwidth)
+        interval, length = scope.set_timebase(plan.sample_interval, plan.record_length)
+        scope.set_averages(plan.averages)
+        pins, outs = [], []
+        for _ in range(plan.records):
+            scope.acquire(plan.averages * (length * interval + scope.capabilities.rearm_time))
+            pins.append(scope.read_waveform(pin_ch.channel))
+            outs.append(scope.read_waveform(out_ch.channel))
+        return pins, outs, interval
+
+    def _capture_ranged(
+        self,
+        plan: analysis.CapturePlan,
+        frequency: float,
+        pin_range: float,
+        out_range: float,
+        flags: list[str],
+    ) -> tuple[float, float, analysis.PointMeasurement, int]:
+        """Capture, re-ranging a channel that clipped or wasted codes (bounded tries)."""
+        used = 0
+        pin_ch, out_ch = self.bench.scope.pin, self.bench.scope.output
+        pin_ranges, out_ranges = self._tip_ranges(pin_ch), self._tip_ranges(out_ch)
+        while True:
+            pins, outs, interval = self._acquire(plan, pin_range, out_range)
+            used += 1
+            result = analysis.measure_point(
+                np.vstack([w.volts() for w in pins]),
+                np.vstack([w.volts() for w in outs]),
+                interval,
+                frequency,
+                pin_codes=_codes(pins[-1], pin_range, pin_ranges),
+                out_codes=_codes(outs[-1], out_range, out_ranges),
+                calibration=self.calibration,
+            )
+            new_pin = self._next_range(
+                result.pin_codes, pin_range, pin_ranges, result.pin.amplitude, 0.0
+            )
+            new_out = self._next_range(
+                result.output_codes,
+                out_range,
+                out_ranges,
+                result.output.amplitude,
+                result.output.residual_rms,
+            )
+            if (new_pin == pin_range and new_out == out_range) or used >= MAX_RANGING:
+                if used >= MAX_RANGING and "clipped_pin" in result.flags + tuple(flags):
+                    flags.append("clipped")
+                return pin_range, out_range, result, used
+            pin_range, out_range = new_pin, new_out
+
+    @staticmethod
+    def _next_range(
+        check: Any, present: float, ranges: list[float], amplitude: float, noise: float
+    ) -> float:
+        if check is None:
+            return present
+        verdict = check.verdict
+        if verdict is analysis.RangeVerdict.CLIPPED:
+            bigger = [r for r in ranges if r > present]
+            suggested = check.suggested_range or (bigger[0] if bigger else present)
+            return max(suggested, bigger[0] if bigger else present)
+        if verdict in (analysis.RangeVerdict.UNRESOLVED, analysis.RangeVerdict.TOO_SMALL):
+            wanted = analysis.suggest_range(2.0 * (amplitude + 4.0 * noise), ranges, RANGE_FILL)
+            return min(wanted, present)
+        return present
+
+    def _longer_capture(
+        self, plan: analysis.CapturePlan, result: analysis.PointMeasurement
+    ) -> analysis.CapturePlan | None:
+        """A longer capture that could still resolve an undetected output, within the plan's limits."""
+        rules = self.plan.capture
+        if plan.bench_time >= 0.5 * rules.max_time_s:
+            return None
+        # aim at resolving an output at a third of the present bound's level
+        guess = max(result.output_floor, 1e-12)
+        longer = self._plan_capture(
+            plan.frequency, result.pin.amplitude, guess, result.output.residual_rms, target_db=0.5
+        )
+        if longer.bench_time <= plan.bench_time * 1.5:
+            return None
+        return longer
+
+    # -- watching ------------------------------------------------------------------------
+    def _watch(self, rule: str, message: str) -> None:
+        action = self.plan.watch.action(rule)
+        self.emit(Event("warning", message))
+        if action == "stop":
+            raise _StopRun(message)
+
+    def _check_stop_rules(self, row: dict[str, Any]) -> None:
+        flags = set(str(row["flags"]).split())
+        for flag, rule in (
+            ("current_limit", "current_limit"),
+            ("distorted", "distortion"),
+            ("model_mismatch", "model_mismatch"),
+            ("pin_dc_out_of_limits", "pin_dc"),
+        ):
+            if flag in flags and self.plan.watch.action(rule) == "stop":
+                raise _StopRun(
+                    f"point {row['point_id']}: {flag.replace('_', ' ')} (plan says stop)"
+                )
+
+    # -- safe state ----------------------------------------------------------------------
+    def _safe_state(self) -> list[str]:
+        self.emit(
+            Event(
+                "state",
+                "going to the safe state: generator off, load off, supply to its safe level",
+            )
+        )
+        try:
+            steps = self.session.safe_state()
+        except Exception as exc:  # never let the safe state itself raise past the run
+            steps = [f"safe state incomplete: {exc}"]
+            self.emit(Event("warning", steps[0]))
+        return list(steps)
+
+
+class _StopRun(Exception):
+    """A watch rule asked the run to stop safely."""
+
+
+COLUMN_NAMES = tuple(c.name for c in POINT_COLUMNS)
+
+
+def _codes(waveform: Any, full_scale: float, ranges: list[float]) -> analysis.ChannelCodes:
+    return analysis.ChannelCodes(
+        codes=np.asarray(waveform.codes),
+        code_min=int(waveform.code_min),
+        code_max=int(waveform.code_max),
+        volts_per_code=float(waveform.volts_per_code * waveform.probe),
+        full_scale=full_scale,
+        ranges=ranges,
+    )
+
+
+def _unix() -> float:
+    return time.time()
