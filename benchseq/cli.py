@@ -90,7 +90,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     def emit(event: Any) -> None:
         display = state.get("display")
         if display is None:
-            display = RunDisplay(console, event.total or 0, state.get("planned", 0.0))
+            display = RunDisplay(console, event.total or 0, event.bench_time_left, event.done)
             display.__enter__()
             state["display"] = display
         display.handle(event)

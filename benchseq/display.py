@@ -64,11 +64,11 @@ class RunDisplay:
     """Event sink rendering progress and the latest points."""
 
     def __init__(
-        self, console: Console, total: int, planned_bench_time: float, keep: int = 8
+        self, console: Console, total: int, bench_time_left: float, done: int = 0, keep: int = 8
     ) -> None:
         self.console = console
         self.total = total
-        self.planned = planned_bench_time
+        self.per_point = bench_time_left / max(total - done, 1)
         self.latest: deque[dict[str, Any]] = deque(maxlen=keep)
         self.bench_spent = 0.0
         self.progress = Progress(
@@ -79,7 +79,12 @@ class RunDisplay:
             console=console,
             transient=False,
         )
-        self.task = self.progress.add_task("sweep", total=total, left="")
+        self.task = self.progress.add_task(
+            "sweep",
+            total=total,
+            completed=done,
+            left=f"planned bench time ≈ {duration_text(bench_time_left)}",
+        )
         self.live = Live(self._render(), console=console, refresh_per_second=4, transient=False)
 
     def __enter__(self) -> RunDisplay:
@@ -101,8 +106,7 @@ class RunDisplay:
             self.latest.append(event.row)
             self.bench_spent += float(event.row.get("bench_time", 0.0))
             done = event.done
-            per_point = self.planned / max(self.total, 1)
-            left = max(0.0, (self.total - done) * per_point)
+            left = max(0.0, (self.total - done) * self.per_point)
             self.progress.update(
                 self.task, completed=done, left=f"planned bench time left ≈ {duration_text(left)}"
             )

@@ -119,6 +119,7 @@ def start_run(
             stop=stop,
             keep_waveforms=keep_waveforms,
             seed=seed,
+            planned_bench_time=report.estimated_time_s,
         )
         return sequencer.run(), path
     finally:
@@ -156,7 +157,7 @@ def resume_run(
             f"{bench_path} is not the bench this run was started with ({path}); "
             "resume without --bench to use the stored bench"
         )
-    _refuse_infeasible(plan, bench)
+    report = _refuse_infeasible(plan, bench)
     writer = RunWriter.resume(path)
     seed = int(meta.get("seed", 0))
     session = open_session(bench, seed=seed, faults=faults)
@@ -170,6 +171,7 @@ def resume_run(
             stop=stop,
             keep_waveforms=bool(meta.get("keep_waveforms", False)),
             seed=seed,
+            planned_bench_time=report.estimated_time_s,
         )
         return sequencer.run(), path
     finally:

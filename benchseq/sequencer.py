@@ -104,6 +104,7 @@ class Sequencer:
         stop: StopControl | None = None,
         keep_waveforms: bool = False,
         seed: int = 0,
+        planned_bench_time: float = 0.0,
     ) -> None:
         self.plan = plan
         self.bench = bench
@@ -113,6 +114,7 @@ class Sequencer:
         self.stop = stop or StopControl()
         self.keep_waveforms = keep_waveforms
         self.seed = seed
+        self.planned_bench_time = planned_bench_time
         self.model = InjectorModel(bench.injector, bench.generator, bench.pin)
         self.corners = self.model.corners()
         self.sweep: Sweep = plan.expand()
@@ -133,6 +135,15 @@ class Sequencer:
         status, reason = "complete", "all points stored"
         bench_start = self.session.clock.now()
         self.writer.update_meta(status="running")
+        self.emit(
+            Event(
+                "state",
+                f"{len(todo)} of {total} points to measure",
+                done=total - len(todo),
+                total=total,
+                bench_time_left=self.planned_bench_time * len(todo) / max(total, 1),
+            )
+        )
         try:
             if todo:
                 self._power_up(todo[0])
