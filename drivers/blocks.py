@@ -71,14 +71,22 @@ def parse_block(data: bytes, resource: str = "", command: str = "") -> bytes:
     return payload
 
 
-def decode_samples(payload: bytes, dtype: str = "int8", big_endian: bool = False) -> np.ndarray:
+def decode_samples(
+    payload: bytes,
+    dtype: str = "int8",
+    big_endian: bool = False,
+    resource: str = "",
+    command: str = "",
+) -> np.ndarray:
     """Samples from a block payload: int8, uint8, int16 or uint16 (byte order for 16-bit)."""
+    if dtype not in DTYPES:
+        raise ValueError(f"sample type must be one of {', '.join(DTYPES)}, not {dtype!r}")
     code = DTYPES[dtype]
     if code[1] == "2":
         code = (">" if big_endian else "<") + code
     item = np.dtype(code).itemsize
     if len(payload) % item:
         raise TruncatedBlock(
-            "", "", f"{len(payload)} bytes is not a whole number of {dtype} samples"
+            resource, command, f"{len(payload)} bytes is not a whole number of {dtype} samples"
         )
     return np.frombuffer(payload, dtype=code)

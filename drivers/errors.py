@@ -45,3 +45,7 @@ class InstrumentReportedError(InstrumentError):
         self.code = code
         self.message = message
         super().__init__(resource, command, f"instrument error {code}, {message!r}")
+
+
+class StateNotRestored(InstrumentError):
+    """After a reconnect, a setting read back differently from what had been set."""

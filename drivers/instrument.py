@@ -1,0 +1,312 @@
+"""What every role class shares: settings that are checked and remembered, queries that
+are retried, and recovery that restores the instrument's whole known state.
+
+Rules (FIELD.md, "pitfalls of unattended sweeps", and the planning experiments):
+- after each configuration step the error queue is drained (SYST:ERR? until code 0); an
+  entry raises InstrumentReportedError naming the instrument, the command and the error;
+- a read-only query is retried a few times with growing pauses after a timeout or a
+  garbled reply;
+- a setting is never blindly sent again after an ambiguous failure (timeout, lost
+  connection): the connection is renewed, the whole known state is applied again in the
+  order it was first set, each item is read back and compared, and only then does the
+  call return.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any, ClassVar
+
+from benchseq.bench import InstrumentSpec
+from benchseq.drivers.errors import (
+    ConnectionLost,
+    GarbledReply,
+    InstrumentError,
+    InstrumentReportedError,
+    InstrumentTimeout,
+    StateNotRestored,
+    TruncatedBlock,
+)
+from benchseq.drivers.profile import Profile
+from benchseq.drivers.transport import Transport
+
+QUERY_ATTEMPTS = 3
+BACKOFF_S = (0.05, 0.2, 0.5)
+MAX_ERROR_ENTRIES = 20  # an error queue that never empties is itself a fault
+AMBIGUOUS = (InstrumentTimeout, ConnectionLost, GarbledReply, TruncatedBlock)
+
+
+@dataclass(frozen=True)
+class Setting:
+    """One remembered setting: the message sent and, if it can be read back, how."""
+
+    command: str
+    query: str | None = None
+    expected: Any = None  # parsed read-back value (float, bool, int or upper-case word)
+    parse: Callable[[str, str, str], Any] | None = None  # how the read-back is parsed
+
+
+def parse_float(text: str, resource: str, command: str) -> float:
+    """A number from a reply; anything else is a garbled reply."""
+    try:
+        value = float(text.strip().split(",")[0])
+    except ValueError:
+        raise GarbledReply(resource, command, "expected a number", text) from None
+    if math.isnan(value):
+        raise GarbledReply(resource, command, "expected a number", text)
+    return value
+
+
+def parse_bool(text: str, resource: str, command: str) -> bool:
+    word = text.strip().upper()
+    if word in ("1", "ON", "+1"):
+        return True
+    if word in ("0", "OFF", "+0"):
+        return False
+    raise GarbledReply(resource, command, "expected 1/0 or ON/OFF", text)
+
+
+def parse_int(text: str, resource: str, command: str) -> int:
+    value = parse_float(text, resource, command)
+    if not math.isfinite(value) or value != int(value):
+        raise GarbledReply(resource, command, "expected a whole number", text)
+    return int(value)
+
+
+def parse_word(text: str, resource: str, command: str) -> str:
+    word = text.strip().strip('"').upper()
+    if not word:
+        raise GarbledReply(resource, command, "empty reply", text)
+    return word
+
+
+def _same(expected: Any, actual: Any) -> bool:
+    if isinstance(expected, float):
+        return math.isclose(expected, actual, rel_tol=1e-6, abs_tol=1e-12)
+    if isinstance(expected, str):
+        return str(actual).startswith(expected) or expected.startswith(str(actual))
+    return bool(expected == actual)
+
+
+class Instrument:
+    """Base of the role classes. ``sleep`` pauses between retries (a virtual clock's sleep on
+    the simulated bench)."""
+
+    role: ClassVar[str] = ""
+
+    def __init__(
+        self,
+        profile: Profile,
+        transport: Transport,
+        spec: InstrumentSpec,
+        *,
+        sleep: Callable[[float], None] = time.sleep,
+    ) -> None:
+        if self.role and profile.role != self.role:
+            raise ValueError(f"{profile.source} is a {profile.role} profile, not a {self.role} one")
+        self.profile = profile
+        self.transport = transport
+        self.spec = spec
+        self.channel = spec.channel
+        self._sleep = sleep
+        self._state: dict[str, Setting] = {}
+
+    @property
+    def resource(self) -> str:
+        return self.transport.resource
+
+    @property
+    def known_state(self) -> list[Setting]:
+        """The settings in the order they were (last) made; what restore() applies."""
+        return list(self._state.values())
+
+    def known_state_items(self) -> list[tuple[str, Setting]]:
+        return list(self._state.items())
+
+    def adopt(self, items: list[tuple[str, Setting]]) -> None:
+        """Take over settings made through another connection (e.g. the safe state), so a
+        later restore() does not undo them."""
+        for slot, setting in items:
+            self._state.pop(slot, None)
+            self._state[slot] = setting
+
+    def cmd(self, key: str, value: Any = None, ch: int | None = None) -> str:
+        return self.profile.command(key, ch=self.channel if ch is None else ch, value=value)
+
+    # -- common commands ----------------------------------------------------------------
+    def identify(self) -> str:
+        """The *IDN? reply (manufacturer, model, serial, firmware)."""
+        return self.ask_text(self.profile.io.identify)
+
+    def clear_status(self) -> None:
+        """*CLS, then check the queue is empty."""
+        self.transport.write(self.profile.io.clear_status)
+        self.drain_errors(self.profile.io.clear_status)
+
+    def wait_complete(self, timeout_s: float | None = None) -> None:
+        """*OPC? with ``timeout_s`` (s) for this one query; the reply must be 1."""
+        command = self.profile.io.operation_complete
+        saved = self.transport.timeout_s
+        if timeout_s is not None:
+            self.transport.timeout_s = max(saved, timeout_s)
+        try:
+            reply = self.transport.query(command)
+        finally:
+            self.transport.timeout_s = saved
+        if reply.strip() not in ("1", "+1"):
+            raise GarbledReply(self.resource, command, "expected 1", reply)
+
+    def drain_errors(self, after: str) -> None:
+        """Read the error queue until it is empty; raise for the first entry found."""
+        command = self.profile.io.error_query
+        first: tuple[int, str] | None = None
+        for _ in range(MAX_ERROR_ENTRIES):
+            reply = self.transport.query(command)
+            code, message = parse_error_entry(reply, self.resource, command)
+            if code == 0:
+                break
+            if first is None:
+                first = (code, message)
+        else:
+            raise InstrumentError(
+                self.resource,
+                command,
+                f"error queue still not empty after {MAX_ERROR_ENTRIES} reads",
+            )
+        if first is not None:
+            raise InstrumentReportedError(self.resource, after, first[0], first[1])
+
+    # -- settings ------------------------------------------------------------------------
+    def configure(
+        self,
+        key: str,
+        value: Any = None,
+        *,
+        slot: str | None = None,
+        query_key: str | None = None,
+        parse: Callable[[str, str, str], Any] = parse_float,
+        remember: bool = True,
+        ch: int | None = None,
+    ) -> Any:
+        """Send setting ``key`` (a profile command), check the error queue, read it back.
+
+        Returns the read-back value (parsed by ``parse``) when ``query_key`` is given and the
+        profile has it, else None. ``slot`` names what the setting controls (settings
+        sharing a slot replace each other, e.g. output on/off).
+        """
+        command = self.cmd(key, value, ch)
+        query = self.cmd(query_key, ch=ch) if query_key and self.profile.has(query_key) else None
+        slot = slot or key
+        previous = self._state.pop(slot, None)
+        if remember:
+            self._state[slot] = Setting(command, query, None, parse)
+        try:
+            return self._apply(slot, command, query, parse, remember)
+        except InstrumentReportedError:
+            # The instrument refused it: the old setting still stands.
+            self._state.pop(slot, None)
+            if previous is not None:
+                self._state[slot] = previous
+            raise
+        except AMBIGUOUS:
+            if not remember:
+                raise
+            # Did it take effect? Unknown: renew the connection, apply and verify everything.
+            self.recover()
+            setting = self._state[slot]
+            return setting.expected if setting.query else None
+
+    def _apply(
+        self,
+        slot: str,
+        command: str,
+        query: str | None,
+        parse: Callable[[str, str, str], Any],
+        remember: bool,
+    ) -> Any:
+        self.transport.write(command)
+        self.drain_errors(command)
+        if query is None:
+            return None
+        actual = parse(self.transport.query(query), self.resource, query)
+        if remember:
+            self._state[slot] = Setting(command, query, actual, parse)
+        return actual
+
+    def recover(self) -> None:
+        """Renew the connection and restore the whole known state, verified."""
+        self.transport.reconnect()
+        self.restore()
+
+    def restore(self) -> None:
+        """Apply every remembered setting again in order; read back and compare each one."""
+        for slot, setting in list(self._state.items()):
+            self.transport.write(setting.command)
+            self.drain_errors(setting.command)
+            if setting.query is None:
+                continue
+            reply = self.transport.query(setting.query)
+            parse = setting.parse or parse_float
+            actual = parse(reply, self.resource, setting.query)
+            if setting.expected is None:  # never read back before: this is the first reading
+                self._state[slot] = Setting(setting.command, setting.query, actual, parse)
+            elif not _same(setting.expected, actual):
+                raise StateNotRestored(
+                    self.resource,
+                    setting.query,
+                    f"{slot} reads back {actual!r} after recovery, expected {setting.expected!r}",
+                    reply,
+                )
+
+    # -- queries ------------------------------------------------------------------------
+    def ask_text(self, command: str) -> str:
+        """A read-only query, retried with back-off after a timeout or a garbled reply."""
+        last: InstrumentError | None = None
+        for attempt in range(QUERY_ATTEMPTS):
+            try:
+                return self.transport.query(command)
+            except ConnectionLost as exc:
+                last = exc
+                self._sleep(BACKOFF_S[min(attempt, len(BACKOFF_S) - 1)])
+                try:
+                    self.recover()
+                except InstrumentError as again:
+                    last = again
+            except (InstrumentTimeout, GarbledReply, TruncatedBlock) as exc:
+                last = exc
+                self._sleep(BACKOFF_S[min(attempt, len(BACKOFF_S) - 1)])
+                try:
+                    self.transport.clear()
+                except InstrumentError as again:
+                    last = again
+        assert last is not None
+        raise last
+
+    def ask(
+        self, key: str, parse: Callable[[str, str, str], Any] = parse_float, ch: int | None = None
+    ) -> Any:
+        """Query profile command ``key`` (read-only, retried) and parse its reply."""
+        command = self.cmd(key, ch=ch)
+        last: InstrumentError | None = None
+        for _ in range(QUERY_ATTEMPTS):
+            reply = self.ask_text(command)
+            try:
+                return parse(reply, self.resource, command)
+            except GarbledReply as exc:  # a complete but unreadable reply: ask again
+                last = exc
+                self.transport.clear()
+        assert last is not None
+        raise last
+
+
+def parse_error_entry(reply: str, resource: str, command: str) -> tuple[int, str]:
+    """(code, message) of a SYST:ERR? reply such as '-113,"Undefined header"'."""
+    head, _, rest = reply.partition(",")
+    try:
+        code = int(head.strip())
+    except ValueError:
+        raise GarbledReply(resource, command, 'expected <code>,"<message>"', reply) from None
+    return code, rest.strip().strip('"')

@@ -1,0 +1,34 @@
+"""The electronic load role, constant-current mode."""
+
+from __future__ import annotations
+
+from benchseq.drivers.instrument import Instrument, parse_bool
+
+
+class Load(Instrument):
+    """Amperes and volts; the input is off until input(True)."""
+
+    role = "load"
+
+    def set_current(self, amperes: float) -> None:
+        """Constant-current mode (if the profile has the command), then the current (A)."""
+        if self.profile.has("mode_current") and "mode" not in self._state:
+            self.configure("mode_current", slot="mode")
+        self.configure("current", float(amperes), query_key="current_query")
+
+    def input(self, on: bool) -> None:
+        self.configure(
+            "input_on" if on else "input_off",
+            slot="input",
+            query_key="input_query",
+            parse=parse_bool,
+        )
+
+    def input_is_on(self) -> bool:
+        return bool(self.ask("input_query", parse_bool))
+
+    def measure_current(self) -> float:
+        return float(self.ask("measure_current"))
+
+    def measure_voltage(self) -> float:
+        return float(self.ask("measure_voltage"))

@@ -1,0 +1,186 @@
+"""Bench sessions on recorded conversations: opening (identify, clear status, nothing
+switched on), the safe state on fresh connections in the order generator, load, supply
+(FIELD.md, "cautions": generator off, then electronic load, then DC supply (practice)),
+and recovery that keeps the safe state."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import pytest
+
+from benchseq.bench import InstrumentSpec, LoadSetup, load_bench
+from benchseq.drivers.errors import ConnectionLost
+from benchseq.drivers.replay import CLOSE, RECONNECT, Conversation, ReplayTransport
+from benchseq.drivers.session import MonotonicClock, assemble_session
+
+OK = '+0,"No error"'
+ROLES = ("generator", "supply", "scope", "load")
+
+
+class FakeClock:
+    def __init__(self) -> None:
+        self.t = 0.0
+
+    def now(self) -> float:
+        return self.t
+
+    def sleep(self, s: float) -> None:
+        self.t += s
+
+
+def _bench(safe_level: float = 0.0):
+    bench = load_bench("sim")
+    load = InstrumentSpec("load", "SIM::load", "scpi-load", None, 1, 5.0)
+    return dataclasses.replace(
+        bench,
+        instruments={**bench.instruments, "load": load},
+        load=LoadSetup(max_current=1.0),
+        supply=dataclasses.replace(bench.supply, safe_level=safe_level),
+    )
+
+
+class Connector:
+    """connect(role) -> a replay transport named '<role>#<n>' (n = 1 for the session's own)."""
+
+    def __init__(self, conversation: Conversation, fail: set[str] = frozenset()) -> None:
+        self.conversation = conversation
+        self.count: dict[str, int] = {}
+        self.fail = set(fail)
+
+    def __call__(self, role: str) -> ReplayTransport:
+        n = self.count[role] = self.count.get(role, 0) + 1
+        if n > 1 and role in self.fail:
+            raise ConnectionLost(f"{role}#{n}", "", "cannot open: connection refused")
+        return ReplayTransport(self.conversation, f"{role}#{n}")
+
+
+def _opening(conv: Conversation) -> None:
+    for role in ROLES:
+        conv.add(
+            f"{role}#1",
+            [("*IDN?", f"Fernhollow,{role.upper()}-1,0001,1.0"), ("*CLS", None), ("SYST:ERR?", OK)],
+        )
+
+
+def _open(conv: Conversation, fail: set[str] = frozenset(), safe_level: float = 0.0):
+    _opening(conv)
+    return assemble_session(_bench(safe_level), Connector(conv, fail), FakeClock())
+
+
+def test_opening_identifies_and_clears_every_instrument_and_switches_nothing_on():
+    conv = Conversation()
+    session = _open(conv)
+    conv.assert_done()
+    assert session.identities["scope"] == "Fernhollow,SCOPE-1,0001,1.0"
+    assert set(session.identities) == set(ROLES)
+    assert not any("ON" in sent for _, sent in conv.sent)
+
+
+def test_safe_state_on_fresh_connections_in_order_and_recovery_keeps_it():
+    conv = Conversation()
+    session = _open(conv)
+    conv.add("generator#1", [("OUTP1 ON", None), ("SYST:ERR?", OK), ("OUTP1?", "1")])
+    session.generator.output(True)
+    conv.add(
+        "generator#2",
+        [("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "0"), (CLOSE, None)],
+    )
+    conv.add(
+        "load#2",
+        [("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0"), ("INP1?", "0"), (CLOSE, None)],
+    )
+    conv.add(
+        "supply#2",
+        [
+            ("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0"),
+            ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "0"),
+            (CLOSE, None),
+        ],
+    )  # fmt: skip
+    steps = session.safe_state()
+    assert [s.split(":")[0] for s in steps] == ["generator", "load", "supply"]
+    assert all("verified" in s and "fresh connection" in s for s in steps)
+    # A later recovery re-applies the OFF state, never the ON it had before.
+    conv.add(
+        "generator#1", [(RECONNECT, None), ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0")]
+    )
+    conv.add(
+        "supply#1",
+        [(RECONNECT, None), ("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0")],
+    )
+    conv.add("supply#1", [("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0")])
+    conv.add("scope#1", [(RECONNECT, None)])
+    conv.add("load#1", [(RECONNECT, None), ("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0")])
+    session.recover()
+    conv.add("generator#1", [(CLOSE, None)]).add("supply#1", [(CLOSE, None)])
+    conv.add("scope#1", [(CLOSE, None)]).add("load#1", [(CLOSE, None)])
+    session.close()
+    conv.assert_done()
+
+
+def test_safe_state_goes_on_when_one_instrument_fails_and_says_so():
+    """The generator refuses a fresh connection and its old one is dead too: the load and
+    the supply are still made safe, and the report says the generator FAILED."""
+    conv = Conversation()
+    session = _open(conv, fail={"generator"}, safe_level=1.0)
+    conv.add("generator#1", [(RECONNECT, ConnectionLost("generator#1", "", "refused"))])
+    conv.add(
+        "load#2",
+        [("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0"), ("INP1?", "0"), (CLOSE, None)],
+    )
+    conv.add(
+        "supply#2",
+        [("SOUR1:VOLT 1", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "1.0"), (CLOSE, None)],
+    )
+    steps = session.safe_state()
+    assert steps[0].startswith("generator: FAILED")
+    assert steps[1].startswith("load: input off")
+    assert "safe level 1 V" in steps[2]
+    conv.assert_done()
+
+
+def test_safe_state_reports_an_output_that_stays_on():
+    conv = Conversation()
+    session = _open(conv)
+    conv.add(
+        "generator#2",
+        [("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "1"), (CLOSE, None)],
+    )
+    conv.add(
+        "load#2",
+        [("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0"), ("INP1?", "0"), (CLOSE, None)],
+    )
+    conv.add(
+        "supply#2",
+        [
+            ("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0"),
+            ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "0"),
+            (CLOSE, None),
+        ],
+    )  # fmt: skip
+    steps = session.safe_state()
+    assert "FAILED" in steps[0] and "still reads on" in steps[0]
+    conv.assert_done()
+
+
+def test_a_failing_identify_closes_what_was_opened():
+    conv = Conversation()
+    conv.add("generator#1", [("*IDN?", "G"), ("*CLS", None), ("SYST:ERR?", OK)])
+    for _ in range(3):
+        conv.add(
+            "supply#1",
+            [("*IDN?", ConnectionLost("supply#1", "*IDN?", "refused")), (RECONNECT, None)],
+        )
+    for role in ROLES:
+        conv.add(f"{role}#1", [(CLOSE, None)])
+    with pytest.raises(ConnectionLost):
+        assemble_session(_bench(), Connector(conv), FakeClock())
+    conv.assert_done()
+
+
+def test_monotonic_clock_moves_forward():
+    clock = MonotonicClock()
+    t0 = clock.now()
+    clock.sleep(0.01)
+    assert clock.now() - t0 >= 0.009
