@@ -198,7 +198,8 @@ def _clear_status(instrument: Instrument) -> None:
 def open_session(bench: Bench, seed: int = 0, faults: dict[str, Any] | None = None) -> BenchSession:
     """Open every instrument of ``bench``: the simulator's for a simulated bench, else VISA."""
     if bench.simulation is not None:
-        from benchseq.sim import SimulatedBench  # the simulator is only needed for sim benches
+        # The simulator is imported only for simulated benches.
+        from benchseq.sim.world import SimulatedBench
 
         simulator = SimulatedBench.from_scenario(
             bench.simulation, bench=bench, seed=seed, faults=faults
