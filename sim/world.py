@@ -170,6 +170,26 @@ class SimulatedBench:
             bench = load_bench(f"sim:{scenario}")
         return cls(bench, load_scenario(scenario), seed=seed, faults=faults)
 
+    def reseed(self, key: int) -> None:
+        """Restart every random stream from (seed, key), in place.
+
+        A run calls this at the start of each point with the point's id, so a point's noise
+        depends only on the seed and the point, not on what came before: a resumed run then
+        measures exactly what an uninterrupted one would have.
+        """
+        with self.lock:
+            sequence = np.random.SeedSequence([self.seed, int(key)])
+            physics_seeds = sequence.spawn(len(ROLE_NAMES))
+            fault_seeds = sequence.spawn(len(ROLE_NAMES))
+            for role, s in zip(ROLE_NAMES, physics_seeds, strict=True):
+                self.streams[role].bit_generator.state = np.random.default_rng(
+                    s
+                ).bit_generator.state
+            for role, s in zip(ROLE_NAMES, fault_seeds, strict=True):
+                self.faults[role].rng.bit_generator.state = np.random.default_rng(
+                    s
+                ).bit_generator.state
+
     # -- instruments ---------------------------------------------------------------------------
     def handler(self, role: str) -> ScpiInstrument:
         """The SCPI handler of one role: ``.handle(message) -> bytes | None``."""
