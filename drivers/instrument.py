@@ -34,6 +34,7 @@ from benchseq.drivers.profile import Profile
 from benchseq.drivers.transport import Transport
 
 QUERY_ATTEMPTS = 3
+RECOVERY_ATTEMPTS = 3
 BACKOFF_S = (0.05, 0.2, 0.5)
 MAX_ERROR_ENTRIES = 20  # an error queue that never empties is itself a fault
 AMBIGUOUS = (InstrumentTimeout, ConnectionLost, GarbledReply, TruncatedBlock)
@@ -237,9 +238,18 @@ class Instrument:
         return actual
 
     def recover(self) -> None:
-        """Renew the connection and restore the whole known state, verified."""
-        self.transport.reconnect()
-        self.restore()
+        """Renew the connection and restore the whole known state, verified. Retried a few
+        times (with pauses) while the faults are of the passing kind (timeouts, garbage,
+        lost connections); a read-back that disagrees is raised at once."""
+        for attempt in range(RECOVERY_ATTEMPTS):
+            try:
+                self.transport.reconnect()
+                self.restore()
+                return
+            except AMBIGUOUS:
+                if attempt == RECOVERY_ATTEMPTS - 1:
+                    raise
+                self._sleep(BACKOFF_S[min(attempt, len(BACKOFF_S) - 1)])
 
     def restore(self) -> None:
         """Apply every remembered setting again in order; read back and compare each one."""

@@ -385,3 +385,21 @@ def test_scope_waveform_timeout_grows_with_the_record():
     assert len(scope.read_waveform(1).codes) == n
     assert t.timeouts[-1] >= 1.0 + n / 1e6
     done(t)
+
+
+def test_recovery_itself_is_retried_when_it_meets_a_passing_fault():
+    gen, t, pauses = make(
+        Generator,
+        "generator",
+        [
+            ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
+            (RECONNECT, None),
+            ("OUTP1 OFF", None), ("SYST:ERR?", GarbledReply(RES, "SYST:ERR?", "noise", b"\xff")),
+            (RECONNECT, None),
+            ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
+        ],
+    )  # fmt: skip
+    gen.output(False)
+    gen.recover()
+    assert len(pauses) == 1
+    done(t)

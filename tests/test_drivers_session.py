@@ -184,3 +184,60 @@ def test_monotonic_clock_moves_forward():
     t0 = clock.now()
     clock.sleep(0.01)
     assert clock.now() - t0 >= 0.009
+
+
+# -- the embedded simulated bench (in-process transports, virtual clock) ---------------------
+def test_open_session_on_the_simulated_bench_then_safe_state_in_order():
+    pytest.importorskip("benchseq.sim.world")
+    from benchseq.drivers.session import open_session
+
+    session = open_session(load_bench("sim"), seed=2)
+    try:
+        sim = session.simulator
+        assert sim is not None and session.clock is sim.clock
+        assert set(session.identities) == set(session.bench.instruments)
+        assert not any(c.what == "output" and c.value for c in sim.log)  # nothing switched on
+        session.supply.set_current_limit(0.1)
+        session.supply.set_voltage(5.0)
+        session.supply.output(True)
+        session.generator.set_sine(1000.0, 0.1)
+        session.generator.output(True)
+        assert sim.truth().generator_on
+        mark = len(sim.log)
+        steps = session.safe_state()
+        offs = [(c.role, c.value) for c in sim.log[mark:] if c.what == "output"]
+        assert offs == [("generator", False), ("supply", False)]  # generator first
+        assert all("verified" in s for s in steps)
+        assert not sim.truth().generator_on
+    finally:
+        session.close()
+
+
+def test_simulated_faults_give_right_answers_or_specific_errors():
+    pytest.importorskip("benchseq.sim.faults")
+    from benchseq.drivers.errors import InstrumentError
+    from benchseq.drivers.session import open_session
+    from benchseq.sim.faults import FaultRates
+
+    rates = {"generator": FaultRates(garbage=0.1, disconnect=0.05, no_reply=0.05)}
+    session = None
+    for attempt in range(5):
+        try:
+            session = open_session(load_bench("sim"), seed=attempt, faults=rates)
+            break
+        except InstrumentError:
+            continue
+    assert session is not None
+    right = 0
+    try:
+        for k in range(30):
+            want = 100.0 * (k + 1)
+            try:
+                assert session.generator.set_frequency(want) == pytest.approx(want, rel=1e-9)
+                right += 1
+            except InstrumentError:
+                session.recover()
+        assert right >= 20
+        assert session.simulator.handler("generator").settings.frequency == pytest.approx(3000.0)
+    finally:
+        session.close()
