@@ -12,6 +12,7 @@ from __future__ import annotations
 import contextlib
 import threading
 import time
+import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -274,7 +275,10 @@ def scan(
             return
         try:
             try:
-                found = list(manager.list_resources())
+                with warnings.catch_warnings():
+                    # pyvisa-py warns that discovery is limited without optional packages
+                    warnings.simplefilter("ignore")
+                    found = list(manager.list_resources())
             except Exception as exc:  # a backend that cannot list is reported, not raised
                 found = []
                 with lock:

@@ -23,6 +23,7 @@ import contextlib
 import select
 import socket
 import time
+from collections.abc import Callable
 from typing import Any
 
 import pyvisa
@@ -80,6 +81,8 @@ class VisaTransport:
         self._buffer = bytearray()
         self._dirty = False  # a failure happened: reset before the next command
         self.nodelay = False  # True once TCP_NODELAY is set on the socket
+        # progress(bytes so far, bytes declared) during long block reads (socket path)
+        self.progress: Callable[[int, int], None] | None = None
         self._open()
 
     # -- properties ---------------------------------------------------------------------
@@ -359,6 +362,8 @@ class VisaTransport:
                     f"block declared {length} bytes but the connection closed after {have}",
                 )
             have += got
+            if self.progress is not None:
+                self.progress(have, length)
         if self._block_terminated:
             while len(self._buffer) < len(self._read_term):
                 self._fill(command, deadline, "no terminator after the block")

@@ -222,8 +222,12 @@ def test_identify_write_then_query_and_nodelay(manager, server):
 def test_block_with_newlines_inside_is_read_by_its_declared_length(manager, server):
     transport = _open(manager, server)
     try:
+        seen: list[tuple[int, int]] = []
+        transport.progress = lambda have, total: seen.append((have, total))
         assert transport.query_block("DATA?") == server.block
         assert transport.query("*IDN?") == IDN  # the terminator after the block was consumed
+        assert all(total == len(server.block) for _, total in seen)
+        assert [have for have, _ in seen] == sorted(have for have, _ in seen)
     finally:
         transport.close()
 
@@ -389,6 +393,7 @@ def test_scan_names_each_resource_and_is_bounded(server):
     finally:
         silent.close()
     found = {e.resource: e for e in entries}
+    assert "(list resources)" not in found  # pyvisa-py's discovery warnings do not break it
     assert found[silent.address].identity == IDN
     assert found[dead].identity is None and "refused" in (found[dead].error or "")
     assert found[server.address].identity is None and "within" in (
