@@ -14,7 +14,7 @@ from benchseq import __version__
 from benchseq.bench import Bench, load_bench, parse_bench
 from benchseq.errors import BadInput
 from benchseq.plan import Plan, load_plan, parse_plan
-from benchseq.records import POINT_COLUMNS, SCHEMA_VERSION, SIGN_CONVENTION
+from benchseq.records import POINT_COLUMNS, SCHEMA_VERSION, SIGN_CONVENTION, TRUTH_COLUMNS
 from benchseq.sequencer import EventSink, RunOutcome, Sequencer
 from benchseq.stopping import StopControl
 from benchseq.tomlfile import parse_toml_text
@@ -96,16 +96,27 @@ def start_run(
     emit: EventSink | None = None,
     stop: StopControl | None = None,
     faults: Any = None,
+    session_factory: Any = None,
 ) -> tuple[RunOutcome, Path]:
+    """Validate, check, create the result file, then open the bench and run.
+
+    ``session_factory(bench, seed=, faults=)`` replaces benchseq.drivers.session.open_session
+    (tests use it to keep hold of the simulated bench and read its log)."""
     from benchseq.drivers.session import open_session
     from benchseq.store import RunWriter
+
+    open_session = session_factory or open_session
 
     plan = load_plan(plan_path)
     bench = load_bench(bench_path)
     report = _refuse_infeasible(plan, bench)
     path = Path(out) if out else default_output(plan)
     writer = RunWriter.create(
-        path, run_meta(plan, bench, seed, keep_waveforms, report), POINT_COLUMNS, force=force
+        path,
+        run_meta(plan, bench, seed, keep_waveforms, report),
+        POINT_COLUMNS,
+        force=force,
+        truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,
     )
     session = open_session(bench, seed=seed, faults=faults)
     try:
@@ -134,10 +145,13 @@ def resume_run(
     emit: EventSink | None = None,
     stop: StopControl | None = None,
     faults: Any = None,
+    session_factory: Any = None,
 ) -> tuple[RunOutcome | None, Path]:
     """Continue an interrupted run from the plan and bench stored in its file."""
     from benchseq.drivers.session import open_session
     from benchseq.store import RunWriter, read_meta
+
+    open_session = session_factory or open_session
 
     path = Path(result_path)
     meta = read_meta(path)

@@ -28,6 +28,7 @@ PIN_TOLERANCE = 0.02  # relative: trim the generator when the pin ripple is furt
 MAX_TRIMS = 3
 MAX_RANGING = 5
 MAX_POINT_RETRIES = 2
+MAX_EXTENSIONS = 2  # longer captures after the planned one
 RANGE_FILL = 0.7  # aim the sine's peak-to-peak at this fraction of full scale
 INITIAL_REJECTION_GUESS_DB = 40.0
 QUICK_TARGET_DB = 3.0  # the ranging capture only needs to see the signal
@@ -151,8 +152,10 @@ class Sequencer:
                 if self.stop.stop_requested:
                     status, reason = "stopped", self.stop.reason
                     break
-                row = self._measure_with_retries(i, carry, done=len(stored) + position, total=total)
-                self.writer.append(int(row["point_id"]), row)
+                row, truth = self._measure_with_retries(
+                    i, carry, done=len(stored) + position, total=total
+                )
+                self.writer.append(int(row["point_id"]), row, truth=truth)
                 carry = Carry.from_row(row)
                 counts["measured"] += 1
                 counts["bounds"] += int(bool(row["is_bound"]))
@@ -273,16 +276,24 @@ class Sequencer:
         return level
 
     # -- one point ----------------------------------------------------------------------
-    def _measure_with_retries(self, i: int, carry: Carry, done: int, total: int) -> dict[str, Any]:
+    def _measure_with_retries(
+        self, i: int, carry: Carry, done: int, total: int
+    ) -> tuple[dict[str, Any], dict[str, Any] | None]:
         from benchseq.drivers.errors import InstrumentError
 
         attempt = 0
         while True:
             try:
+                simulator = getattr(self.session, "simulator", None)
+                if simulator is not None:
+                    simulator.reseed(int(self.sweep.index[i]) * 16 + attempt)
                 row = self._measure_point(i, carry, done, total)
                 if attempt:
                     row["flags"] = " ".join(filter(None, [row["flags"], "instrument_retry"]))
-                return row
+                truth = None
+                if simulator is not None:
+                    truth = {"point_id": row["point_id"], **simulator.truth().record()}
+                return row, truth
             except InstrumentError as exc:
                 attempt += 1
                 if attempt > MAX_POINT_RETRIES:
@@ -363,15 +374,16 @@ class Sequencer:
             )
             clock.sleep(self.plan.settle.fixed_s + 3.0 * self.corners.coupling_time_constant_s)
 
-        if result.rejection.is_bound:
+        for _ in range(MAX_EXTENSIONS):
             longer = self._longer_capture(plan, result)
-            if longer is not None:
-                actual_frequency = s.generator.set_frequency(longer.frequency)
-                pin_range, out_range, result, used = self._capture_ranged(
-                    longer, actual_frequency, pin_range, out_range, flags
-                )
-                captures += used
-                plan = longer
+            if longer is None:
+                break
+            actual_frequency = s.generator.set_frequency(longer.frequency)
+            pin_range, out_range, result, used = self._capture_ranged(
+                longer, actual_frequency, pin_range, out_range, flags
+            )
+            captures += used
+            plan = longer
         if abs(result.pin.amplitude / target - 1.0) > 0.05:
             flags.append("pin_off_target")
 
@@ -552,16 +564,33 @@ class Sequencer:
     def _longer_capture(
         self, plan: analysis.CapturePlan, result: analysis.PointMeasurement
     ) -> analysis.CapturePlan | None:
-        """A longer capture that could still resolve an undetected output, within the plan's limits."""
+        """A longer capture, planned from the noise this capture showed, when the output was
+        not detected or the uncertainty missed the target, and the plan's limits allow it."""
         rules = self.plan.capture
-        if plan.bench_time >= 0.5 * rules.max_time_s:
+        rej = result.rejection
+        if not rej.is_bound and rej.uncertainty_db <= rules.target_uncertainty_db:
             return None
-        # aim at resolving an output at a third of the present bound's level
-        guess = max(result.output_floor, 1e-12)
-        longer = self._plan_capture(
-            plan.frequency, result.pin.amplitude, guess, result.output.residual_rms, target_db=0.5
+        # σ_c = σ·√(2/N) per quadrature over all N samples recorded (MEASUREMENT.md): the
+        # per-sample noise of one raw record, taken as aliased broadband (scope front end)
+        samples = plan.record_length * plan.averages * plan.records
+        sigma = max(result.output_floor, 1e-15) * math.sqrt(samples / 2.0)
+        pin_sigma = max(result.pin.quadrature_sigma, 1e-15) * math.sqrt(samples / 2.0)
+        if rej.is_bound:  # aim to detect an output at the present floor, not to pin it down
+            output, target_db = max(result.output.amplitude, 4.0 * result.output_floor), 1.0
+        else:
+            output, target_db = result.output.amplitude, rules.target_uncertainty_db
+        longer = analysis.plan_capture(
+            self.session.scope.capabilities,
+            plan.frequency,
+            max(result.pin.amplitude, 1e-12),
+            max(output, 1e-12),
+            target_db,
+            min_cycles=rules.min_cycles,
+            max_time_s=rules.max_time_s,
+            noise_sigma=sigma,
+            pin_noise_sigma=pin_sigma,
         )
-        if longer.bench_time <= plan.bench_time * 1.5:
+        if longer.capture_time <= plan.capture_time * 1.2:
             return None
         return longer
 

@@ -1,0 +1,147 @@
+"""The main job end to end on the simulated bench: run, store, stop, resume, refuse.
+
+The simulator's truth (sim/, which never imports the injector model or the analysis) is
+the outside reference: it solves the circuit by nodal analysis on its own."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from benchseq.drivers.session import open_session
+from benchseq.runner import RefusedPlan, resume_run, start_run
+from benchseq.stopping import StopControl
+from benchseq.store import read_meta, read_results, read_truth
+
+PLANS = Path(__file__).resolve().parent.parent / "plans"
+
+
+class Keeper:
+    """A session factory that keeps the sessions it opened (to read the simulator's log)."""
+
+    def __init__(self) -> None:
+        self.sessions: list[Any] = []
+
+    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
+        session = open_session(bench, seed=seed, faults=faults)
+        self.sessions.append(session)
+        return session
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Keeper]:
+    keeper = Keeper()
+    out = tmp_path_factory.mktemp("run") / "demo.h5"
+    outcome, path = start_run(
+        str(PLANS / "demo.toml"), None, str(out), seed=3, session_factory=keeper
+    )
+    assert outcome.status == "complete"
+    return path, keeper
+
+
+def test_demo_run_is_complete_and_self_describing(demo_run: tuple[Path, Keeper]) -> None:
+    path, _ = demo_run
+    meta = read_meta(path)
+    frame = read_results(path)
+    assert meta["status"] == "complete" and meta["point_count"] == 16
+    assert sorted(frame["point_id"]) == list(range(16))
+    assert "V_out / V_pin" in meta["sign_convention"]
+    assert meta["plan_sha256"] and meta["bench_text"].startswith("#")
+
+
+def test_pin_ripple_reaches_target(demo_run: tuple[Path, Keeper]) -> None:
+    """The generator is set through the injector model and trimmed: pin within 5 % of target."""
+    frame = read_results(demo_run[0])
+    ratio = np.abs(frame["pin"].to_numpy()) / frame["ripple_target"].to_numpy()
+    assert np.all(np.abs(ratio - 1) < 0.05), ratio
+
+
+def test_rejection_agrees_with_the_simulators_truth(demo_run: tuple[Path, Keeper]) -> None:
+    """Above the scope's AC-coupling corner region (≥ 200 Hz) every detected point is within
+    0.3 dB of the simulator's nodal-analysis truth, and within 4 standard uncertainties."""
+    frame = read_results(demo_run[0]).merge(
+        read_truth(demo_run[0]), on="point_id", suffixes=("", "_true")
+    )
+    band = frame[(frame["frequency"] >= 200) & ~frame["is_bound"]]
+    assert len(band) >= 10
+    error = band["rejection_db"] - band["rejection_db_true"]
+    assert np.all(np.abs(error) < 0.3), error.to_numpy()
+    assert np.all(np.abs(error) < 4 * band["uncertainty_db"] + 0.05)
+
+
+def test_bounds_are_never_values(demo_run: tuple[Path, Keeper]) -> None:
+    frame = read_results(demo_run[0])
+    bounds = frame[frame["is_bound"]]
+    assert bounds["rejection_db"].isna().all() and bounds["uncertainty_db"].isna().all()
+    values = frame[~frame["is_bound"]]
+    assert values["bound_db"].isna().all() and np.isfinite(values["rejection_db"]).all()
+
+
+def test_safe_state_order(demo_run: tuple[Path, Keeper]) -> None:
+    """On ending: generator off, then load, then supply (FIELD.md cautions, common practice)."""
+    log = demo_run[1].sessions[0].simulator.log
+    outputs = [(c.role, c.value) for c in log if c.what == "output"]
+    assert outputs[-2:] == [("generator", False), ("supply", False)]
+    first_on = next(i for i, c in enumerate(log) if c.what == "output" and c.value)
+    limits = {c.what for c in log[:first_on] if c.role == "supply"}
+    assert {"current_limit", "overvoltage_level", "overvoltage_enabled"} <= limits
+
+
+def test_refused_plan_switches_nothing_on(tmp_path: Path) -> None:
+    """A point beyond the device's absolute maximum is refused before any instrument opens."""
+    text = (
+        (PLANS / "demo.toml").read_text(encoding="utf-8").replace('dc = ["5 V"]', 'dc = ["5.98 V"]')
+    )
+    plan = tmp_path / "too-high.toml"
+    plan.write_text(text, encoding="utf-8")
+    keeper = Keeper()
+    with pytest.raises(RefusedPlan, match="refused"):
+        start_run(str(plan), None, str(tmp_path / "r.h5"), session_factory=keeper)
+    assert keeper.sessions == [] and not (tmp_path / "r.h5").exists()
+
+
+def test_existing_output_is_never_overwritten(demo_run: tuple[Path, Keeper]) -> None:
+    from benchseq.errors import BadInput
+
+    with pytest.raises(BadInput):
+        start_run(str(PLANS / "demo.toml"), None, str(demo_run[0]))
+
+
+def test_stop_then_resume_matches_an_uninterrupted_run(
+    tmp_path: Path, demo_run: tuple[Path, Keeper]
+) -> None:
+    """A stop after 5 points, then resume: no duplicates, and with the same seed the same
+    numbers as the uninterrupted run (the simulator is reseeded per point)."""
+    stop = StopControl()
+
+    def emit(event: Any) -> None:
+        if event.kind == "point_stored" and event.done >= 5:
+            stop.request("test stop")
+
+    keeper = Keeper()
+    outcome, path = start_run(
+        str(PLANS / "demo.toml"),
+        None,
+        str(tmp_path / "part.h5"),
+        seed=3,
+        emit=emit,
+        stop=stop,
+        session_factory=keeper,
+    )
+    assert outcome.status == "stopped" and outcome.measured == 5
+    log = keeper.sessions[0].simulator.log
+    assert [c.value for c in log if c.role == "generator" and c.what == "output"][-1] is False
+    assert len(read_results(path)) == 5
+    again, _ = resume_run(str(path))
+    assert again is not None and again.status == "complete" and again.skipped == 5
+    resumed = read_results(path).sort_values("point_id").reset_index(drop=True)
+    whole = read_results(demo_run[0]).sort_values("point_id").reset_index(drop=True)
+    assert list(resumed["point_id"]) == list(range(16))
+    np.testing.assert_allclose(resumed["rejection_db"], whole["rejection_db"], rtol=0, atol=1e-9)
+    done, _ = resume_run(str(path))
+    assert done is None  # a complete run: nothing to do
+    assert math.isfinite(float(read_meta(path)["planned_bench_time_s"]))
