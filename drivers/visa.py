@@ -20,6 +20,8 @@ library) it goes through pyvisa's resource with the same error mapping.
 from __future__ import annotations
 
 import contextlib
+import errno
+import os
 import select
 import socket
 import time
@@ -158,7 +160,7 @@ class VisaTransport:
             except OSError as exc:
                 err = exc.errno or -1
         if err:
-            reason = "connection refused" if err == 111 else f"socket error {err}"
+            reason = "connection refused" if err == errno.ECONNREFUSED else os.strerror(err)
             self._release()
             raise ConnectionLost(self.resource, "", f"cannot open: {reason}")
 
