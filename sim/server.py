@@ -317,7 +317,7 @@ def sim_serve_main(
             for role, address in server.addresses.items():
                 console.print(f"  {role:<10} {address}", markup=False, highlight=False)
             console.print("\nBench file for these addresses:\n", markup=False)
-            console.print(server.bench_text, markup=False, highlight=False)
+            console.print(server.bench_text, markup=False, highlight=False, soft_wrap=True)
             console.print("Serving; press Ctrl-C to stop.", markup=False)
         event = stop or threading.Event()
         while not event.is_set():
