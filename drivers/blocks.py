@@ -72,7 +72,7 @@ def parse_block(data: bytes, resource: str = "", command: str = "") -> bytes:
 
 
 def decode_samples(
-    payload: bytes,
+    payload: bytes | bytearray | memoryview,
     dtype: str = "int8",
     big_endian: bool = False,
     resource: str = "",

@@ -222,7 +222,7 @@ class Scope(Instrument):
             codes, volts_per_code, volts_at_zero, code_offset, interval, self.probe(ch), data_format
         )
 
-    def _ask_block(self, command: str, expected_bytes: int) -> bytes:
+    def _ask_block(self, command: str, expected_bytes: int) -> bytes | memoryview:
         """A block query (read-only: retried after a timeout or a bad block)."""
         saved = self.transport.timeout_s
         self.transport.timeout_s = max(
@@ -230,9 +230,11 @@ class Scope(Instrument):
         )
         last: InstrumentError | None = None
         try:
+            # A transport may offer a copy-free read (the VISA transport does).
+            fetch = getattr(self.transport, "query_block_view", None) or self.transport.query_block
             for attempt in range(QUERY_ATTEMPTS):
                 try:
-                    return self.transport.query_block(command)
+                    return fetch(command)
                 except (InstrumentTimeout, GarbledReply, TruncatedBlock, ConnectionLost) as exc:
                     last = exc
                     self._sleep(BACKOFF_S[min(attempt, len(BACKOFF_S) - 1)])

@@ -44,6 +44,7 @@ from benchseq.drivers.errors import (
 
 MAX_BLOCK_BYTES = 512 * 1024 * 1024  # a larger declared length is a garbled header, not data
 _CHUNK = 1 << 20
+_HEADER_READ = 64
 _TIMEOUT_CODES = {constants.StatusCode.error_timeout}
 
 
@@ -227,11 +228,16 @@ class VisaTransport:
         return self._guard(command, run)
 
     def query_block(self, command: str) -> bytes:
+        return bytes(self.query_block_view(command))
+
+    def query_block_view(self, command: str) -> memoryview:
+        """As query_block, without the final copy: a read-only view of a fresh buffer
+        (the scope uses it for long waveforms; the copy costs ~40 % at loopback speed)."""
         self._ready()
 
-        def run() -> bytes:
+        def run() -> memoryview:
             self._send(command)
-            return self._read_block(command)
+            return memoryview(self._read_block(command)).toreadonly()
 
         return self._guard(command, run)
 
@@ -270,7 +276,7 @@ class VisaTransport:
             ) from None
 
     # -- reading: socket path -----------------------------------------------------------
-    def _fill(self, command: str, deadline: float, what: str) -> None:
+    def _fill(self, command: str, deadline: float, what: str, size: int = _CHUNK) -> None:
         """Receive at least one more chunk into the buffer before ``deadline``."""
         assert self._socket is not None
         remaining = deadline - time.monotonic()
@@ -283,7 +289,7 @@ class VisaTransport:
             )
         self._socket.settimeout(remaining)
         try:
-            chunk = self._socket.recv(_CHUNK)
+            chunk = self._socket.recv(size)
         except TimeoutError:
             raise InstrumentTimeout(
                 self.resource,
@@ -314,7 +320,7 @@ class VisaTransport:
             start = max(0, len(self._buffer) - len(self._read_term) + 1)
             self._fill(command, deadline, "no complete reply")
 
-    def _read_block(self, command: str) -> bytes:
+    def _read_block(self, command: str) -> bytearray:
         if self._socket is None:
             return self._visa_read_block(command)
         deadline = time.monotonic() + self._timeout_s
@@ -326,7 +332,8 @@ class VisaTransport:
                 raise TruncatedBlock(
                     self.resource, command, "block header cut short", bytes(self._buffer[:16])
                 )
-            self._fill(command, deadline, "no block header")
+            # a small read: the data itself goes straight into the payload buffer below
+            self._fill(command, deadline, "no block header", _HEADER_READ)
         if length > MAX_BLOCK_BYTES:
             raise TruncatedBlock(
                 self.resource,
@@ -368,7 +375,7 @@ class VisaTransport:
                 self.progress(have, length)
         if self._block_terminated:
             while len(self._buffer) < len(self._read_term):
-                self._fill(command, deadline, "no terminator after the block")
+                self._fill(command, deadline, "no terminator after the block", _HEADER_READ)
             if self._buffer[: len(self._read_term)] != self._read_term:
                 raise GarbledReply(
                     self.resource,
@@ -377,7 +384,7 @@ class VisaTransport:
                     bytes(self._buffer[:16]),
                 )
             del self._buffer[: len(self._read_term)]
-        return bytes(payload)
+        return payload
 
     # -- reading: any other VISA resource -------------------------------------------------
     def _visa_read_line(self) -> bytes:
@@ -386,7 +393,7 @@ class VisaTransport:
             raw = raw[: -len(self._read_term)]
         return bytes(raw)
 
-    def _visa_read_block(self, command: str) -> bytes:
+    def _visa_read_block(self, command: str) -> bytearray:
         handle = self._handle
         saved = handle.read_termination
         handle.read_termination = None  # termination off: 0x0A inside the data must not end a read
@@ -420,4 +427,4 @@ class VisaTransport:
                     )
         finally:
             handle.read_termination = saved
-        return payload
+        return bytearray(payload)

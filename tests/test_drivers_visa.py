@@ -227,6 +227,8 @@ def test_block_with_newlines_inside_is_read_by_its_declared_length(manager, serv
         assert transport.query_block("DATA?") == server.block
         assert transport.query("*IDN?") == IDN  # the terminator after the block was consumed
         assert all(total == len(server.block) for _, total in seen)
+        view = transport.query_block_view("DATA?")  # the copy-free read the scope uses
+        assert view.readonly and bytes(view) == server.block
         assert [have for have, _ in seen] == sorted(have for have, _ in seen)
     finally:
         transport.close()
