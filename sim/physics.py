@@ -85,13 +85,17 @@ def solve_point(
     frequency: float,
     emf_peak: float,
     output_current: float,
+    setpoint: float | None = None,
 ) -> PointPhysics:
-    """The physics at one state: DC operating point, fundamental and (if limited) harmonics."""
+    """The physics at one state: DC operating point, fundamental and (if limited) harmonics.
+
+    ``setpoint`` is the voltage on the op-amp's + input (V) when the bias filter is still
+    settling after a supply change; by default the supply's terminal voltage."""
 
     def draw(v_pin: float) -> float:
         return device.input_current(OperatingPoint(v_pin, output_current))
 
-    dc = solve_dc(circuit, supply.voltage, draw)
+    dc = solve_dc(circuit, supply.voltage if setpoint is None else setpoint, draw)
     op = OperatingPoint(dc.pin, output_current)
     admittance = device.pin.admittance
     emf = complex(emf_peak)

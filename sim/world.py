@@ -156,6 +156,10 @@ class SimulatedBench:
             "load": self.load,
         }
         self._cache: tuple[tuple, PointPhysics] | None = None
+        # the bias filter Rb·Cb: the + input follows the supply with this time constant
+        self._bias_tau = self.circuit.bias_resistor * self.circuit.bias_capacitor
+        self._setpoint_from = self._setpoint_to = 0.0
+        self._setpoint_since = 0.0
 
     @classmethod
     def from_scenario(
@@ -208,6 +212,25 @@ class SimulatedBench:
     def record(self, role: str, what: str, value: Any) -> None:
         """Log a state change at the present virtual time."""
         self.log.append(StateChange(self.clock.now(), role, what, value))
+        if role == "supply":
+            self._track_setpoint()
+
+    def _track_setpoint(self) -> None:
+        target = self.supply_output().voltage
+        if target != self._setpoint_to:
+            now = self.clock.now()
+            self._setpoint_from = self.setpoint(now)
+            self._setpoint_to = target
+            self._setpoint_since = now
+
+    def setpoint(self, at: float | None = None) -> float:
+        """Voltage on the op-amp's + input (V): the supply's level seen through the bias
+        filter, settling as exp(−t/(Rb·Cb)) after each change (FIELD.md "Settling")."""
+        at = self.clock.now() if at is None else at
+        decay = math.exp(-max(0.0, at - self._setpoint_since) / self._bias_tau)
+        if decay < 1e-9:
+            return self._setpoint_to
+        return self._setpoint_to + (self._setpoint_from - self._setpoint_to) * decay
 
     def connect_probe(self, channel: int, node: str) -> None:
         """Move a scope probe: "pin", "output" or "ground" (e.g. both on the pin to calibrate)."""
@@ -243,11 +266,13 @@ class SimulatedBench:
         g = self.generator.settings
         supply = self.supply_output()
         frequency = g.frequency * (1.0 + self.scenario.generator.frequency_error_ppm * 1e-6)
-        key = (frequency, self.generator.emf_peak, supply, self.output_current())
+        self._track_setpoint()
+        setpoint = self.setpoint()
+        key = (frequency, self.generator.emf_peak, supply, self.output_current(), setpoint)
         if self._cache is not None and self._cache[0] == key:
             return self._cache[1]
         result = solve_point(
-            self.circuit, self.device, supply, frequency, self.generator.emf_peak, key[3]
+            self.circuit, self.device, supply, frequency, self.generator.emf_peak, key[3], setpoint
         )
         self._cache = (key, result)
         return result

@@ -32,6 +32,7 @@ def powered(sim: SimulatedBench, frequency: float, amplitude_pp: float, dc: floa
     sim.handler("generator").handle(
         f"SOUR1:FUNC SIN;FREQ {frequency};VOLT {amplitude_pp};:OUTP1:LOAD 50;:OUTP1 ON"
     )
+    sim.clock.sleep(1.5)  # 15 time constants of the bias filter: the pin DC has settled
 
 
 def capture(
@@ -183,3 +184,16 @@ def test_two_channels_of_a_million_samples_are_fast() -> None:
     start = time.perf_counter()
     scope.handle("INIT:IMM")
     assert time.perf_counter() - start < 2.0
+
+
+def test_pin_dc_settles_through_the_bias_filter() -> None:
+    """After a set-point step the pin follows 1 − e^(−t/τ), τ = Rb·Cb (FIELD.md "Settling":
+    e^−5 leaves 0.7 %, e^−7 0.09 %)."""
+    sim = ideal_sim()
+    tau = 10e3 * 10e-6
+    sim.handler("supply").handle("SOUR1:VOLT 5;:OUTP1 ON")
+    assert sim.truth().pin_dc < 0.31  # the op-amp's lowest output, not yet moved
+    sim.clock.sleep(tau)
+    assert sim.truth().pin_dc == pytest.approx(5.0 * (1 - math.exp(-1)), rel=2e-3)
+    sim.clock.sleep(6 * tau)
+    assert sim.truth().pin_dc == pytest.approx(5.0 * (1 - math.exp(-7)), rel=2e-4)
