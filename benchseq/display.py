@@ -94,6 +94,7 @@ class RunDisplay:
     def __exit__(self, *exc: object) -> None:
         self.live.update(self._render())
         self.live.__exit__(None, None, None)
+        self.console.print()
 
     def _render(self) -> Group:
         parts: list[Any] = [self.progress]

@@ -185,7 +185,7 @@ class Sequencer:
                 steps = self._safe_state()
         bench_time = self.session.clock.now() - bench_start
         self.writer.finish(status, traceback=getattr(self, "_last_traceback", None), reason=reason)
-        self.emit(Event("state", f"run {status}: {reason}"))
+        self.emit(Event("finished", f"run {status}: {reason}"))
         return RunOutcome(
             status,
             reason,
