@@ -90,6 +90,7 @@ class Scenario:
     generator: GeneratorTruth = GeneratorTruth()
     load_max_current: float = 5.0  # A, the electronic load's own range
     faults: dict[str, FaultRates] = field(default_factory=dict)
+    bias_settling: bool = False  # the pin DC follows a set-point change through Rb·Cb
 
     def circuit(self, bench: Bench) -> InjectorCircuit:
         """The injector as built: the bench's nominal values with this scenario's overrides."""
@@ -140,6 +141,7 @@ def parse_scenario(data: dict, source: str) -> Scenario:
     assert head is not None
     name = head.text("name")
     description = head.text("description", default="")
+    bias_settling = head.flag("bias_settling", default=False)
     head.done()
 
     device_section = top.section("device", required=False)
@@ -257,6 +259,7 @@ def parse_scenario(data: dict, source: str) -> Scenario:
         generator=generator,
         load_max_current=load_max,
         faults=faults,
+        bias_settling=bias_settling,
         **extras,  # type: ignore[arg-type]
     )
 

@@ -226,6 +226,8 @@ class SimulatedBench:
     def setpoint(self, at: float | None = None) -> float:
         """Voltage on the op-amp's + input (V): the supply's level seen through the bias
         filter, settling as exp(−t/(Rb·Cb)) after each change (FIELD.md "Settling")."""
+        if not self.scenario.bias_settling:
+            return self.supply_output().voltage
         at = self.clock.now() if at is None else at
         decay = math.exp(-max(0.0, at - self._setpoint_since) / self._bias_tau)
         if decay < 1e-9:

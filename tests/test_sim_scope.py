@@ -188,8 +188,8 @@ def test_two_channels_of_a_million_samples_are_fast() -> None:
 
 def test_pin_dc_settles_through_the_bias_filter() -> None:
     """After a set-point step the pin follows 1 − e^(−t/τ), τ = Rb·Cb (FIELD.md "Settling":
-    e^−5 leaves 0.7 %, e^−7 0.09 %)."""
-    sim = ideal_sim()
+    e^−5 leaves 0.7 %, e^−7 0.09 %); a scenario switch, off on the demo bench."""
+    sim = ideal_sim(bias_settling=True)
     tau = 10e3 * 10e-6
     sim.handler("supply").handle("SOUR1:VOLT 5;:OUTP1 ON")
     assert sim.truth().pin_dc < 0.31  # the op-amp's lowest output, not yet moved
@@ -197,3 +197,4 @@ def test_pin_dc_settles_through_the_bias_filter() -> None:
     assert sim.truth().pin_dc == pytest.approx(5.0 * (1 - math.exp(-1)), rel=2e-3)
     sim.clock.sleep(6 * tau)
     assert sim.truth().pin_dc == pytest.approx(5.0 * (1 - math.exp(-7)), rel=2e-4)
+    assert ideal_sim().setpoint() == 0.0  # off: the set-point follows the supply at once
