@@ -14,6 +14,7 @@ Rules (FIELD.md, "pitfalls of unattended sweeps", and the planning experiments):
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 from collections.abc import Callable
@@ -34,7 +35,8 @@ from benchseq.drivers.profile import Profile
 from benchseq.drivers.transport import Transport
 
 QUERY_ATTEMPTS = 3
-RECOVERY_ATTEMPTS = 3
+RECOVERY_ATTEMPTS = 2
+RESTORE_FAULTS = 6  # faults one restore may meet before it gives up
 BACKOFF_S = (0.05, 0.2, 0.5)
 MAX_ERROR_ENTRIES = 20  # an error queue that never empties is itself a fault
 AMBIGUOUS = (InstrumentTimeout, ConnectionLost, GarbledReply, TruncatedBlock)
@@ -48,6 +50,7 @@ class Setting:
     query: str | None = None
     expected: Any = None  # parsed read-back value (float, bool, int or upper-case word)
     parse: Callable[[str, str, str], Any] | None = None  # how the read-back is parsed
+    enables: bool | None = None  # True: switches an output on; False: off; None: a level
 
 
 def parse_float(text: str, resource: str, command: str) -> float:
@@ -124,6 +127,15 @@ class Instrument:
         """The settings in the order they were (last) made; what restore() applies."""
         return list(self._state.values())
 
+    def restore_order(self) -> list[tuple[str, Setting]]:
+        """Outputs to switch off first, then levels and limits in the order they were set,
+        outputs to switch on last: nothing turns on before its limits are in place."""
+        items = list(self._state.items())
+        offs = [item for item in items if item[1].enables is False]
+        levels = [item for item in items if item[1].enables is None]
+        ons = [item for item in items if item[1].enables is True]
+        return offs + levels + ons
+
     def known_state_items(self) -> list[tuple[str, Setting]]:
         return list(self._state.items())
 
@@ -191,6 +203,7 @@ class Instrument:
         parse: Callable[[str, str, str], Any] = parse_float,
         remember: bool = True,
         ch: int | None = None,
+        enables: bool | None = None,
     ) -> Any:
         """Send setting ``key`` (a profile command), check the error queue, read it back.
 
@@ -203,9 +216,9 @@ class Instrument:
         slot = slot or key
         previous = self._state.pop(slot, None)
         if remember:
-            self._state[slot] = Setting(command, query, None, parse)
+            self._state[slot] = Setting(command, query, None, parse, enables)
         try:
-            return self._apply(slot, command, query, parse, remember)
+            return self._apply(slot, command, query, parse, remember, enables)
         except InstrumentReportedError:
             # The instrument refused it: the old setting still stands.
             self._state.pop(slot, None)
@@ -227,6 +240,7 @@ class Instrument:
         query: str | None,
         parse: Callable[[str, str, str], Any],
         remember: bool,
+        enables: bool | None = None,
     ) -> Any:
         self.transport.write(command)
         self.drain_errors(command)
@@ -234,7 +248,7 @@ class Instrument:
             return None
         actual = parse(self.transport.query(query), self.resource, query)
         if remember:
-            self._state[slot] = Setting(command, query, actual, parse)
+            self._state[slot] = Setting(command, query, actual, parse, enables)
         return actual
 
     def recover(self) -> None:
@@ -252,24 +266,49 @@ class Instrument:
                 self._sleep(BACKOFF_S[min(attempt, len(BACKOFF_S) - 1)])
 
     def restore(self) -> None:
-        """Apply every remembered setting again in order; read back and compare each one."""
-        for slot, setting in list(self._state.items()):
-            self.transport.write(setting.command)
-            self.drain_errors(setting.command)
-            if setting.query is None:
-                continue
-            reply = self.transport.query(setting.query)
-            parse = setting.parse or parse_float
-            actual = parse(reply, self.resource, setting.query)
-            if setting.expected is None:  # never read back before: this is the first reading
-                self._state[slot] = Setting(setting.command, setting.query, actual, parse)
-            elif not _same(setting.expected, actual):
-                raise StateNotRestored(
-                    self.resource,
-                    setting.query,
-                    f"{slot} reads back {actual!r} after recovery, expected {setting.expected!r}",
-                    reply,
-                )
+        """Apply every remembered setting again (restore_order()); read back and compare
+        each one. A passing fault (timeout, garbage) retries that one setting after a clear;
+        a lost connection may mean the instrument reset, so it starts over from the first
+        setting. At most RESTORE_FAULTS faults, then the last one is raised."""
+        order = self.restore_order()
+        faults = 0
+        position = 0
+        while position < len(order):
+            slot, setting = order[position]
+            try:
+                self._restore_one(slot, setting)
+                position += 1
+            except AMBIGUOUS as exc:
+                faults += 1
+                if faults > RESTORE_FAULTS:
+                    raise
+                self._sleep(BACKOFF_S[min(faults - 1, len(BACKOFF_S) - 1)])
+                if isinstance(exc, ConnectionLost):
+                    self.transport.reconnect()
+                    order, position = self.restore_order(), 0
+                else:
+                    try:
+                        self.transport.clear()
+                    except InstrumentError:
+                        self.transport.reconnect()
+
+    def _restore_one(self, slot: str, setting: Setting) -> None:
+        self.transport.write(setting.command)
+        self.drain_errors(setting.command)
+        if setting.query is None:
+            return
+        reply = self.transport.query(setting.query)
+        parse = setting.parse or parse_float
+        actual = parse(reply, self.resource, setting.query)
+        if setting.expected is None:  # never read back before: this is the first reading
+            self._state[slot] = dataclasses.replace(setting, expected=actual, parse=parse)
+        elif not _same(setting.expected, actual):
+            raise StateNotRestored(
+                self.resource,
+                setting.query,
+                f"{slot} reads back {actual!r} after recovery, expected {setting.expected!r}",
+                reply,
+            )
 
     # -- queries ------------------------------------------------------------------------
     def ask_text(self, command: str) -> str:

@@ -20,6 +20,7 @@ class Load(Instrument):
         self.configure(
             "input_on" if on else "input_off",
             slot="input",
+            enables=on,
             query_key="input_query",
             parse=parse_bool,
         )

@@ -25,6 +25,7 @@ class Supply(Instrument):
         self.configure(
             "output_on" if on else "output_off",
             slot="output",
+            enables=on,
             query_key="output_query",
             parse=parse_bool,
         )

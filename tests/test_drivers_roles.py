@@ -388,18 +388,80 @@ def test_scope_waveform_timeout_grows_with_the_record():
 
 
 def test_recovery_itself_is_retried_when_it_meets_a_passing_fault():
+    """Garbage during the restore retries that setting after a clear; a lost connection
+    during the restore starts it over (the instrument may have reset)."""
     gen, t, pauses = make(
         Generator,
         "generator",
         [
+            ("SOUR1:FREQ 10", None), OK, ("SOUR1:FREQ?", "10"),
             ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
             (RECONNECT, None),
             ("OUTP1 OFF", None), ("SYST:ERR?", GarbledReply(RES, "SYST:ERR?", "noise", b"\xff")),
+            (CLEAR, None),
+            ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
+            ("SOUR1:FREQ 10", ConnectionLost(RES, "SOUR1:FREQ 10", "reset by peer")),
             (RECONNECT, None),
             ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
+            ("SOUR1:FREQ 10", None), OK, ("SOUR1:FREQ?", "10"),
         ],
     )  # fmt: skip
+    gen.set_frequency(10.0)
     gen.output(False)
     gen.recover()
-    assert len(pauses) == 1
+    assert len(pauses) == 2
+    done(t)
+
+
+def test_a_restore_gives_up_after_its_fault_budget():
+    lost = InstrumentTimeout(RES, "SYST:ERR?", "no reply")
+    pairs = [("OUTP1 OFF", None), OK, ("OUTP1?", "0")]
+    for _ in range(2):  # two recovery attempts, each meeting 7 faults (a budget of 6)
+        pairs.append((RECONNECT, None))
+        for k in range(7):
+            pairs += [("OUTP1 OFF", None), ("SYST:ERR?", lost)] + ([(CLEAR, None)] if k < 6 else [])
+    gen, t, _ = make(Generator, "generator", pairs)
+    gen.output(False)
+    with pytest.raises(InstrumentTimeout):
+        gen.recover()
+    done(t)
+
+
+def test_restore_puts_limits_and_levels_before_any_output_turns_on():
+    """FIELD.md cautions: set limits before any output turns on. The supply was switched on
+    and then moved to 5 V; after a lost connection the 5 V level (and the limit) go back
+    before OUTP ON, and the generator's OFF goes first."""
+    sup, t, _ = make(
+        Supply,
+        "supply",
+        [
+            ("SOUR1:CURR 0.1", None), OK, ("SOUR1:CURR?", "0.1"),
+            ("SOUR1:VOLT 1", None), OK, ("SOUR1:VOLT?", "1"),
+            ("OUTP1 ON", None), OK, ("OUTP1?", "1"),
+            ("SOUR1:VOLT 5", ConnectionLost(RES, "SOUR1:VOLT 5", "reset by peer")),
+            (RECONNECT, None),
+            ("SOUR1:CURR 0.1", None), OK, ("SOUR1:CURR?", "0.1"),
+            ("SOUR1:VOLT 5", None), OK, ("SOUR1:VOLT?", "5"),
+            ("OUTP1 ON", None), OK, ("OUTP1?", "1"),
+        ],
+    )  # fmt: skip
+    sup.set_current_limit(0.1)
+    sup.set_voltage(1.0)
+    sup.output(True)
+    sup.set_voltage(5.0)
+    done(t)
+    gen, t, _ = make(
+        Generator,
+        "generator",
+        [
+            ("SOUR1:FREQ 10", None), OK, ("SOUR1:FREQ?", "10"),
+            ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
+            (RECONNECT, None),
+            ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
+            ("SOUR1:FREQ 10", None), OK, ("SOUR1:FREQ?", "10"),
+        ],
+    )  # fmt: skip
+    gen.set_frequency(10.0)
+    gen.output(False)
+    gen.recover()
     done(t)

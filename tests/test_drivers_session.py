@@ -105,11 +105,11 @@ def test_safe_state_on_fresh_connections_in_order_and_recovery_keeps_it():
     conv.add(
         "generator#1", [(RECONNECT, None), ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0")]
     )
+    # (outputs being switched off are restored first, levels after them)
     conv.add(
-        "supply#1",
-        [(RECONNECT, None), ("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0")],
+        "supply#1", [(RECONNECT, None), ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0")]
     )
-    conv.add("supply#1", [("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0")])
+    conv.add("supply#1", [("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0")])
     conv.add("scope#1", [(RECONNECT, None)])
     conv.add("load#1", [(RECONNECT, None), ("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0")])
     session.recover()

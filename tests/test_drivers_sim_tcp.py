@@ -70,7 +70,13 @@ def _power_up(session, frequency: float = 1000.0) -> float:
     gen.set_sine(frequency, 0.1, 0.0)
     gen.output(True)
     scope.trigger_external()
-    return gen.set_frequency(frequency)
+    actual = gen.set_frequency(frequency)
+    # Settle: ~10 bias-filter time constants (Rb·Cb) of capture, which also advances the
+    # simulator's clock (the truth is the settled state; FIELD.md: wait 5-7 time constants).
+    settle = 10.0 * bench.injector.bias_resistor * bench.injector.bias_capacitor
+    scope.set_timebase(1e-5, round(settle / 1e-5))
+    scope.acquire(settle)
+    return actual
 
 
 def test_identify_configure_acquire_and_volts_match_the_simulator_truth():
@@ -129,11 +135,18 @@ def test_injected_faults_give_right_answers_or_specific_errors_never_wrong_numbe
                 except InstrumentError:
                     errors += 1
             scope = session.scope
+            for _ in range(5):  # power up through the faults, then let the injector settle
+                # (captures follow no frequency step: the truth is the settled phasor)
+                try:
+                    _power_up(session)
+                    break
+                except InstrumentError:
+                    session.recover()
+            assert running.simulator.truth().generator_on
             pin = bench.scope.pin
             for _ in range(4):
                 try:
                     frequency = session.generator.set_frequency(1000.0)
-                    session.generator.output(True)
                     scope.configure_channel(pin.channel, 0.4, 0.0, pin.coupling, None)
                     interval, length = scope.set_timebase(1e-6, 20_000)
                     scope.acquire(length * interval)
