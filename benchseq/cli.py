@@ -174,7 +174,7 @@ def cmd_show(args: argparse.Namespace) -> int:
 def cmd_scan(args: argparse.Namespace) -> int:
     from benchseq.drivers.session import scan
 
-    entries = scan(args.visa_library, timeout_s=args.timeout)
+    entries = scan(args.visa_library, timeout_s=args.timeout, resources=args.address or None)
     if args.json:
         _print_json(
             [{"resource": e.resource, "identity": e.identity, "error": e.error} for e in entries]
@@ -238,6 +238,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_show)
 
     p = sub.add_parser("scan", help="list reachable VISA instruments and their *IDN?")
+    p.add_argument(
+        "address",
+        nargs="*",
+        help="also ask these resources (LAN SOCKET addresses cannot be discovered)",
+    )
     p.add_argument("--visa-library", default="@py", help="VISA library (default @py: pyvisa-py)")
     p.add_argument("--timeout", type=float, default=1.0, help="seconds per instrument")
     p.add_argument("--json", action="store_true", help="print as JSON")
