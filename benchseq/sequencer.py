@@ -125,6 +125,7 @@ class Sequencer:
         self._freq_now: float | None = None
         self._pin_dc = float("nan")
         self.calibration: analysis.ChannelCalibration | None = None
+        self._last_waveforms: tuple[Any, Any, float] | None = None
 
     # -- the whole run ---------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -155,7 +156,9 @@ class Sequencer:
                 row, truth = self._measure_with_retries(
                     i, carry, done=len(stored) + position, total=total
                 )
-                self.writer.append(int(row["point_id"]), row, truth=truth)
+                self.writer.append(
+                    int(row["point_id"]), row, truth=truth, waveforms=self._waveforms_to_keep()
+                )
                 carry = Carry.from_row(row)
                 counts["measured"] += 1
                 counts["bounds"] += int(bool(row["is_bound"]))
@@ -519,6 +522,7 @@ class Sequencer:
         pin_ranges, out_ranges = self._tip_ranges(pin_ch), self._tip_ranges(out_ch)
         while True:
             pins, outs, interval = self._acquire(plan, pin_range, out_range)
+            self._last_waveforms = (pins[-1], outs[-1], interval)
             used += 1
             result = analysis.measure_point(
                 np.vstack([w.volts() for w in pins]),
@@ -593,6 +597,24 @@ class Sequencer:
         if longer.capture_time <= plan.capture_time * 1.2:
             return None
         return longer
+
+    def _waveforms_to_keep(self) -> dict[str, Any] | None:
+        """The point's last raw records (codes with their scaling), when asked to keep them."""
+        if not self.keep_waveforms or self._last_waveforms is None:
+            return None
+        from benchseq.store import StoredWaveform
+
+        pin, out, interval = self._last_waveforms
+        kept = {}
+        for name, wave in (("pin", pin), ("output", out)):
+            scale = float(wave.volts_per_code * wave.probe)
+            offset = float(
+                (wave.volts_at_zero - wave.code_offset * wave.volts_per_code) * wave.probe
+            )
+            kept[name] = StoredWaveform(
+                samples=np.asarray(wave.codes), scale=scale, offset=offset, sample_interval=interval
+            )
+        return kept
 
     # -- watching ------------------------------------------------------------------------
     def _watch(self, rule: str, message: str) -> None:

@@ -145,3 +145,30 @@ def test_stop_then_resume_matches_an_uninterrupted_run(
     done, _ = resume_run(str(path))
     assert done is None  # a complete run: nothing to do
     assert math.isfinite(float(read_meta(path)["planned_bench_time_s"]))
+
+
+def test_keep_waveforms_stores_the_raw_records_with_their_scaling(tmp_path: Path) -> None:
+    """--keep-waveforms: the stored codes × scale + offset, fitted at the stored frequency,
+    give back the stored pin amplitude (IEEE 1057 three-parameter fit, numpy lstsq here)."""
+    from benchseq.store import read_waveforms
+
+    text = (
+        (PLANS / "demo.toml")
+        .read_text(encoding="utf-8")
+        .replace(
+            'frequency = { from = "10 Hz", to = "1 MHz", per_decade = 3 }', 'frequency = ["1 kHz"]'
+        )
+    )
+    plan = tmp_path / "one.toml"
+    plan.write_text(text, encoding="utf-8")
+    outcome, path = start_run(str(plan), None, str(tmp_path / "w.h5"), keep_waveforms=True)
+    assert outcome.status == "complete"
+    row = read_results(path).iloc[0]
+    waves = read_waveforms(path, int(row["point_id"]))
+    pin = waves["pin"].values()
+    t = np.arange(pin.size) * waves["pin"].sample_interval
+    w = 2 * np.pi * row["frequency_fitted"]
+    design = np.column_stack([np.cos(w * t), np.sin(w * t), np.ones_like(t)])
+    (a, b, _), *_ = np.linalg.lstsq(design, pin, rcond=None)
+    # the stored row may come from an averaged capture; the kept record is its last one
+    assert math.hypot(a, b) == pytest.approx(abs(row["pin"]), rel=0.01)
