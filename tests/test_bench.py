@@ -11,7 +11,6 @@ External references used below:
 
 from __future__ import annotations
 
-import copy
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -19,6 +18,7 @@ from typing import Any
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from tomlfuzz import mutate
 
 from benchseq.bench import Bench, PinLoad, describe_band, load_bench, parse_bench
 from benchseq.errors import BadInput, FileKeyError
@@ -245,20 +245,6 @@ def test_random_toml_trees_give_a_bench_or_a_bad_input(data: dict[str, Any]) -> 
     _never_a_traceback(data)
 
 
-def _paths(tree: Any, prefix: tuple[Any, ...] = ()) -> list[tuple[Any, ...]]:
-    found: list[tuple[Any, ...]] = []
-    if isinstance(tree, dict):
-        items: Any = tree.items()
-    elif isinstance(tree, list):
-        items = enumerate(tree)
-    else:
-        items = []
-    for key, value in items:
-        found.append((*prefix, key))
-        found.extend(_paths(value, (*prefix, key)))
-    return found
-
-
 @st.composite
 def _mutated_bench(draw: st.DrawFn) -> dict[str, Any]:
     """The template or the simulated bench with random deletions, replacements, renames."""
@@ -266,22 +252,7 @@ def _mutated_bench(draw: st.DrawFn) -> dict[str, Any]:
 
     text = draw(st.sampled_from([template_text(), embedded_bench_text("demo")]))
     data = tomllib.loads(text)
-    for _ in range(draw(st.integers(min_value=1, max_value=3))):
-        paths = _paths(data)
-        if not paths:
-            break
-        path = draw(st.sampled_from(paths))
-        parent = data
-        for key in path[:-1]:
-            parent = parent[key]
-        action = draw(st.sampled_from(["delete", "replace", "rename"]))
-        if action == "delete":
-            del parent[path[-1]]
-        elif action == "replace":
-            parent[path[-1]] = copy.deepcopy(draw(_TREES))
-        elif isinstance(parent, dict):
-            parent[path[-1] + draw(st.sampled_from(["s", "_", "x"]))] = parent.pop(path[-1])
-    return data
+    return mutate(draw, data, _TREES)
 
 
 @FAST

@@ -10,7 +10,6 @@ External references used below:
 
 from __future__ import annotations
 
-import copy
 import math
 import tomllib
 from pathlib import Path
@@ -20,6 +19,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from tomlfuzz import mutate
 
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.plan import MAX_POINTS, Plan, Sweep, load_plan, parse_plan
@@ -559,42 +559,12 @@ def test_random_toml_trees_give_a_plan_or_a_bad_input(data: dict[str, Any]) -> N
     _never_a_traceback(data)
 
 
-def _paths(tree: Any, prefix: tuple[Any, ...] = ()) -> list[tuple[Any, ...]]:
-    found: list[tuple[Any, ...]] = []
-    items = (
-        tree.items()
-        if isinstance(tree, dict)
-        else enumerate(tree)
-        if isinstance(tree, list)
-        else []
-    )
-    for key, value in items:
-        found.append((*prefix, key))
-        found.extend(_paths(value, (*prefix, key)))
-    return found
-
-
 @st.composite
 def _mutated_example(draw: st.DrawFn) -> dict[str, Any]:
     """An example plan with a few random deletions, replacements and misspelt keys."""
     name = draw(st.sampled_from(["demo.toml", "overnight.toml"]))
     data = tomllib.loads((PLANS / name).read_text(encoding="utf-8"))
-    for _ in range(draw(st.integers(min_value=1, max_value=3))):
-        paths = _paths(data)
-        if not paths:
-            break
-        path = draw(st.sampled_from(paths))
-        parent = data
-        for key in path[:-1]:
-            parent = parent[key]
-        action = draw(st.sampled_from(["delete", "replace", "rename"]))
-        if action == "delete":
-            del parent[path[-1]]
-        elif action == "replace":
-            parent[path[-1]] = copy.deepcopy(draw(_TREES))
-        elif isinstance(parent, dict):
-            parent[path[-1] + draw(st.sampled_from(["s", "_", "x"]))] = parent.pop(path[-1])
-    return data
+    return mutate(draw, data, _TREES)
 
 
 @FAST
