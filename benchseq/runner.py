@@ -102,18 +102,49 @@ def start_run(
 
     ``session_factory(bench, seed=, faults=)`` replaces benchseq.drivers.session.open_session
     (tests use it to keep hold of the simulated bench and read its log)."""
+    plan = load_plan(plan_path)
+    bench = load_bench(bench_path)
+    return run_prepared(
+        plan,
+        bench,
+        Path(out) if out else default_output(plan),
+        force=force,
+        keep_waveforms=keep_waveforms,
+        seed=seed,
+        emit=emit,
+        stop=stop,
+        faults=faults,
+        session_factory=session_factory,
+    )
+
+
+def run_prepared(
+    plan: Plan,
+    bench: Bench,
+    path: Path,
+    *,
+    meta_extra: dict[str, Any] | None = None,
+    force: bool = False,
+    keep_waveforms: bool = False,
+    seed: int = 0,
+    emit: EventSink | None = None,
+    stop: StopControl | None = None,
+    faults: Any = None,
+    session_factory: Any = None,
+) -> tuple[RunOutcome, Path]:
+    """Run already-parsed ``plan`` and ``bench`` into a new result file at ``path``.
+
+    ``meta_extra`` adds run-level metadata (a replay records what it replayed there)."""
     from benchseq.drivers.session import open_session
     from benchseq.store import RunWriter
 
     open_session = session_factory or open_session
-
-    plan = load_plan(plan_path)
-    bench = load_bench(bench_path)
     report = _refuse_infeasible(plan, bench)
-    path = Path(out) if out else default_output(plan)
+    meta = run_meta(plan, bench, seed, keep_waveforms, report)
+    meta.update(meta_extra or {})
     writer = RunWriter.create(
         path,
-        run_meta(plan, bench, seed, keep_waveforms, report),
+        meta,
         POINT_COLUMNS,
         force=force,
         truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,

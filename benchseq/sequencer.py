@@ -106,6 +106,7 @@ class Sequencer:
         keep_waveforms: bool = False,
         seed: int = 0,
         planned_bench_time: float = 0.0,
+        calibration: analysis.ChannelCalibration | None = None,
     ) -> None:
         self.plan = plan
         self.bench = bench
@@ -124,7 +125,7 @@ class Sequencer:
         self._generator_on = False
         self._freq_now: float | None = None
         self._pin_dc = float("nan")
-        self.calibration: analysis.ChannelCalibration | None = None
+        self.calibration = calibration  # channel match applied to every ratio (None: none)
         self._last_waveforms: tuple[Any, Any, float] | None = None
 
     # -- the whole run ---------------------------------------------------------------
