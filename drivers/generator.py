@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from benchseq.drivers.instrument import Instrument, parse_bool, parse_word
+from benchseq.drivers.instrument import Instrument, parse_word
 
 LOAD_MODES = {"50 ohm": "load_50_ohm", "high-z": "load_high_z"}
 
@@ -46,13 +46,7 @@ class Generator(Instrument):
 
     def output(self, on: bool) -> None:
         """Switch the output; read back and remembered for recovery."""
-        self.configure(
-            "output_on" if on else "output_off",
-            slot="output",
-            enables=on,
-            query_key="output_query",
-            parse=parse_bool,
-        )
+        self.switch("output", on)
 
     def output_is_on(self) -> bool:
-        return bool(self.ask("output_query", parse_bool))
+        return self.switched_on("output")

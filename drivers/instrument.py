@@ -233,6 +233,22 @@ class Instrument:
             setting = self._state[slot]
             return setting.expected if setting.query else None
 
+    def switch(self, name: str, on: bool) -> None:
+        """Switch ``name`` (an output or input) with the profile's ``<name>_on`` /
+        ``<name>_off`` commands, read back with ``<name>_query`` and remembered for recovery
+        (restore() switches it off first or on last)."""
+        self.configure(
+            f"{name}_on" if on else f"{name}_off",
+            slot=name,
+            enables=on,
+            query_key=f"{name}_query",
+            parse=parse_bool,
+        )
+
+    def switched_on(self, name: str) -> bool:
+        """The instrument's own answer to ``<name>_query`` (read-only, retried)."""
+        return bool(self.ask(f"{name}_query", parse_bool))
+
     def _apply(
         self,
         slot: str,

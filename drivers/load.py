@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from benchseq.drivers.instrument import Instrument, parse_bool
+from benchseq.drivers.instrument import Instrument
 
 
 class Load(Instrument):
@@ -17,16 +17,10 @@ class Load(Instrument):
         self.configure("current", float(amperes), query_key="current_query")
 
     def input(self, on: bool) -> None:
-        self.configure(
-            "input_on" if on else "input_off",
-            slot="input",
-            enables=on,
-            query_key="input_query",
-            parse=parse_bool,
-        )
+        self.switch("input", on)
 
     def input_is_on(self) -> bool:
-        return bool(self.ask("input_query", parse_bool))
+        return self.switched_on("input")
 
     def measure_current(self) -> float:
         return float(self.ask("measure_current"))

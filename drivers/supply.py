@@ -22,16 +22,10 @@ class Supply(Instrument):
         self.configure("overvoltage_on", slot="overvoltage_state")
 
     def output(self, on: bool) -> None:
-        self.configure(
-            "output_on" if on else "output_off",
-            slot="output",
-            enables=on,
-            query_key="output_query",
-            parse=parse_bool,
-        )
+        self.switch("output", on)
 
     def output_is_on(self) -> bool:
-        return bool(self.ask("output_query", parse_bool))
+        return self.switched_on("output")
 
     def measure_voltage(self) -> float:
         """Output voltage as measured by the supply (V)."""
