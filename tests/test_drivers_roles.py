@@ -10,8 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from fakebench import OK, RES, done, on_replay
 
-from benchseq.bench import InstrumentSpec, ScopeChannel, ScopeSetup
+from benchseq.bench import ScopeChannel, ScopeSetup
 from benchseq.drivers.errors import (
     ConnectionLost,
     GarbledReply,
@@ -22,37 +23,15 @@ from benchseq.drivers.errors import (
 )
 from benchseq.drivers.generator import Generator
 from benchseq.drivers.load import Load
-from benchseq.drivers.profile import load_profile
-from benchseq.drivers.replay import CLEAR, RECONNECT, ReplayMismatch, replay
+from benchseq.drivers.replay import CLEAR, RECONNECT, ReplayMismatch
 from benchseq.drivers.scope import Scope
 from benchseq.drivers.supply import Supply
-
-OK = ("SYST:ERR?", '+0,"No error"')
-RES = "REPLAY::1"
-
-
-def _spec(role: str, channel: int = 1, timeout_s: float = 5.0) -> InstrumentSpec:
-    return InstrumentSpec(role, RES, f"scpi-{role}", None, channel, timeout_s)
-
-
-def make(cls, role: str, pairs, **kw):
-    transport = replay(pairs, RES)
-    pauses: list[float] = []
-    inst = cls(
-        load_profile(f"scpi-{role}", role), transport, _spec(role, **kw), sleep=pauses.append
-    )
-    return inst, transport, pauses
-
-
-def done(transport) -> None:
-    transport.conversation.assert_done()
 
 
 # -- generator ------------------------------------------------------------------------------
 def test_generator_set_sine_sends_function_unit_frequency_amplitude_offset_in_order():
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [
             ("SOUR1:FUNC SIN", None), OK, ("SOUR1:FUNC?", "SIN"),
             ("SOUR1:VOLT:UNIT VPP", None), OK,
@@ -66,9 +45,8 @@ def test_generator_set_sine_sends_function_unit_frequency_amplitude_offset_in_or
 
 
 def test_generator_returns_the_frequency_it_reads_back_not_the_one_asked():
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [("SOUR2:FREQ 1234.5", None), OK, ("SOUR2:FREQ?", "1234.4999")],
         channel=2,
     )
@@ -77,9 +55,8 @@ def test_generator_returns_the_frequency_it_reads_back_not_the_one_asked():
 
 
 def test_generator_load_mode_and_output():
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [
             ("OUTP1:LOAD INF", None), OK,
             ("OUTP1:LOAD 50", None), OK,
@@ -97,9 +74,8 @@ def test_generator_load_mode_and_output():
 
 
 def test_an_error_queue_entry_names_instrument_command_and_error_and_is_not_remembered():
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [
             ("SOUR1:FREQ 1000000000", None),
             ("SYST:ERR?", '-222,"Data out of range"'),
@@ -117,15 +93,13 @@ def test_an_error_queue_entry_names_instrument_command_and_error_and_is_not_reme
 
 
 def test_replay_fails_on_an_unexpected_command():
-    gen, _t, _ = make(Generator, "generator", [("SOUR1:FREQ 10", None), OK])
+    gen, _t, _ = on_replay(Generator, [("SOUR1:FREQ 10", None), OK])
     with pytest.raises(ReplayMismatch, match="SOUR1:VOLT"):
         gen.set_amplitude_pp(1.0)
 
 
 def test_replay_fails_when_a_recorded_step_is_left_unused():
-    gen, t, _ = make(
-        Generator, "generator", [("OUTP1 OFF", None), OK, ("OUTP1?", "0"), ("OUTP1?", "0")]
-    )
+    gen, t, _ = on_replay(Generator, [("OUTP1 OFF", None), OK, ("OUTP1?", "0"), ("OUTP1?", "0")])
     gen.output(False)
     with pytest.raises(ReplayMismatch, match="never happened"):
         done(t)
@@ -134,9 +108,8 @@ def test_replay_fails_when_a_recorded_step_is_left_unused():
 # -- recovery ---------------------------------------------------------------------------------
 def test_an_ambiguous_setting_failure_reconnects_and_reapplies_the_whole_state_verified():
     """A setting is never blindly re-sent: reconnect, apply everything known, read back."""
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [
             ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
             ("SOUR1:VOLT 0.1", None), OK, ("SOUR1:VOLT?", "0.1"),
@@ -155,9 +128,8 @@ def test_an_ambiguous_setting_failure_reconnects_and_reapplies_the_whole_state_v
 
 
 def test_a_restore_that_reads_back_something_else_is_an_error():
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [
             ("SOUR1:VOLT 0.1", None), OK, ("SOUR1:VOLT?", "0.1"),
             ("SOUR1:FREQ 500", ConnectionLost(RES, "SOUR1:FREQ 500", "closed")),
@@ -172,9 +144,8 @@ def test_a_restore_that_reads_back_something_else_is_an_error():
 
 
 def test_a_read_only_query_is_retried_after_a_timeout_and_a_garbled_reply():
-    sup, t, pauses = make(
+    sup, t, pauses = on_replay(
         Supply,
-        "supply",
         [
             ("MEAS1:VOLT?", InstrumentTimeout(RES, "MEAS1:VOLT?", "no reply")),
             (CLEAR, None),
@@ -190,7 +161,7 @@ def test_a_read_only_query_is_retried_after_a_timeout_and_a_garbled_reply():
 
 def test_query_retries_are_bounded():
     lost = InstrumentTimeout(RES, "OUTP1?", "no reply")
-    gen, t, pauses = make(Generator, "generator", [("OUTP1?", lost), (CLEAR, None)] * 3)
+    gen, t, pauses = on_replay(Generator, [("OUTP1?", lost), (CLEAR, None)] * 3)
     with pytest.raises(InstrumentTimeout):
         gen.output_is_on()
     assert pauses == sorted(pauses) and len(pauses) == 3  # growing back-off
@@ -198,9 +169,8 @@ def test_query_retries_are_bounded():
 
 
 def test_a_lost_connection_during_a_query_restores_state_before_asking_again():
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [
             ("OUTP1 ON", None), OK, ("OUTP1?", "1"),
             ("OUTP1?", ConnectionLost(RES, "OUTP1?", "reset by peer")),
@@ -218,9 +188,8 @@ def test_a_lost_connection_during_a_query_restores_state_before_asking_again():
 def test_supply_limits_output_and_readings():
     """QUEStionable condition bit 1 (value 2) is CURRent (SCPI-1999 Vol. 1, status
     reporting, from memory): 6 has it set, 4 does not."""
-    sup, t, _ = make(
+    sup, t, _ = on_replay(
         Supply,
-        "supply",
         [
             ("SOUR1:CURR 0.1", None), OK, ("SOUR1:CURR?", "0.1"),
             ("SOUR1:VOLT:PROT 6.5", None), OK, ("SOUR1:VOLT:PROT?", "6.5"),
@@ -246,9 +215,8 @@ def test_supply_limits_output_and_readings():
 
 # -- load -----------------------------------------------------------------------------------
 def test_load_sets_constant_current_mode_once():
-    load, t, _ = make(
+    load, t, _ = on_replay(
         Load,
-        "load",
         [
             ("SOUR1:FUNC CURR", None), OK,
             ("SOUR1:CURR 0.05", None), OK, ("SOUR1:CURR?", "0.05"),
@@ -271,11 +239,8 @@ def test_load_sets_constant_current_mode_once():
 # -- scope ----------------------------------------------------------------------------------
 def _scope(pairs, timeout_s: float = 5.0):
     setup = ScopeSetup(ScopeChannel(1, 10.0, "AC"), ScopeChannel(2, 1.0, "AC"), 20e6, None)
-    transport = replay(pairs, RES)
-    spec = InstrumentSpec("scope", RES, "scpi-scope", None, 1, timeout_s)
-    return Scope(
-        load_profile("scpi-scope", "scope"), transport, spec, setup, sleep=lambda s: None
-    ), transport
+    scope, transport, _ = on_replay(Scope, pairs, timeout_s=timeout_s, setup=setup)
+    return scope, transport
 
 
 def test_scope_channel_ranges_are_given_at_the_probe_tip():
@@ -390,9 +355,8 @@ def test_scope_waveform_timeout_grows_with_the_record():
 def test_recovery_itself_is_retried_when_it_meets_a_passing_fault():
     """Garbage during the restore retries that setting after a clear; a lost connection
     during the restore starts it over (the instrument may have reset)."""
-    gen, t, pauses = make(
+    gen, t, pauses = on_replay(
         Generator,
-        "generator",
         [
             ("SOUR1:FREQ 10", None), OK, ("SOUR1:FREQ?", "10"),
             ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),
@@ -420,7 +384,7 @@ def test_a_restore_gives_up_after_its_fault_budget():
         pairs.append((RECONNECT, None))
         for k in range(7):
             pairs += [("OUTP1 OFF", None), ("SYST:ERR?", lost)] + ([(CLEAR, None)] if k < 6 else [])
-    gen, t, _ = make(Generator, "generator", pairs)
+    gen, t, _ = on_replay(Generator, pairs)
     gen.output(False)
     with pytest.raises(InstrumentTimeout):
         gen.recover()
@@ -431,9 +395,8 @@ def test_restore_puts_limits_and_levels_before_any_output_turns_on():
     """FIELD.md cautions: set limits before any output turns on. The supply was switched on
     and then moved to 5 V; after a lost connection the 5 V level (and the limit) go back
     before OUTP ON, and the generator's OFF goes first."""
-    sup, t, _ = make(
+    sup, t, _ = on_replay(
         Supply,
-        "supply",
         [
             ("SOUR1:CURR 0.1", None), OK, ("SOUR1:CURR?", "0.1"),
             ("SOUR1:VOLT 1", None), OK, ("SOUR1:VOLT?", "1"),
@@ -450,9 +413,8 @@ def test_restore_puts_limits_and_levels_before_any_output_turns_on():
     sup.output(True)
     sup.set_voltage(5.0)
     done(t)
-    gen, t, _ = make(
+    gen, t, _ = on_replay(
         Generator,
-        "generator",
         [
             ("SOUR1:FREQ 10", None), OK, ("SOUR1:FREQ?", "10"),
             ("OUTP1 OFF", None), OK, ("OUTP1?", "0"),

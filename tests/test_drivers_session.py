@@ -8,25 +8,14 @@ from __future__ import annotations
 import dataclasses
 
 import pytest
+from fakebench import OK, Connector, FakeClock, first_opened
 
 from benchseq.bench import InstrumentSpec, LoadSetup, load_bench
 from benchseq.drivers.errors import ConnectionLost
-from benchseq.drivers.replay import CLOSE, RECONNECT, Conversation, ReplayTransport
+from benchseq.drivers.replay import CLOSE, RECONNECT, Conversation
 from benchseq.drivers.session import MonotonicClock, assemble_session
 
-OK = '+0,"No error"'
 ROLES = ("generator", "supply", "scope", "load")
-
-
-class FakeClock:
-    def __init__(self) -> None:
-        self.t = 0.0
-
-    def now(self) -> float:
-        return self.t
-
-    def sleep(self, s: float) -> None:
-        self.t += s
 
 
 def _bench(safe_level: float = 0.0):
@@ -40,32 +29,30 @@ def _bench(safe_level: float = 0.0):
     )
 
 
-class Connector:
-    """connect(role) -> a replay transport named '<role>#<n>' (n = 1 for the session's own)."""
-
-    def __init__(self, conversation: Conversation, fail: set[str] = frozenset()) -> None:
-        self.conversation = conversation
-        self.count: dict[str, int] = {}
-        self.fail = set(fail)
-
-    def __call__(self, role: str) -> ReplayTransport:
-        n = self.count[role] = self.count.get(role, 0) + 1
-        if n > 1 and role in self.fail:
-            raise ConnectionLost(f"{role}#{n}", "", "cannot open: connection refused")
-        return ReplayTransport(self.conversation, f"{role}#{n}")
-
-
 def _opening(conv: Conversation) -> None:
     for role in ROLES:
         conv.add(
             f"{role}#1",
-            [("*IDN?", f"Fernhollow,{role.upper()}-1,0001,1.0"), ("*CLS", None), ("SYST:ERR?", OK)],
+            [("*IDN?", f"Fernhollow,{role.upper()}-1,0001,1.0"), ("*CLS", None), OK],
         )
 
 
 def _open(conv: Conversation, fail: set[str] = frozenset(), safe_level: float = 0.0):
     _opening(conv)
     return assemble_session(_bench(safe_level), Connector(conv, fail), FakeClock())
+
+
+def _switched_off(conv: Conversation, resource: str, off: str, query: str, reads: str = "0"):
+    """The safe state on a fresh connection: switch off, read back, ask again, close."""
+    conv.add(resource, [(off, None), OK, (query, "0"), (query, reads), (CLOSE, None)])
+
+
+def _made_safe(conv: Conversation, generator_reads: str = "0") -> None:
+    """Generator off, load input off, supply to its 0 V safe level and off, in that order."""
+    _switched_off(conv, "generator#2", "OUTP1 OFF", "OUTP1?", generator_reads)
+    _switched_off(conv, "load#2", "INP1 OFF", "INP1?")
+    conv.add("supply#2", [("SOUR1:VOLT 0", None), OK, ("SOUR1:VOLT?", "0")])
+    _switched_off(conv, "supply#2", "OUTP1 OFF", "OUTP1?")
 
 
 def test_opening_identifies_and_clears_every_instrument_and_switches_nothing_on():
@@ -80,38 +67,19 @@ def test_opening_identifies_and_clears_every_instrument_and_switches_nothing_on(
 def test_safe_state_on_fresh_connections_in_order_and_recovery_keeps_it():
     conv = Conversation()
     session = _open(conv)
-    conv.add("generator#1", [("OUTP1 ON", None), ("SYST:ERR?", OK), ("OUTP1?", "1")])
+    conv.add("generator#1", [("OUTP1 ON", None), OK, ("OUTP1?", "1")])
     session.generator.output(True)
-    conv.add(
-        "generator#2",
-        [("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "0"), (CLOSE, None)],
-    )
-    conv.add(
-        "load#2",
-        [("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0"), ("INP1?", "0"), (CLOSE, None)],
-    )
-    conv.add(
-        "supply#2",
-        [
-            ("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0"),
-            ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "0"),
-            (CLOSE, None),
-        ],
-    )  # fmt: skip
+    _made_safe(conv)
     steps = session.safe_state()
     assert [s.split(":")[0] for s in steps] == ["generator", "load", "supply"]
     assert all("verified" in s and "fresh connection" in s for s in steps)
     # A later recovery re-applies the OFF state, never the ON it had before.
-    conv.add(
-        "generator#1", [(RECONNECT, None), ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0")]
-    )
+    conv.add("generator#1", [(RECONNECT, None), ("OUTP1 OFF", None), OK, ("OUTP1?", "0")])
     # (outputs being switched off are restored first, levels after them)
-    conv.add(
-        "supply#1", [(RECONNECT, None), ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0")]
-    )
-    conv.add("supply#1", [("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0")])
+    conv.add("supply#1", [(RECONNECT, None), ("OUTP1 OFF", None), OK, ("OUTP1?", "0")])
+    conv.add("supply#1", [("SOUR1:VOLT 0", None), OK, ("SOUR1:VOLT?", "0")])
     conv.add("scope#1", [(RECONNECT, None)])
-    conv.add("load#1", [(RECONNECT, None), ("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0")])
+    conv.add("load#1", [(RECONNECT, None), ("INP1 OFF", None), OK, ("INP1?", "0")])
     session.recover()
     conv.add("generator#1", [(CLOSE, None)]).add("supply#1", [(CLOSE, None)])
     conv.add("scope#1", [(CLOSE, None)]).add("load#1", [(CLOSE, None)])
@@ -125,14 +93,8 @@ def test_safe_state_goes_on_when_one_instrument_fails_and_says_so():
     conv = Conversation()
     session = _open(conv, fail={"generator"}, safe_level=1.0)
     conv.add("generator#1", [(RECONNECT, ConnectionLost("generator#1", "", "refused"))])
-    conv.add(
-        "load#2",
-        [("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0"), ("INP1?", "0"), (CLOSE, None)],
-    )
-    conv.add(
-        "supply#2",
-        [("SOUR1:VOLT 1", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "1.0"), (CLOSE, None)],
-    )
+    _switched_off(conv, "load#2", "INP1 OFF", "INP1?")
+    conv.add("supply#2", [("SOUR1:VOLT 1", None), OK, ("SOUR1:VOLT?", "1.0"), (CLOSE, None)])
     steps = session.safe_state()
     assert steps[0].startswith("generator: FAILED")
     assert steps[1].startswith("load: input off")
@@ -143,22 +105,7 @@ def test_safe_state_goes_on_when_one_instrument_fails_and_says_so():
 def test_safe_state_reports_an_output_that_stays_on():
     conv = Conversation()
     session = _open(conv)
-    conv.add(
-        "generator#2",
-        [("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "1"), (CLOSE, None)],
-    )
-    conv.add(
-        "load#2",
-        [("INP1 OFF", None), ("SYST:ERR?", OK), ("INP1?", "0"), ("INP1?", "0"), (CLOSE, None)],
-    )
-    conv.add(
-        "supply#2",
-        [
-            ("SOUR1:VOLT 0", None), ("SYST:ERR?", OK), ("SOUR1:VOLT?", "0"),
-            ("OUTP1 OFF", None), ("SYST:ERR?", OK), ("OUTP1?", "0"), ("OUTP1?", "0"),
-            (CLOSE, None),
-        ],
-    )  # fmt: skip
+    _made_safe(conv, generator_reads="1")
     steps = session.safe_state()
     assert "FAILED" in steps[0] and "still reads on" in steps[0]
     conv.assert_done()
@@ -166,7 +113,7 @@ def test_safe_state_reports_an_output_that_stays_on():
 
 def test_a_failing_identify_closes_what_was_opened():
     conv = Conversation()
-    conv.add("generator#1", [("*IDN?", "G"), ("*CLS", None), ("SYST:ERR?", OK)])
+    conv.add("generator#1", [("*IDN?", "G"), ("*CLS", None), OK])
     for _ in range(3):
         conv.add(
             "supply#1",
@@ -220,13 +167,7 @@ def test_simulated_faults_give_right_answers_or_specific_errors():
     from benchseq.sim.faults import FaultRates
 
     rates = {"generator": FaultRates(garbage=0.1, disconnect=0.05, no_reply=0.05)}
-    session = None
-    for attempt in range(5):
-        try:
-            session = open_session(load_bench("sim"), seed=attempt, faults=rates)
-            break
-        except InstrumentError:
-            continue
+    session = first_opened(lambda k: open_session(load_bench("sim"), seed=k, faults=rates))
     assert session is not None
     right = 0
     try:

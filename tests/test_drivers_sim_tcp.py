@@ -11,11 +11,10 @@ benchseq.analysis, so the drivers are checked independently of the analysis code
 from __future__ import annotations
 
 import dataclasses
-import signal
-from collections.abc import Iterator
 
 import numpy as np
 import pytest
+from fakebench import first_opened, time_bound
 
 from benchseq.bench import parse_bench
 from benchseq.drivers.errors import InstrumentError
@@ -25,17 +24,7 @@ from benchseq.tomlfile import parse_toml_text
 server_module = pytest.importorskip("benchseq.sim.server")
 faults_module = pytest.importorskip("benchseq.sim.faults")
 
-
-@pytest.fixture(autouse=True)
-def bounded() -> Iterator[None]:
-    def expired(signum, frame):  # pragma: no cover - only on a hang
-        raise TimeoutError("test exceeded its 30 s bound")
-
-    previous = signal.signal(signal.SIGALRM, expired)
-    signal.alarm(30)
-    yield
-    signal.alarm(0)
-    signal.signal(signal.SIGALRM, previous)
+bounded = time_bound(30)  # no test here may take longer, whatever the transport does
 
 
 def _served_bench(running, timeout_s: float | None = None):
@@ -116,13 +105,7 @@ def test_injected_faults_give_right_answers_or_specific_errors_never_wrong_numbe
     }
     with server_module.serve("demo", seed=5, faults=rates) as running:
         bench = _served_bench(running, timeout_s=0.3)
-        session = None
-        for _ in range(5):  # opening itself may meet a fault; it is retried by hand here
-            try:
-                session = open_session(bench)
-                break
-            except InstrumentError:
-                continue
+        session = first_opened(lambda _: open_session(bench))  # opening may meet a fault
         assert session is not None
         right = errors = 0
         try:

@@ -10,7 +10,6 @@ next query gets its own reply, not the stale one of the query that failed.
 from __future__ import annotations
 
 import contextlib
-import signal
 import socket
 import threading
 import time
@@ -18,6 +17,7 @@ from collections.abc import Iterator
 
 import numpy as np
 import pytest
+from fakebench import time_bound
 
 pyvisa = pytest.importorskip("pyvisa")
 
@@ -166,18 +166,7 @@ class TinyInstrument:
             thread.join(timeout=2.0)
 
 
-@pytest.fixture(autouse=True)
-def bounded() -> Iterator[None]:
-    """No test in this file may take more than 20 s, whatever the transport does."""
-
-    def expired(signum, frame):  # pragma: no cover - only on a hang
-        raise TimeoutError("test exceeded its 20 s bound")
-
-    previous = signal.signal(signal.SIGALRM, expired)
-    signal.alarm(20)
-    yield
-    signal.alarm(0)
-    signal.signal(signal.SIGALRM, previous)
+bounded = time_bound(20)  # no test in this file may take longer, whatever the transport does
 
 
 @pytest.fixture
@@ -195,14 +184,22 @@ def server() -> Iterator[TinyInstrument]:
     tiny.close()
 
 
-def _open(manager, server: TinyInstrument, timeout_s: float = TIMEOUT) -> VisaTransport:
-    spec = InstrumentSpec("generator", server.address, "scpi-generator", None, 1, timeout_s)
-    return VisaTransport(manager, spec, "\n", "\n")
+def _spec(server: TinyInstrument, timeout_s: float = TIMEOUT) -> InstrumentSpec:
+    return InstrumentSpec("generator", server.address, "scpi-generator", None, 1, timeout_s)
+
+
+@contextlib.contextmanager
+def _connected(manager, server: TinyInstrument, timeout_s: float = TIMEOUT):
+    """A VISA transport to the tiny instrument, closed afterwards whatever happens."""
+    transport = VisaTransport(manager, _spec(server, timeout_s), "\n", "\n")
+    try:
+        yield transport
+    finally:
+        transport.close()
 
 
 def test_identify_write_then_query_and_nodelay(manager, server):
-    transport = _open(manager, server)
-    try:
+    with _connected(manager, server) as transport:
         assert transport.uses_socket and transport.nodelay
         sock = transport._socket
         assert sock is not None and sock.getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY)
@@ -215,13 +212,10 @@ def test_identify_write_then_query_and_nodelay(manager, server):
             transport.query("SOUR1:FREQ?")
         # Nagle + delayed ACK would cost ~40 ms per pair (planning experiment); allow 10 ms.
         assert (time.perf_counter() - start) / 20 < 0.010
-    finally:
-        transport.close()
 
 
 def test_block_with_newlines_inside_is_read_by_its_declared_length(manager, server):
-    transport = _open(manager, server)
-    try:
+    with _connected(manager, server) as transport:
         seen: list[tuple[int, int]] = []
         transport.progress = lambda have, total: seen.append((have, total))
         assert transport.query_block("DATA?") == server.block
@@ -230,30 +224,26 @@ def test_block_with_newlines_inside_is_read_by_its_declared_length(manager, serv
         view = transport.query_block_view("DATA?")  # the copy-free read the scope uses
         assert view.readonly and bytes(view) == server.block
         assert [have for have, _ in seen] == sorted(have for have, _ in seen)
-    finally:
-        transport.close()
 
 
 def test_block_agrees_with_pyvisa_generic_binary_reader(manager, server):
     """pyvisa's own read_binary_values (reference library) on the same served bytes."""
-    transport = _open(manager, server)
-    reference = manager.open_resource(
-        server.address, read_termination="\n", write_termination="\n", timeout=2000
-    )
-    try:
-        ours = np.frombuffer(transport.query_block("DATA?"), dtype=np.int8)
-        theirs = reference.query_binary_values(
-            "DATA?", datatype="b", container=np.array, expect_termination=True
+    with _connected(manager, server) as transport:
+        reference = manager.open_resource(
+            server.address, read_termination="\n", write_termination="\n", timeout=2000
         )
-        np.testing.assert_array_equal(ours, theirs)
-    finally:
-        reference.close()
-        transport.close()
+        try:
+            ours = np.frombuffer(transport.query_block("DATA?"), dtype=np.int8)
+            theirs = reference.query_binary_values(
+                "DATA?", datatype="b", container=np.array, expect_termination=True
+            )
+            np.testing.assert_array_equal(ours, theirs)
+        finally:
+            reference.close()
 
 
 def test_no_reply_is_a_timeout_and_the_next_query_is_answered(manager, server):
-    transport = _open(manager, server)
-    try:
+    with _connected(manager, server) as transport:
         server.fault("SOUR1:FREQ?", "no_reply")
         start = time.monotonic()
         with pytest.raises(InstrumentTimeout) as info:
@@ -261,51 +251,39 @@ def test_no_reply_is_a_timeout_and_the_next_query_is_answered(manager, server):
         assert time.monotonic() - start < TIMEOUT + 0.5
         assert info.value.resource == server.address and info.value.command == "SOUR1:FREQ?"
         assert transport.query("*IDN?") == IDN
-    finally:
-        transport.close()
 
 
 def test_a_late_reply_is_never_read_as_the_answer_to_the_next_query(manager, server):
-    transport = _open(manager, server)
-    try:
+    with _connected(manager, server) as transport:
         server.fault("SOUR1:FREQ?", "slow", delay=TIMEOUT + 0.2)
         with pytest.raises(InstrumentTimeout):
             transport.query("SOUR1:FREQ?")
         time.sleep(0.35)  # the late "1000" is on its way (to the old connection)
         assert transport.query("*IDN?") == IDN
         assert float(transport.query("SOUR1:FREQ?")) == 1000.0
-    finally:
-        transport.close()
 
 
 def test_garbage_is_a_garbled_reply_and_leaves_nothing_stale(manager, server):
-    transport = _open(manager, server)
-    try:
+    with _connected(manager, server) as transport:
         server.fault("*IDN?", "garbage")
         with pytest.raises(GarbledReply) as info:
             transport.query("*IDN?")
         assert info.value.reply  # what came back is in the error
         assert transport.query("*IDN?") == IDN  # the second garbage line is gone too
-    finally:
-        transport.close()
 
 
 def test_a_truncated_block_then_silence_is_a_truncated_block(manager, server):
-    transport = _open(manager, server)
-    try:
+    with _connected(manager, server) as transport:
         server.fault("DATA?", "truncated")
         start = time.monotonic()
         with pytest.raises(TruncatedBlock, match="declared 10240 bytes"):
             transport.query_block("DATA?")
         assert time.monotonic() - start < TIMEOUT + 0.5
         assert transport.query_block("DATA?") == server.block
-    finally:
-        transport.close()
 
 
 def test_a_close_mid_transfer_is_reported_at_once_not_after_spinning_the_timeout(manager, server):
-    transport = _open(manager, server, timeout_s=3.0)
-    try:
+    with _connected(manager, server, timeout_s=3.0) as transport:
         server.fault("DATA?", "close_mid")
         start_wall, start_cpu = time.monotonic(), time.process_time()
         with pytest.raises(TruncatedBlock, match="connection closed"):
@@ -314,21 +292,16 @@ def test_a_close_mid_transfer_is_reported_at_once_not_after_spinning_the_timeout
         assert time.process_time() - start_cpu < 0.5
         assert transport.query_block("DATA?") == server.block  # reconnected cleanly
         assert server.accepted == 2
-    finally:
-        transport.close()
 
 
 def test_a_close_before_the_reply_is_a_lost_connection(manager, server):
-    transport = _open(manager, server, timeout_s=3.0)
-    try:
+    with _connected(manager, server, timeout_s=3.0) as transport:
         server.fault("*IDN?", "close")
         start = time.monotonic()
         with pytest.raises(ConnectionLost, match="closed the connection"):
             transport.query("*IDN?")
         assert time.monotonic() - start < 1.0
         assert transport.query("*IDN?") == IDN
-    finally:
-        transport.close()
 
 
 def test_opening_a_dead_port_fails_at_once_as_a_lost_connection(manager):
@@ -348,8 +321,7 @@ def test_opening_a_dead_port_fails_at_once_as_a_lost_connection(manager):
 def test_generic_visa_path_reads_blocks_and_maps_timeouts(manager, server, monkeypatch):
     """Resources other than pyvisa-py sockets go through pyvisa's read calls."""
     monkeypatch.setattr(VisaTransport, "_session_socket", lambda self, handle: None)
-    transport = _open(manager, server)
-    try:
+    with _connected(manager, server) as transport:
         assert not transport.uses_socket
         assert transport.query("*IDN?") == IDN
         assert transport.query_block("DATA?") == server.block
@@ -357,23 +329,17 @@ def test_generic_visa_path_reads_blocks_and_maps_timeouts(manager, server, monke
         with pytest.raises(InstrumentTimeout):
             transport.query("SOUR1:FREQ?")
         assert transport.query("*IDN?") == IDN
-    finally:
-        transport.close()
 
 
 def test_generator_over_tcp_reports_the_instrument_error_queue(manager, server):
-    spec = InstrumentSpec("generator", server.address, "scpi-generator", None, 1, TIMEOUT)
-    transport = VisaTransport(manager, spec, "\n", "\n")
-    gen = Generator(load_profile("scpi-generator"), transport, spec)
-    try:
+    with _connected(manager, server) as transport:
+        gen = Generator(load_profile("scpi-generator"), transport, _spec(server))
         assert gen.set_frequency(12345.0) == 12345.0
         with pytest.raises(InstrumentReportedError, match="-222") as info:
             gen.set_frequency(5e8)
         assert info.value.resource == server.address
         server.fault("SOUR1:FREQ?", "garbage")
         assert gen.ask("frequency_query") == 12345.0  # retried after the garbled reply
-    finally:
-        transport.close()
 
 
 def test_scan_names_each_resource_and_is_bounded(server):
