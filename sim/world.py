@@ -295,6 +295,11 @@ class SimulatedBench:
             device = self.device
             white = float(device.noise_density(np.array([1e12]), p.op)[0])
             corner = getattr(device, "flicker_corner", 0.0)
+            if getattr(device, "noise_at_test_frequency", False):
+                # a device whose noise is known only near each test frequency (a learned
+                # device, sim/learned.py): white at its density at the generator frequency
+                white = float(device.noise_density(np.array([p.frequency]), p.op)[0])
+                corner = 0.0
             if p.output_dc <= 0:
                 white, corner = 0.0, 0.0
             return NodeSignal(
