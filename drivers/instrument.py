@@ -4,6 +4,10 @@ are retried, and recovery that restores the instrument's whole known state.
 Rules (FIELD.md, "pitfalls of unattended sweeps", and the planning experiments):
 - after each configuration step the error queue is drained (SYST:ERR? until code 0); an
   entry raises InstrumentReportedError naming the instrument, the command and the error;
+- an entry of the passing kind (SCPI -3xx device-specific and -4xx query errors, e.g.
+  -310 "System error") does not refuse the command itself: the command is sent once more
+  (settings here are absolute, so sending one twice leaves the same state) and only a
+  second entry is raised; -1xx command and -2xx execution errors are raised at once;
 - a read-only query is retried a few times with growing pauses after a timeout or a
   garbled reply;
 - a setting is never blindly sent again after an ambiguous failure (timeout, lost
@@ -40,6 +44,16 @@ RESTORE_FAULTS = 6  # faults one restore may meet before it gives up
 BACKOFF_S = (0.05, 0.2, 0.5)
 MAX_ERROR_ENTRIES = 20  # an error queue that never empties is itself a fault
 AMBIGUOUS = (InstrumentTimeout, ConnectionLost, GarbledReply, TruncatedBlock)
+PASSING_CODES = (-499, -300)  # SCPI-99 vol. 2 ch. 21: -3xx device-specific, -4xx query errors
+SEND_ATTEMPTS = 2  # a command met by a passing error entry is sent at most this often
+
+
+def is_passing(exc: BaseException) -> bool:
+    """True for an error-queue entry that does not mean the command itself was refused."""
+    return (
+        isinstance(exc, InstrumentReportedError)
+        and PASSING_CODES[0] <= exc.code <= PASSING_CODES[1]
+    )
 
 
 @dataclass(frozen=True)
@@ -117,6 +131,7 @@ class Instrument:
         self.channel = spec.channel
         self._sleep = sleep
         self._state: dict[str, Setting] = {}
+        self.passing_errors = 0  # passing error entries met and got past by sending again
 
     @property
     def resource(self) -> str:
@@ -156,8 +171,20 @@ class Instrument:
 
     def clear_status(self) -> None:
         """*CLS, then check the queue is empty."""
-        self.transport.write(self.profile.io.clear_status)
-        self.drain_errors(self.profile.io.clear_status)
+        self.send_checked(self.profile.io.clear_status)
+
+    def send_checked(self, command: str) -> None:
+        """Send ``command`` and drain the error queue; after a passing entry (is_passing)
+        send it once more. A refusal, or a second entry, raises InstrumentReportedError."""
+        for attempt in range(SEND_ATTEMPTS):
+            self.transport.write(command)
+            try:
+                self.drain_errors(command)
+                return
+            except InstrumentReportedError as exc:
+                if not is_passing(exc) or attempt == SEND_ATTEMPTS - 1:
+                    raise
+                self.passing_errors += 1
 
     def wait_complete(self, timeout_s: float | None = None) -> None:
         """*OPC? with ``timeout_s`` (s) for this one query; the reply must be 1."""
@@ -258,8 +285,7 @@ class Instrument:
         remember: bool,
         enables: bool | None = None,
     ) -> Any:
-        self.transport.write(command)
-        self.drain_errors(command)
+        self.send_checked(command)
         if query is None:
             return None
         actual = parse(self.transport.query(query), self.resource, query)
@@ -285,7 +311,8 @@ class Instrument:
         """Apply every remembered setting again (restore_order()); read back and compare
         each one. A passing fault (timeout, garbage) retries that one setting after a clear;
         a lost connection may mean the instrument reset, so it starts over from the first
-        setting. At most RESTORE_FAULTS faults, then the last one is raised."""
+        setting; a passing error entry (is_passing) retries that setting. At most
+        RESTORE_FAULTS faults, then the last one is raised."""
         order = self.restore_order()
         faults = 0
         position = 0
@@ -294,11 +321,15 @@ class Instrument:
             try:
                 self._restore_one(slot, setting)
                 position += 1
-            except AMBIGUOUS as exc:
+            except (*AMBIGUOUS, InstrumentReportedError) as exc:
+                if isinstance(exc, InstrumentReportedError) and not is_passing(exc):
+                    raise
                 faults += 1
                 if faults > RESTORE_FAULTS:
                     raise
                 self._sleep(BACKOFF_S[min(faults - 1, len(BACKOFF_S) - 1)])
+                if isinstance(exc, InstrumentReportedError):
+                    continue  # the entry was read: the connection is in step
                 if isinstance(exc, ConnectionLost):
                     self.transport.reconnect()
                     order, position = self.restore_order(), 0
@@ -309,8 +340,7 @@ class Instrument:
                         self.transport.reconnect()
 
     def _restore_one(self, slot: str, setting: Setting) -> None:
-        self.transport.write(setting.command)
-        self.drain_errors(setting.command)
+        self.send_checked(setting.command)
         if setting.query is None:
             return
         reply = self.transport.query(setting.query)

@@ -15,6 +15,7 @@ from benchseq.drivers.errors import (
     ConnectionLost,
     GarbledReply,
     InstrumentError,
+    InstrumentReportedError,
     InstrumentTimeout,
     TruncatedBlock,
 )
@@ -22,6 +23,7 @@ from benchseq.drivers.instrument import (
     BACKOFF_S,
     QUERY_ATTEMPTS,
     Instrument,
+    is_passing,
     parse_float,
     parse_int,
     parse_word,
@@ -32,6 +34,7 @@ from benchseq.drivers.transport import Transport
 FORMATS = {"INT8": "int8", "INT16": "int16"}
 TRANSFER_RATE_FLOOR = 1e6  # bytes/s assumed at worst when scaling a waveform read's timeout
 CAPTURE_TIMEOUT_FACTOR = 1.5  # *OPC? waits 1.5x the expected capture time plus the base timeout
+ACQUIRE_ATTEMPTS = 2  # an acquisition met by a passing fault is started once more
 
 
 @dataclass(frozen=True)
@@ -176,14 +179,33 @@ class Scope(Instrument):
 
     def acquire(self, expected_duration_s: float) -> None:
         """Start one (averaged) acquisition and wait for it with *OPC?, the timeout scaled
-        to the expected capture time (s). Not retried: a failure here is the caller's to
-        recover (the capture has to be taken again)."""
+        to the expected capture time (s). After a passing fault (a lost or garbled *OPC?
+        reply, a lost connection, a passing error entry) the whole acquisition is started
+        once more, so the records read next always come from one complete acquisition;
+        a second fault is the caller's to recover."""
         command = self.cmd("acquire_single")
-        self.transport.write(command)
-        self.wait_complete(
-            self.spec.timeout_s + CAPTURE_TIMEOUT_FACTOR * max(0.0, expected_duration_s)
-        )
-        self.drain_errors(command)
+        timeout = self.spec.timeout_s + CAPTURE_TIMEOUT_FACTOR * max(0.0, expected_duration_s)
+        for attempt in range(ACQUIRE_ATTEMPTS):
+            try:
+                self.transport.write(command)
+                self.wait_complete(timeout)
+                self.drain_errors(command)
+                return
+            except (InstrumentTimeout, GarbledReply, TruncatedBlock, ConnectionLost) as exc:
+                if attempt == ACQUIRE_ATTEMPTS - 1:
+                    raise
+                self._sleep(BACKOFF_S[0])
+                if isinstance(exc, ConnectionLost):
+                    self.recover()
+                else:
+                    try:
+                        self.transport.clear()
+                    except InstrumentError:
+                        self.recover()
+            except InstrumentReportedError as exc:
+                if not is_passing(exc) or attempt == ACQUIRE_ATTEMPTS - 1:
+                    raise
+                self.passing_errors += 1
 
     def read_waveform(self, ch: int) -> Waveform:
         """The last acquisition on channel ``ch``: scaling query, then the data block."""

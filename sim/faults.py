@@ -64,6 +64,12 @@ class FaultInjector:
         self.rates = rates
         self.rng = rng
         self.counts = dict.fromkeys(FAULT_KINDS, 0)
+        self.messages = 0  # messages this instrument was sent (counted by the transports)
+
+    @property
+    def injected(self) -> int:
+        """How many faults were injected so far (all kinds)."""
+        return sum(self.counts.values())
 
     def fires(self, kind: str) -> bool:
         """Whether fault ``kind`` strikes this message (no draw at all when its rate is 0)."""

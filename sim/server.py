@@ -55,6 +55,7 @@ class InProcessTransport:
         with bench.lock:
             if not self.connected:
                 raise ConnectionLost(self.resource, command, "not connected (call reconnect())")
+            self.faults.messages += 1
             if self.faults.fires("disconnect"):
                 self.connected = False
                 raise ConnectionLost(self.resource, command, "connection reset by the instrument")
@@ -191,6 +192,7 @@ class _InstrumentServer:
             return True
         pause = 0.0
         with self.bench.lock:
+            self.faults.messages += 1
             if self.faults.fires("disconnect"):
                 with contextlib.suppress(OSError):
                     conn.shutdown(socket.SHUT_RDWR)
