@@ -1,0 +1,342 @@
+"""The report's plots (matplotlib, Agg/SVG canvases, no pyplot state): rejection with k = 2
+bars, lower bounds and the mask; phase of the ratio; the measured floor when it exists.
+
+Lower bounds are drawn with their own glyph: a short bar at the bound with an arrow rising
+from it ("the true value is at or above this"), hollow, in the curve's colour. In SVG every
+bound glyph sits in a group whose id starts with BOUND_GID, values in VALUE_GID."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import re
+import warnings
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from benchseq.report.model import COVERAGE_FACTOR, Curve, Report, ratio_phase_deg
+
+PALETTE = (
+    "#2b5c8a",  # deep blue
+    "#c8641e",  # burnt orange
+    "#3d8b5a",  # green
+    "#8a3d7a",  # plum
+    "#b8962e",  # ochre
+    "#2e8b8b",  # teal
+    "#a23b3b",  # brick
+    "#555a66",  # slate
+)
+LINESTYLES = ("-", "--", "-.", ":")
+MASK_COLOUR = "#3a3a3a"
+BOUND_GID = "bound-markers"
+VALUE_GID = "rejection-values"
+MASK_GID = "mask-line"
+FIGURE_SIZE = (8.0, 4.6)  # inches
+
+
+def bound_marker() -> Any:
+    """The lower-bound glyph: base bar at the bound, stem and arrowhead pointing up."""
+    from matplotlib.path import Path
+
+    vertices = [
+        (-0.8, 0.0),
+        (0.8, 0.0),
+        (0.0, 0.0),
+        (0.0, 2.0),
+        (-0.6, 1.3),
+        (0.0, 2.0),
+        (0.6, 1.3),
+    ]
+    codes = [
+        Path.MOVETO,
+        Path.LINETO,
+        Path.MOVETO,
+        Path.LINETO,
+        Path.MOVETO,
+        Path.LINETO,
+        Path.LINETO,
+    ]
+    return Path(vertices, codes)
+
+
+def plot_text(text: Any) -> str:
+    """File text made literal for matplotlib: '$' would start mathtext, a leading '_'
+    would hide a legend entry."""
+    value = re.sub(r"(?<!\\)\$", r"\\$", str(text))
+    return " " + value if value.startswith("_") else value
+
+
+@contextlib.contextmanager
+def quiet_fonts() -> Iterator[None]:
+    """Characters the font lacks are drawn as boxes without a warning per glyph."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=r".*[Gg]lyph .* missing from")
+        warnings.filterwarnings("ignore", message=r".*[Mm]atplotlib currently does not support")
+        yield
+
+
+def _style(curve: Curve) -> tuple[str, str]:
+    return PALETTE[curve.index % len(PALETTE)], LINESTYLES[curve.source_index % len(LINESTYLES)]
+
+
+def _column(curve: Curve, name: str) -> np.ndarray:
+    frame = curve.frame
+    if name not in frame.columns:
+        return np.full(len(frame), np.nan)
+    return frame[name].to_numpy()
+
+
+def _frequency_axis(ax: Any) -> None:
+    from matplotlib.ticker import EngFormatter
+
+    ax.set_xscale("log")
+    ax.xaxis.set_major_formatter(EngFormatter(unit="Hz", sep=" "))
+    ax.set_xlabel("frequency")
+    ax.grid(True, which="major", color="#d0d0d0", linewidth=0.6)
+    ax.grid(True, which="minor", color="#ececec", linewidth=0.4)
+
+
+def _empty(ax: Any, report: Report) -> bool:
+    if any(len(c.frame) for c in report.curves):
+        return False
+    ax.text(0.5, 0.5, "no points stored", transform=ax.transAxes, ha="center", va="center")
+    return True
+
+
+@dataclass
+class RejectionArtists:
+    """What draw_rejection put on the axes (tests look at these)."""
+
+    values: list[Any] = field(default_factory=list)  # one errorbar container per curve
+    bounds: list[Any] = field(default_factory=list)  # Line2D of bound glyphs per curve
+    masks: list[Any] = field(default_factory=list)  # Line2D per distinct mask
+    verdicts: list[str] = field(default_factory=list)  # one line per source
+
+
+def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
+    """Rejection (dB) over log frequency: values with ±k·u bars, bounds, masks, verdicts."""
+    from matplotlib.lines import Line2D
+
+    drawn = RejectionArtists()
+    _frequency_axis(ax)
+    ax.set_ylabel("rejection [dB]")
+    glyph = bound_marker()
+    handles: list[Any] = []
+    if not _empty(ax, report):
+        for curve in report.curves:
+            colour, line = _style(curve)
+            f = _column(curve, "frequency").astype(float)
+            bound = _column(curve, "is_bound").astype(bool)
+            values = np.where(bound, np.nan, _column(curve, "rejection_db").astype(float))
+            bars = COVERAGE_FACTOR * np.where(bound, np.nan, _column(curve, "uncertainty_db"))
+            label = plot_text(report.curve_label(curve))
+            container = ax.errorbar(
+                f, values, yerr=np.nan_to_num(bars, nan=0.0), color=colour,
+                linestyle="none" if curve.repeats else line, linewidth=1.4,
+                marker="D" if curve.repeats else "o", markersize=3.6, capsize=2.5,
+                elinewidth=0.9, label=label,
+            )  # fmt: skip
+            container.lines[0].set_gid(f"{VALUE_GID}-{curve.index}")
+            drawn.values.append(container)
+            handles.append(container)
+            if bound.any():
+                (marks,) = ax.plot(
+                    f[bound], _column(curve, "bound_db").astype(float)[bound],
+                    linestyle="none", marker=glyph, markersize=15, markerfacecolor="none",
+                    markeredgecolor=colour, markeredgewidth=1.5, label="_bound",
+                )  # fmt: skip
+                marks.set_gid(f"{BOUND_GID}-{curve.index}")
+                drawn.bounds.append(marks)
+    seen: set[tuple[Any, ...]] = set()
+    for source in report.sources:
+        mask = source.mask
+        if mask is None:
+            continue
+        key = (mask.name, tuple(mask.frequencies), tuple(mask.min_rejection_db))
+        if key in seen:
+            continue
+        seen.add(key)
+        (line,) = ax.plot(
+            mask.frequencies, mask.min_rejection_db, color=MASK_COLOUR, linewidth=2.0,
+            linestyle=(0, (6, 2, 1, 2)), label=plot_text(f"mask: {mask.name}" if mask.name else "mask"),
+        )  # fmt: skip
+        line.set_gid(f"{MASK_GID}-{len(drawn.masks)}")
+        drawn.masks.append(line)
+        handles.append(line)
+    if drawn.masks:
+        bottom, top = ax.get_ylim()
+        for line in drawn.masks:
+            xs, ys = line.get_data()
+            ax.fill_between(xs, ys, bottom, color=MASK_COLOUR, alpha=0.07, linewidth=0)
+        ax.set_ylim(bottom, top)
+    if drawn.bounds:
+        handles.append(
+            Line2D([], [], linestyle="none", marker=glyph, markersize=15, markerfacecolor="none",
+                   markeredgecolor="#444444", markeredgewidth=1.5,
+                   label="lower bound (true rejection at or above)")
+        )  # fmt: skip
+    if handles:
+        handles.append(Line2D([], [], linestyle="none", label=f"bars: ±U, k = {COVERAGE_FACTOR:g}"))
+        ax.legend(handles=handles, loc="best", fontsize="x-small", framealpha=0.85)
+    for source in report.sources:
+        prefix = f"{source.label}: " if report.overlay else ""
+        partial = " [partial run]" if source.partial else ""
+        drawn.verdicts.append(plot_text(f"{prefix}{source.verdict.short()}{partial}"))
+    ax.set_title("\n".join(drawn.verdicts), fontsize="small", loc="left")
+    return drawn
+
+
+def draw_phase(ax: Any, report: Report) -> list[Any]:
+    """Phase of V_out/V_pin (degrees, unwrapped along each curve); bounds have no phase."""
+    _frequency_axis(ax)
+    ax.set_ylabel("phase of V_out/V_pin [°]")
+    lines: list[Any] = []
+    if _empty(ax, report):
+        return lines
+    for curve in report.curves:
+        colour, line = _style(curve)
+        f = _column(curve, "frequency").astype(float)
+        bound = _column(curve, "is_bound").astype(bool)
+        ratio = _column(curve, "ratio")
+        phase = np.full(len(f), np.nan)
+        good = ~bound & np.isfinite(np.asarray(ratio, dtype=complex))
+        if good.any():
+            unwrapped = np.degrees(np.unwrap(np.radians(ratio_phase_deg(ratio[good]))))
+            unwrapped -= 360.0 * np.round(unwrapped[0] / 360.0)
+            phase[good] = unwrapped
+        (drawn,) = ax.plot(
+            f, phase, color=colour, linestyle="none" if curve.repeats else line,
+            marker="D" if curve.repeats else "o", markersize=3.6, linewidth=1.3,
+            label=plot_text(report.curve_label(curve)),
+        )  # fmt: skip
+        lines.append(drawn)
+    ax.legend(loc="best", fontsize="x-small", framealpha=0.85)
+    return lines
+
+
+def draw_floor(ax: Any, report: Report) -> list[Any]:
+    """Output ripple against the generator-off floor (V peak at the test frequency)."""
+    _frequency_axis(ax)
+    ax.set_yscale("log")
+    ax.set_ylabel("amplitude [V peak]")
+    lines: list[Any] = []
+    for curve in report.curves:
+        colour, line = _style(curve)
+        f = _column(curve, "frequency").astype(float)
+        name = report.curve_label(curve)
+        series = (
+            (
+                "output ripple",
+                np.abs(np.asarray(_column(curve, "output"), dtype=complex)),
+                "o",
+                line,
+            ),
+            ("generator-off output", _column(curve, "floor_output").astype(float), "v", ":"),
+            ("generator-off pin", _column(curve, "floor_pin").astype(float), "s", ":"),
+        )
+        for what, values, marker, style in series:
+            keep = np.isfinite(values) & (values > 0)
+            if not keep.any():
+                continue
+            (drawn,) = ax.plot(
+                f[keep], values[keep], color=colour, marker=marker, markersize=3.4,
+                linestyle=style, linewidth=1.1, markerfacecolor="none" if marker != "o" else colour,
+                label=plot_text(f"{name}: {what}"),
+            )  # fmt: skip
+            lines.append(drawn)
+    if lines:
+        ax.legend(loc="best", fontsize="x-small", framealpha=0.85)
+    else:
+        ax.text(0.5, 0.5, "no floor measured", transform=ax.transAxes, ha="center", va="center")
+    return lines
+
+
+# -- figures ---------------------------------------------------------------------------------
+def _figure(height: float, top_in: float) -> Any:
+    """A figure with fixed margins (inches at the top for titles; cheaper than a layout engine)."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(FIGURE_SIZE[0], height))
+    fig.subplots_adjust(
+        left=0.85 / FIGURE_SIZE[0],
+        right=1 - 0.2 / FIGURE_SIZE[0],
+        bottom=0.5 / height,
+        top=1 - top_in / height,
+        hspace=0.12,
+    )
+    return fig
+
+
+def _title_inches(report: Report) -> float:
+    return 0.15 + 0.19 * len(report.sources)
+
+
+def rejection_figure(report: Report) -> tuple[Any, RejectionArtists]:
+    fig = _figure(FIGURE_SIZE[1], _title_inches(report))
+    return fig, draw_rejection(fig.add_subplot(), report)
+
+
+def phase_figure(report: Report) -> Any:
+    fig = _figure(3.6, 0.15)
+    draw_phase(fig.add_subplot(), report)
+    return fig
+
+
+def floor_figure(report: Report) -> Any | None:
+    """The floor plot, or None when no run measured the generator-off floor."""
+    if not report.has_floor():
+        return None
+    fig = _figure(3.8, 0.15)
+    draw_floor(fig.add_subplot(), report)
+    return fig
+
+
+def report_figures(report: Report) -> list[tuple[str, Any]]:
+    """(name, figure) of every plot the report shows, in reading order."""
+    figures = [("rejection", rejection_figure(report)[0]), ("phase", phase_figure(report))]
+    floor = floor_figure(report)
+    if floor is not None:
+        figures.append(("floor", floor))
+    return figures
+
+
+def stacked_figure(report: Report) -> Any:
+    """All plots in one image, one above the other, sharing the frequency axis."""
+    count = 3 if report.has_floor() else 2
+    fig = _figure(4.6 + 3.0 * (count - 1), 0.35 + _title_inches(report))
+    axes = fig.subplots(count, 1, sharex=True, height_ratios=[1.4] + [1.0] * (count - 1))
+    draw_rejection(axes[0], report)
+    draw_phase(axes[1], report)
+    if count == 3:
+        draw_floor(axes[2], report)
+    for ax in axes[:-1]:
+        ax.set_xlabel("")
+    fig.suptitle(plot_text(report.title), fontsize="medium", y=1 - 0.08 / fig.get_figheight(),
+                 va="top")  # fmt: skip
+    return fig
+
+
+def svg_text(fig: Any) -> str:
+    """The figure as an <svg> element (text as paths: no fonts needed, nothing to inject)."""
+    import matplotlib
+    from matplotlib.backends.backend_svg import FigureCanvasSVG
+
+    buffer = io.StringIO()
+    with quiet_fonts(), matplotlib.rc_context({"svg.fonttype": "path"}):
+        FigureCanvasSVG(fig)
+        fig.savefig(buffer, format="svg", metadata={"Date": None})
+    text = buffer.getvalue()
+    return text[text.index("<svg") :]
+
+
+def png_bytes(fig: Any, dpi: int = 130) -> bytes:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    buffer = io.BytesIO()
+    with quiet_fonts():
+        FigureCanvasAgg(fig)
+        fig.savefig(buffer, format="png", dpi=dpi, metadata={"Software": None})
+    return buffer.getvalue()
