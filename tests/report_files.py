@@ -24,6 +24,10 @@ RIPPLE_FACTOR = Column("ripple_factor", "f8", "", "ripple of this row / the plan
 FLOOR_OUTPUT = Column("floor_output", "f8", "V", "generator-off output amplitude, peak")
 FLOOR_PIN = Column("floor_pin", "f8", "V", "generator-off pin amplitude, peak")
 SOON_COLUMNS = (REPEAT_OF, RIPPLE_FACTOR, FLOOR_OUTPUT, FLOOR_PIN)
+# a plan title that tries to run script in a report
+HOSTILE_TITLE = (
+    '<script>window.pwned=1;document.title="pwned"</script>"><img src=x onerror="window.pwned=2">'
+)
 
 
 def plan_text(title: str | None = None) -> str:

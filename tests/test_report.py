@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from report_files import DEMO_PLAN, SOON_COLUMNS, row, write_result
+from report_files import DEMO_PLAN, HOSTILE_TITLE, SOON_COLUMNS, row, write_result
 
 from benchseq.errors import BadInput
 from benchseq.plan import Mask
@@ -29,9 +29,6 @@ from benchseq.report.plots import (
 from benchseq.store import read_meta, read_results, read_truth
 from benchseq.verdict import mask_verdict
 
-HOSTILE_TITLE = (
-    '<script>window.pwned=1;document.title="pwned"</script>"><img src=x onerror="window.pwned=2">'
-)
 HOSTILE_DEVICE = "FV-33 <iframe src=javascript:alert(1)></iframe> & | `tick` # heading $x$"
 PDF_PAGE = re.compile(rb"/Type\s*/Page(?![a-zA-Z])")
 
