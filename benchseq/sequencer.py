@@ -32,6 +32,8 @@ MAX_EXTENSIONS = 2  # longer captures after the planned one
 RANGE_FILL = 0.7  # aim the sine's peak-to-peak at this fraction of full scale
 INITIAL_REJECTION_GUESS_DB = 40.0
 QUICK_TARGET_DB = 3.0  # the ranging capture only needs to see the signal
+CORNER_SEED_KEY = 2**40  # simulator noise key of the AC-corner measurement (points: id·16+try)
+COUPLING_SETTLE_S = 0.3  # after switching a channel between AC and DC coupling
 DEFAULT_NOISE_GUESS = 200e-6  # V rms per sample, until a capture shows the real noise
 
 
@@ -127,6 +129,7 @@ class Sequencer:
         self._pin_dc = float("nan")
         self.calibration = calibration  # channel match applied to every ratio (None: none)
         self._last_waveforms: tuple[Any, Any, float] | None = None
+        self._ac_corner = 0.0  # Hz, the scope's AC-coupling corner once measured (0: none)
 
     # -- the whole run ---------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -223,6 +226,69 @@ class Sequencer:
         self._dc_now = 0.0
         s.scope.trigger_external()
         self._set_operating_point(first)
+        self._measure_ac_corner(first)
+
+    def _measure_ac_corner(self, first: int) -> None:
+        """Read the pin ripple AC- then DC-coupled at the lowest planned frequency and
+        derive the scope's AC-coupling corner (benchseq.coupling), so the pin ripple is
+        trimmed to what the pin really carries. Skipped when the pin channel is DC-coupled,
+        the plan stays well above any such corner, or the offset cannot take the pin DC."""
+        from benchseq import coupling
+
+        pin = self.bench.scope.pin
+        low = float(np.min(self.sweep.frequency))
+        if pin.coupling != "AC" or low > coupling.MEASURE_BELOW_HZ:
+            return
+        s = self.session
+        caps = s.scope.capabilities
+        max_offset = getattr(caps, "max_offset", None)
+        if max_offset is not None and abs(self._pin_dc) / pin.probe > max_offset:
+            self.emit(
+                Event(
+                    "warning",
+                    f"the pin DC ({self._pin_dc:.2f} V) is beyond the scope's offset range: "
+                    "the AC-coupling loss of pin readings below ~100 Hz is not corrected",
+                )
+            )
+            return
+        simulator = getattr(s, "simulator", None)
+        if simulator is not None:  # the same noise whether the run starts or resumes
+            simulator.reseed(CORNER_SEED_KEY)
+        target = float(self.sweep.ripple_peak[first])
+        setting = float(self.model.generator_setting_pp(low, target))
+        s.generator.set_amplitude_pp(self._clamp_generator(setting))
+        frequency = s.generator.set_frequency(low)
+        s.generator.output(True)
+        self._generator_on = True
+        s.clock.sleep(
+            self.plan.settle.fixed_s
+            + self.plan.settle.time_constants * self.corners.slowest_time_constant_s
+        )
+        plan = self._plan_capture(frequency, target, target * 1e-3, None, target_db=0.05)
+        pin_range = self._range_for(pin, target)
+        readings = []
+        for mode, offset in (("AC", 0.0), ("DC", self._pin_dc)):
+            s.scope.configure_channel(
+                pin.channel, pin_range, offset, mode, self.bench.scope.bandwidth_limit
+            )
+            s.clock.sleep(COUPLING_SETTLE_S)
+            interval, length = s.scope.set_timebase(plan.sample_interval, plan.record_length)
+            s.scope.set_averages(plan.averages)
+            s.scope.acquire(plan.averages * (length * interval + caps.rearm_time))
+            volts = s.scope.read_waveform(pin.channel).volts()
+            readings.append(analysis.fit_sine(volts, 1.0 / interval, frequency).amplitude)
+        s.scope.configure_channel(
+            pin.channel, pin_range, 0.0, pin.coupling, self.bench.scope.bandwidth_limit
+        )
+        self._ac_corner = coupling.corner_from_ratio(frequency, readings[0] / readings[1])
+        self.writer.update_meta(scope_ac_corner_hz=self._ac_corner)
+        self.emit(
+            Event(
+                "state",
+                f"scope AC-coupling corner measured at {frequency:g} Hz: "
+                f"{self._ac_corner:.3g} Hz (pin readings are corrected for it)",
+            )
+        )
 
     def _set_operating_point(self, i: int) -> None:
         dc = float(self.sweep.dc_level[i])
@@ -361,11 +427,15 @@ class Sequencer:
         actual_frequency = s.generator.set_frequency(plan.frequency)
         trims = 0
         while True:
+            # whether to extend is decided on an amplitude from an EARLIER capture: judging a
+            # capture by its own (noisy) output amplitude would keep the captures that happened
+            # to read high and retake those that read low, biasing rejection low
+            prior = result
             pin_range, out_range, result, used = self._capture_ranged(
                 plan, actual_frequency, pin_range, out_range, flags
             )
             captures += used
-            measured_pin = result.pin.amplitude
+            measured_pin = result.pin.amplitude / abs(self._coupling_at(actual_frequency))
             if (
                 abs(measured_pin / target - 1.0) <= PIN_TOLERANCE
                 or trims >= MAX_TRIMS
@@ -379,22 +449,28 @@ class Sequencer:
             clock.sleep(self.plan.settle.fixed_s + 3.0 * self.corners.coupling_time_constant_s)
 
         for _ in range(MAX_EXTENSIONS):
-            longer = self._longer_capture(plan, result)
+            longer = self._longer_capture(plan, result, prior)
             if longer is None:
                 break
             actual_frequency = s.generator.set_frequency(longer.frequency)
+            prior = result
             pin_range, out_range, result, used = self._capture_ranged(
                 longer, actual_frequency, pin_range, out_range, flags
             )
             captures += used
             plan = longer
-        if abs(result.pin.amplitude / target - 1.0) > 0.05:
+        # readings through the scope's AC coupling, referred back to the nodes (the ratio,
+        # and so the rejection, is unchanged: both channels share the coupling)
+        through = self._coupling_at(actual_frequency)
+        pin_amplitude = result.pin.amplitude / abs(through)
+        out_through = through if self.bench.scope.output.coupling == "AC" else 1.0 + 0.0j
+        if abs(pin_amplitude / target - 1.0) > 0.05:
             flags.append("pin_off_target")
 
         pin_model = complex(self.model.pin_per_displayed(actual_frequency)) * actual_pp / 2.0
         model_ratio_db = (
-            20 * math.log10(result.pin.amplitude / abs(pin_model))
-            if abs(pin_model) > 0 and result.pin.amplitude > 0
+            20 * math.log10(pin_amplitude / abs(pin_model))
+            if abs(pin_model) > 0 and pin_amplitude > 0
             else float("nan")
         )
         if (
@@ -427,11 +503,11 @@ class Sequencer:
             "dc_level": float(self.sweep.dc_level[i]),
             "load_current": float(self.sweep.load_current[i]),
             "generator_pp": actual_pp,
-            "pin": result.pin.phasor,
-            "pin_sigma": result.pin.amplitude_sigma,
-            "output": result.output.phasor,
-            "output_sigma": result.output.amplitude_sigma,
-            "output_floor": result.output_floor,
+            "pin": result.pin.phasor / through,
+            "pin_sigma": result.pin.amplitude_sigma / abs(through),
+            "output": result.output.phasor / out_through,
+            "output_sigma": result.output.amplitude_sigma / abs(out_through),
+            "output_floor": result.output_floor / abs(out_through),
             "output_noise": result.output.residual_rms,
             "ratio": rej.ratio,
             "rejection_db": rej.rejection_db if not rej.is_bound else float("nan"),
@@ -456,6 +532,15 @@ class Sequencer:
             "flags": " ".join(dict.fromkeys(flags)),
         }
         return row
+
+    def _coupling_at(self, frequency: float) -> complex:
+        """The AC coupling's response at ``frequency`` for the pin channel (1 when DC-coupled
+        or no corner was measured)."""
+        from benchseq.coupling import high_pass
+
+        if self.bench.scope.pin.coupling != "AC":
+            return 1.0 + 0.0j
+        return high_pass(frequency, self._ac_corner)
 
     # -- generator, ranging and capture -------------------------------------------------
     def _clamp_generator(self, amplitude_pp: float) -> float:
@@ -567,23 +652,39 @@ class Sequencer:
         return present
 
     def _longer_capture(
-        self, plan: analysis.CapturePlan, result: analysis.PointMeasurement
+        self,
+        plan: analysis.CapturePlan,
+        result: analysis.PointMeasurement,
+        prior: analysis.PointMeasurement,
     ) -> analysis.CapturePlan | None:
         """A longer capture, planned from the noise this capture showed, when the output was
-        not detected or the uncertainty missed the target, and the plan's limits allow it."""
+        not detected or the uncertainty missed the target, and the plan's limits allow it.
+
+        The output amplitude the decision uses comes from ``prior`` (an earlier, independent
+        capture), scaled to this capture's pin ripple; only the noise comes from ``result``.
+        A stopping rule that looked at the accepted capture's own amplitude would select
+        captures that read high (optional stopping), biasing rejection low."""
         rules = self.plan.capture
         rej = result.rejection
-        if not rej.is_bound and rej.uncertainty_db <= rules.target_uncertainty_db:
-            return None
+        ratio = prior.output.amplitude / max(prior.pin.amplitude, 1e-15)
+        expected = ratio * result.pin.amplitude
+        detected = not prior.rejection.is_bound and not rej.is_bound
+        if detected and expected > 0:
+            predicted_db = analysis.db_uncertainty(
+                result.output_floor / expected,
+                result.pin.amplitude_sigma / max(result.pin.amplitude, 1e-15),
+            )
+            if predicted_db <= rules.target_uncertainty_db:
+                return None
         # σ_c = σ·√(2/N) per quadrature over all N samples recorded (MEASUREMENT.md): the
         # per-sample noise of one raw record, taken as aliased broadband (scope front end)
         samples = plan.record_length * plan.averages * plan.records
         sigma = max(result.output_floor, 1e-15) * math.sqrt(samples / 2.0)
         pin_sigma = max(result.pin.quadrature_sigma, 1e-15) * math.sqrt(samples / 2.0)
-        if rej.is_bound:  # aim to detect an output at the present floor, not to pin it down
-            output, target_db = max(result.output.amplitude, 4.0 * result.output_floor), 1.0
+        if not detected:  # aim to detect an output at the present floor, not to pin it down
+            output, target_db = max(expected, 4.0 * result.output_floor), 1.0
         else:
-            output, target_db = result.output.amplitude, rules.target_uncertainty_db
+            output, target_db = expected, rules.target_uncertainty_db
         longer = analysis.plan_capture(
             self.session.scope.capabilities,
             plan.frequency,

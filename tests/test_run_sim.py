@@ -32,15 +32,97 @@ class Keeper:
         return session
 
 
+def _tightened_demo(folder: Path) -> Path:
+    """The demo plan aiming at 0.1 dB: a 0.3 dB agreement check is then three standard
+    uncertainties wide (with the demo's 0.2 dB it would fail by chance at some points)."""
+    text = (PLANS / "demo.toml").read_text(encoding="utf-8")
+    assert 'target_uncertainty = "0.2 dB"' in text
+    plan = folder / "demo-0.1dB.toml"
+    plan.write_text(text.replace('target_uncertainty = "0.2 dB"', 'target_uncertainty = "0.1 dB"'))
+    return plan
+
+
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Keeper]:
     keeper = Keeper()
-    out = tmp_path_factory.mktemp("run") / "demo.h5"
+    folder = tmp_path_factory.mktemp("run")
     outcome, path = start_run(
-        str(PLANS / "demo.toml"), None, str(out), seed=3, session_factory=keeper
+        str(_tightened_demo(folder)), None, str(folder / "demo.h5"), seed=3, session_factory=keeper
     )
     assert outcome.status == "complete"
     return path, keeper
+
+
+AMPLIFIER_PLAN = """
+title = "AB-10 amplifier board: rejection at 5 V, two ripple levels"
+[device]
+name = "AB-10 gain-of-10 amplifier board (simulated)"
+absolute_max = "5.5 V"
+min_operating = "3 V"
+[sweep]
+dc = ["5 V"]
+ripple = ["200 mVpp", "10 mVpp"]
+frequency = { from = "20 Hz", to = "200 kHz", per_decade = 1 }
+[settle]
+after_operating_point = "0.5 s"
+[capture]
+max_time = "2 s"
+target_uncertainty = "0.1 dB"
+"""
+
+
+@pytest.fixture(scope="module")
+def amplifier_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The second scenario: an amplifier whose output-referred rejection reaches 90 dB at
+    low frequencies, so the small ripple level leaves some points under the floor."""
+    folder = tmp_path_factory.mktemp("amp")
+    plan = folder / "amplifier.toml"
+    plan.write_text(AMPLIFIER_PLAN, encoding="utf-8")
+    outcome, path = start_run(str(plan), "sim:amplifier", str(folder / "amp.h5"), seed=1)
+    assert outcome.status == "complete"
+    return path
+
+
+def _with_truth(path: Path) -> Any:
+    return read_results(path).merge(read_truth(path), on="point_id", suffixes=("", "_true"))
+
+
+@pytest.mark.parametrize("which", ["demo", "amplifier"])
+def test_rejection_agrees_with_the_simulators_truth(
+    which: str, demo_run: tuple[Path, Keeper], amplifier_run: Path
+) -> None:
+    """Every detected point whose true rejection is at most 80 dB is within 0.3 dB of the
+    simulator's nodal-analysis truth, and within 4 standard uncertainties (+0.05 dB: the
+    uncalibrated channel mismatch of the demo scope, 0.3 % and 0.5°, is not in the budget)."""
+    frame = _with_truth(demo_run[0] if which == "demo" else amplifier_run)
+    band = frame[(frame["rejection_db_true"] <= 80) & ~frame["is_bound"]]
+    assert len(band) >= 5
+    error = band["rejection_db"] - band["rejection_db_true"]
+    assert np.all(np.abs(error) < 0.3), error.to_numpy()
+    assert np.all(np.abs(error) < 4 * band["uncertainty_db"] + 0.05)
+
+
+@pytest.mark.parametrize("which", ["demo", "amplifier"])
+def test_pin_ripple_reaches_target(
+    which: str, demo_run: tuple[Path, Keeper], amplifier_run: Path
+) -> None:
+    """The generator is set through the injector model and trimmed: the TRUE pin ripple
+    (the simulator's) is within 5 % of target at every point, including those near the
+    scope's AC-coupling corner (whose loss the run measures and takes out)."""
+    frame = _with_truth(demo_run[0] if which == "demo" else amplifier_run)
+    ratio = np.abs(frame["pin_true"].to_numpy()) / frame["ripple_target"].to_numpy()
+    assert np.all(np.abs(ratio - 1) < 0.05), ratio
+    measured = np.abs(frame["pin"].to_numpy()) / frame["ripple_target"].to_numpy()
+    assert np.all(np.abs(measured - 1) < 0.05), measured
+
+
+def test_amplifier_bounds_are_at_or_below_the_truth(amplifier_run: Path) -> None:
+    """Where the output is under the floor the stored lower bound never exceeds the truth
+    (the bound's coverage is one-sided 95 %; here every one holds)."""
+    frame = _with_truth(amplifier_run)
+    bounds = frame[frame["is_bound"]]
+    assert len(bounds) >= 1, "the small ripple level should leave points under the floor"
+    assert np.all(bounds["bound_db"] <= bounds["rejection_db_true"] + 1e-9)
 
 
 def test_demo_run_is_complete_and_self_describing(demo_run: tuple[Path, Keeper]) -> None:
@@ -51,26 +133,6 @@ def test_demo_run_is_complete_and_self_describing(demo_run: tuple[Path, Keeper])
     assert sorted(frame["point_id"]) == list(range(16))
     assert "V_out / V_pin" in meta["sign_convention"]
     assert meta["plan_sha256"] and meta["bench_text"].startswith("#")
-
-
-def test_pin_ripple_reaches_target(demo_run: tuple[Path, Keeper]) -> None:
-    """The generator is set through the injector model and trimmed: pin within 5 % of target."""
-    frame = read_results(demo_run[0])
-    ratio = np.abs(frame["pin"].to_numpy()) / frame["ripple_target"].to_numpy()
-    assert np.all(np.abs(ratio - 1) < 0.05), ratio
-
-
-def test_rejection_agrees_with_the_simulators_truth(demo_run: tuple[Path, Keeper]) -> None:
-    """Above the scope's AC-coupling corner region (≥ 200 Hz) every detected point is within
-    0.3 dB of the simulator's nodal-analysis truth, and within 4 standard uncertainties."""
-    frame = read_results(demo_run[0]).merge(
-        read_truth(demo_run[0]), on="point_id", suffixes=("", "_true")
-    )
-    band = frame[(frame["frequency"] >= 200) & ~frame["is_bound"]]
-    assert len(band) >= 10
-    error = band["rejection_db"] - band["rejection_db_true"]
-    assert np.all(np.abs(error) < 0.3), error.to_numpy()
-    assert np.all(np.abs(error) < 4 * band["uncertainty_db"] + 0.05)
 
 
 def test_bounds_are_never_values(demo_run: tuple[Path, Keeper]) -> None:
@@ -124,7 +186,7 @@ def test_stop_then_resume_matches_an_uninterrupted_run(
 
     keeper = Keeper()
     outcome, path = start_run(
-        str(PLANS / "demo.toml"),
+        str(_tightened_demo(tmp_path)),
         None,
         str(tmp_path / "part.h5"),
         seed=3,
