@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from benchseq.store import Column
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: linearity repeats and floor captures
 SIGN_CONVENTION = (
     "ratio = V_out / V_pin (complex, peak phasors); rejection_db = 20*log10(|V_pin|/|V_out|), "
     "positive when the device attenuates ripple"
@@ -13,6 +13,13 @@ SIGN_CONVENTION = (
 
 POINT_COLUMNS: tuple[Column, ...] = (
     Column("point_id", "i8", "", "index of the point in the expanded plan (run order)"),
+    Column(
+        "repeat_of",
+        "i8",
+        "",
+        "for a linearity repeat: the point it repeats at another ripple level; -1 otherwise",
+    ),
+    Column("ripple_factor", "f8", "", "ripple relative to the planned level (1 but for repeats)"),
     Column("frequency_planned", "f8", "Hz", "injection frequency asked for by the plan"),
     Column("frequency", "f8", "Hz", "generator frequency actually set (coherent capture)"),
     Column(
@@ -38,6 +45,18 @@ POINT_COLUMNS: tuple[Column, ...] = (
     ),
     Column(
         "output_noise", "f8", "V", "output channel noise, rms per sample, from the fit residual"
+    ),
+    Column(
+        "floor_pin",
+        "f8",
+        "V",
+        "pin amplitude fitted at the test frequency with the generator off (nan: not measured)",
+    ),
+    Column(
+        "floor_output",
+        "f8",
+        "V",
+        "output amplitude fitted at the test frequency with the generator off (nan: not measured)",
     ),
     Column("ratio", "c16", "", "V_out / V_pin, calibration applied"),
     Column(
@@ -104,6 +123,7 @@ FLAG_TEXT: dict[str, str] = {
     "uncalibrated": "no channel-match calibration covers this frequency",
     "target_unmet": "the capture could not reach the plan's target uncertainty within its limits",
     "instrument_retry": "an instrument fault occurred and the point was measured again after recovery",
+    "nonlinear": "a linearity repeat at another ripple level changed rejection by more than the plan's tolerance (not small-signal)",
     "marginal": "the feasibility check marked this point marginal",
     "not_detected": "the output amplitude was under the detection threshold (3.5 σ of the floor)",
     "clipped_pin": "the pin channel's record touched the converter's extreme codes",
@@ -114,6 +134,7 @@ FLAG_TEXT: dict[str, str] = {
     "small_output": "the output channel used under 10 % of the converter's codes, even on the most sensitive range",
     "floor_from_residual": "too few clean neighbour frequencies: the noise floor came from the fit residual",
     "outside_calibration": "the frequency lies outside the channel-match calibration; not corrected",
+    "calibration_conditions": "the channel-match calibration applied was made under other conditions (probes, coupling, bandwidth limit or scope) than this run: see the run's calibration metadata",
     "unrefined_low_snr": "the pin channel's SNR was too low to refine the frequency; the generator's was used",
     "unrefined_not_converged": "the frequency refinement did not converge; the generator's frequency was used",
     "unrefined_off_by_over_half_bin": "the refined frequency moved more than half a bin; the generator's was used",

@@ -121,7 +121,10 @@ class Sequencer:
         self.planned_bench_time = planned_bench_time
         self.model = InjectorModel(bench.injector, bench.generator, bench.pin)
         self.corners = self.model.corners()
-        self.sweep: Sweep = plan.expand()
+        self.sweep, self.repeat_of, self.ripple_factor = with_repeats(plan)
+        self.run_order = run_order(self.repeat_of)
+        self._rows: dict[int, dict[str, Any]] = {}  # rows of points that have repeats
+        self._has_repeats = {int(b) for b in self.repeat_of if b >= 0}
         self._dc_now: float | None = None
         self._load_now: float | None = None
         self._generator_on = False
@@ -135,7 +138,7 @@ class Sequencer:
     def run(self) -> RunOutcome:
         stored = set(self.writer.stored_ids)
         total = len(self.sweep)
-        todo = [i for i in range(total) if int(self.sweep.index[i]) not in stored]
+        todo = [i for i in self.run_order if int(self.sweep.index[i]) not in stored]
         carry = self._carry_from_store(stored)
         counts = {"measured": 0, "bounds": 0, "flagged": 0}
         status, reason = "complete", "all points stored"
@@ -163,7 +166,10 @@ class Sequencer:
                 self.writer.append(
                     int(row["point_id"]), row, truth=truth, waveforms=self._waveforms_to_keep()
                 )
-                carry = Carry.from_row(row)
+                if int(row["repeat_of"]) < 0:  # a repeat at another ripple does not guide the next
+                    carry = Carry.from_row(row)
+                if int(row["point_id"]) in self._has_repeats:
+                    self._rows[int(row["point_id"])] = row
                 counts["measured"] += 1
                 counts["bounds"] += int(bool(row["is_bound"]))
                 counts["flagged"] += int(bool(row["flags"]))
@@ -492,9 +498,15 @@ class Sequencer:
             flags.append("target_unmet")
         flags.extend(result.flags)
 
+        floor_pin, floor_output = self._floor_capture(i, plan, pin_range, out_range, through)
         rej = result.rejection
+        base = int(self.repeat_of[i])
+        if base >= 0 and self._nonlinear(base, rej):
+            flags.append("nonlinear")
         row: dict[str, Any] = {
             "point_id": point_id,
+            "repeat_of": base,
+            "ripple_factor": float(self.ripple_factor[i]),
             "frequency_planned": frequency,
             "frequency": actual_frequency,
             "frequency_fitted": result.frequency,
@@ -509,6 +521,8 @@ class Sequencer:
             "output_sigma": result.output.amplitude_sigma / abs(out_through),
             "output_floor": result.output_floor / abs(out_through),
             "output_noise": result.output.residual_rms,
+            "floor_pin": floor_pin,
+            "floor_output": floor_output,
             "ratio": rej.ratio,
             "rejection_db": rej.rejection_db if not rej.is_bound else float("nan"),
             "uncertainty_db": rej.uncertainty_db if not rej.is_bound else float("nan"),
@@ -532,6 +546,60 @@ class Sequencer:
             "flags": " ".join(dict.fromkeys(flags)),
         }
         return row
+
+    def _nonlinear(self, base: int, rej: Any) -> bool:
+        """The repeat's rejection differs from its base point's by more than the plan's
+        tolerance (both detected; a bound on either side decides nothing)."""
+        row = self._rows.get(base)
+        if row is None:
+            row = self._stored_row(base)
+        if row is None or row["is_bound"] or rej.is_bound:
+            return False
+        tolerance = self.plan.linearity.tolerance_db if self.plan.linearity else math.inf
+        return abs(float(rej.rejection_db) - float(row["rejection_db"])) > tolerance
+
+    def _stored_row(self, point_id: int) -> dict[str, Any] | None:
+        """A point stored by an earlier session of this run (resume), from the result file."""
+        from benchseq.store import read_results
+
+        path = getattr(self.writer, "path", None)
+        if path is None:
+            return None
+        frame = read_results(path)
+        rows = frame[frame["point_id"] == point_id].to_dict(orient="records")
+        return rows[0] if rows else None
+
+    def _floor_capture(
+        self,
+        i: int,
+        plan: analysis.CapturePlan,
+        pin_range: float,
+        out_range: float,
+        through: complex,
+    ) -> tuple[float, float]:
+        """With the plan's [floor] option: the same capture with the generator off, fitted
+        at the test frequency (V peak at the nodes); NaN where no floor capture is asked."""
+        rules = self.plan.floor
+        frequency = float(self.sweep.frequency[i])
+        if rules is None or int(self.repeat_of[i]) >= 0:
+            return math.nan, math.nan
+        if not rules.every_point and not np.any(
+            np.isclose(rules.frequencies, frequency, rtol=1e-3)
+        ):
+            return math.nan, math.nan
+        s = self.session
+        s.generator.output(False)
+        self._generator_on = False
+        s.clock.sleep(self.plan.settle.fixed_s + 5.0 * self.corners.slowest_time_constant_s)
+        pins, outs, interval = self._acquire(plan, pin_range, out_range)
+        rate = 1.0 / interval
+        pin = analysis.fit_sine(
+            np.vstack([w.volts() for w in pins]).mean(axis=0), rate, plan.frequency
+        )
+        out = analysis.fit_sine(
+            np.vstack([w.volts() for w in outs]).mean(axis=0), rate, plan.frequency
+        )
+        return pin.amplitude / abs(through), out.amplitude / abs(through)
 
     def _coupling_at(self, frequency: float) -> complex:
         """The AC coupling's response at ``frequency`` for the pin channel (1 when DC-coupled
@@ -774,3 +842,50 @@ def _codes(waveform: Any, full_scale: float, ranges: list[float]) -> analysis.Ch
 
 def _unix() -> float:
     return time.time()
+
+
+def with_repeats(plan: Plan) -> tuple[Sweep, np.ndarray, np.ndarray]:
+    """The plan's points followed by its linearity repeats (ids n, n+1, ...): each chosen
+    sweep point again at each factor x its ripple. Returns (points, repeat_of, factor):
+    repeat_of is the sweep point a repeat repeats (-1 for sweep points)."""
+    sweep = plan.expand()
+    n = len(sweep)
+    lin = plan.linearity
+    none = (sweep, np.full(n, -1, dtype=np.int64), np.ones(n))
+    if lin is None or len(lin.frequencies) == 0:
+        return none
+    chosen = np.isclose(sweep.frequency[:, None], np.asarray(lin.frequencies)[None, :], rtol=1e-3)
+    at = np.nonzero(chosen.any(axis=1))[0]
+    factors = np.asarray(lin.factors, dtype=float)
+    base = np.repeat(at, factors.size)
+    factor = np.tile(factors, at.size)
+    m = base.size
+    points = Sweep(
+        index=np.concatenate([sweep.index, n + np.arange(m)]),
+        frequency=np.concatenate([sweep.frequency, sweep.frequency[base]]),
+        ripple_peak=np.concatenate([sweep.ripple_peak, sweep.ripple_peak[base] * factor]),
+        dc_level=np.concatenate([sweep.dc_level, sweep.dc_level[base]]),
+        load_current=np.concatenate([sweep.load_current, sweep.load_current[base]]),
+        ripple_convention=sweep.ripple_convention
+        + tuple(sweep.ripple_convention[int(b)] for b in base),
+    )
+    return (
+        points,
+        np.concatenate([none[1], sweep.index[base]]).astype(np.int64),
+        np.concatenate([none[2], factor]),
+    )
+
+
+def run_order(repeat_of: np.ndarray) -> list[int]:
+    """Sweep points in plan order, each followed at once by its repeats (same frequency and
+    operating point: nothing drifts between a point and its repeats)."""
+    follows: dict[int, list[int]] = {}
+    for k, b in enumerate(repeat_of):
+        if b >= 0:
+            follows.setdefault(int(b), []).append(k)
+    order: list[int] = []
+    for k, b in enumerate(repeat_of):
+        if b < 0:
+            order.append(k)
+            order.extend(follows.get(k, []))
+    return order
