@@ -23,7 +23,10 @@ REPEAT_OF = Column(
 RIPPLE_FACTOR = Column("ripple_factor", "f8", "", "ripple of this row / the planned ripple")
 FLOOR_OUTPUT = Column("floor_output", "f8", "V", "generator-off output amplitude, peak")
 FLOOR_PIN = Column("floor_pin", "f8", "V", "generator-off pin amplitude, peak")
-SOON_COLUMNS = (REPEAT_OF, RIPPLE_FACTOR, FLOOR_OUTPUT, FLOOR_PIN)
+_STORED = {c.name for c in POINT_COLUMNS}
+SOON_COLUMNS = tuple(
+    c for c in (REPEAT_OF, RIPPLE_FACTOR, FLOOR_OUTPUT, FLOOR_PIN) if c.name not in _STORED
+)  # the linearity and floor columns, for as long as records.POINT_COLUMNS lacks them
 # a plan title that tries to run script in a report
 HOSTILE_TITLE = (
     '<script>window.pwned=1;document.title="pwned"</script>"><img src=x onerror="window.pwned=2">'
@@ -88,6 +91,10 @@ def row(point_id: int, frequency: float, rejection_db: float, **values: Any) -> 
         "started_at": 1.7e9 + point_id,
         "stored_at": 1.7e9 + point_id + 0.5,
         "flags": "bound not_detected" if is_bound else "",
+        "repeat_of": -1,
+        "ripple_factor": 1.0,
+        "floor_output": math.nan,
+        "floor_pin": math.nan,
     }
     base.update(values)
     return base
@@ -123,8 +130,9 @@ def write_result(
     }
     items.update(meta or {})
     writer = RunWriter.create(path, items, columns)
+    names = {c.name for c in columns}
     for r in rows:
-        writer.append(int(r["point_id"]), r)
+        writer.append(int(r["point_id"]), {k: v for k, v in r.items() if k in names})
     if status is None:
         writer.close()
     else:

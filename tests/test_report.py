@@ -267,17 +267,33 @@ def test_hostile_strings_stay_inert(edge_files: dict[str, Path], tmp_path: Path)
 def test_hostile_strings_stay_inert_in_markdown(
     edge_files: dict[str, Path], tmp_path: Path
 ) -> None:
-    """No raw < or > reaches the Markdown, every table row keeps its cell count, and no line
-    from the file becomes a heading or list item."""
+    """Rendered by a CommonMark renderer (markdown-it-py, which rich depends on) with GFM
+    tables: no tag or handler from the file's text, the hostile strings come out as text,
+    and the table keeps one row per point with every cell in its column."""
+    from markdown_it import MarkdownIt
+
     written = write_report([edge_files["hostile"]], "md", tmp_path / "hostile.md")
     text = written[0].read_text(encoding="utf-8")
-    assert "<" not in text and ">" not in text.replace("> **PARTIAL", "")
-    rows = [line for line in text.splitlines() if line.startswith("|")]
-    counts = {len(re.split(r"(?<!\\)\|", line)) for line in rows}
-    assert len(counts) == 1
-    assert md_escape("# title") == "\\# title" and md_escape("- item") == "\\- item"
-    assert md_escape("a|b`c`<d>") == "a\\|b\\`c\\`&lt;d&gt;"
-    assert text.splitlines()[0].startswith("# &lt;script&gt;")
+    assert "<" not in text
+    rendered = MarkdownIt("commonmark").enable("table").render(text)
+    page = _parse(rendered)
+    tags = [t for t, _ in page.tags]
+    for forbidden in ("script", "iframe", "b", "svg"):
+        assert forbidden not in tags, forbidden
+    images = [dict(a)["src"] for t, a in page.tags if t == "img"]
+    assert images == [p.name for p in written[1:]]  # only the report's own plots
+    for tag, attrs in page.tags:
+        for name, value in attrs:
+            assert not name.lower().startswith("on"), (tag, name)
+            assert "javascript:" not in (value or "").lower(), (tag, name, value)
+    assert tags.count("h1") == 1 and page.h1 == HOSTILE_TITLE
+    words = "".join(page.text)
+    for literal in (HOSTILE_DEVICE, "<script>window.pwned=3</script>", "cal|1.h5"):
+        assert literal in words, literal
+    assert "- [x](javascript:alert(1)) <svg onload=alert(1)>" in words
+    assert tags.count("tr") == 2 and tags.count("td") == tags.count("th")  # header + 1 point
+    assert md_escape("1. item") == "1\\. item" and md_escape("-47.1") == "-47.1"
+    assert md_escape("79.41") == "79.41"
 
 
 def test_bounds_are_drawn_distinctly(edge_files: dict[str, Path]) -> None:
@@ -491,3 +507,34 @@ def test_default_output_and_format_from_extension(demo_file: Path) -> None:
             path.unlink()
     assert format_name(None, "out/report.pdf") == "pdf"
     assert format_name(None, None) == "html" and format_name("Markdown") == "md"
+
+
+def test_one_curve_per_operating_point(tmp_path: Path) -> None:
+    """Two DC levels and two loads: four curves, labelled by their operating point."""
+    rows = []
+    for k, (dc, load) in enumerate([(4.5, 0.01), (4.5, 0.1), (5.0, 0.01), (5.0, 0.1)]):
+        for j, f in enumerate((100.0, 1000.0)):
+            rows.append(row(2 * k + j, f, 60.0 - k, dc_level=dc, load_current=load))
+    path = write_result(tmp_path / "ops.h5", rows)
+    report = gather([path])
+    labels = [report.curve_label(c) for c in report.curves]
+    assert labels == [
+        "4.5 V DC, 10 mA load, 100 mVpp",
+        "4.5 V DC, 100 mA load, 100 mVpp",
+        "5 V DC, 10 mA load, 100 mVpp",
+        "5 V DC, 100 mA load, 100 mVpp",
+    ]
+    assert all(len(c.frame) == 2 for c in report.curves)
+
+
+@pytest.mark.parametrize("fmt", ["html", "md", "csv", "pdf", "png"])
+def test_a_run_without_points_still_reports(fmt: str, tmp_path: Path) -> None:
+    """An aborted run with no point stored: every format is written and says so."""
+    path = write_result(tmp_path / "empty.h5", [], status="aborted", point_count=16)
+    written = write_report([path], fmt, tmp_path / f"empty.{fmt}")
+    assert written[0].stat().st_size > 0
+    if fmt == "csv":
+        assert len(read_report_csv(written[0])) == 0
+    if fmt == "html":
+        text = written[0].read_text(encoding="utf-8")
+        assert "PARTIAL RUN (aborted)" in text and "0 of 16 planned points stored" in text

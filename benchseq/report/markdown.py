@@ -1,7 +1,8 @@
 """The report as Markdown for a lab notebook, with each plot as a PNG written beside it
 (``<stem>-rejection.png``, ``<stem>-phase.png``, ``<stem>-floor.png`` when measured).
 Strings from result files are escaped so they stay text: & < > as entities; | ` * _ [ ] !
-and \\ with a backslash; a leading # - + = or list number with a backslash."""
+and \\ with a backslash; a leading # or =, a leading - or + before a space, and the
+dot of a leading "1. " with a backslash (all valid CommonMark escapes)."""
 
 from __future__ import annotations
 
@@ -12,7 +13,8 @@ from benchseq.report.conditions import conditions
 from benchseq.report.model import PLOT_CAPTIONS, SAFETY_CAUTIONS, Report, headline, point_table
 
 _SPECIAL = re.compile(r"([\\`*_\[\]|!~])")
-_LINE_START = re.compile(r"^(\s*)([#+\-=]|\d+[.)])")
+_LINE_START = re.compile(r"^(\s*)([#=]|[+\-](?=\s|$))")
+_NUMBERED = re.compile(r"^(\s*\d+)([.)])(?=\s|$)")
 
 
 def md_escape(value: object) -> str:
@@ -20,6 +22,7 @@ def md_escape(value: object) -> str:
     text = " ".join(str(value).split())
     text = text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
     text = _SPECIAL.sub(r"\\\1", text)
+    text = _NUMBERED.sub(lambda m: m.group(1) + "\\" + m.group(2), text)
     return _LINE_START.sub(lambda m: m.group(1) + "\\" + m.group(2), text)
 
 

@@ -325,10 +325,10 @@ def point_table(source: Source) -> tuple[list[str], list[list[str]]]:
     headers = list(POINT_TABLE_HEADERS)
     frame = source.frame
     extra: list[tuple[str, str]] = []
-    if "repeat_of" in frame.columns:
+    if "repeat_of" in frame.columns and (frame["repeat_of"] >= 0).any():
         extra.append(("repeat_of", "repeat of #"))
     for name, title in (("floor_pin", "gen-off pin"), ("floor_output", "gen-off output")):
-        if name in frame.columns:
+        if name in frame.columns and np.isfinite(frame[name].to_numpy(dtype=float)).any():
             extra.append((name, title))
     headers[-1:-1] = [title for _, title in extra]
     verdicts = source.verdict.points.set_index("point_id", drop=False)
