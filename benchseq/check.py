@@ -77,6 +77,29 @@ def bench_warnings(model: InjectorModel, corners: Corners) -> list[str]:
     return notes
 
 
+def coupling_warnings(plan: Plan, bench: Bench) -> list[str]:
+    """What the scope's AC coupling does to this plan's low frequencies."""
+    from benchseq.coupling import MEASURE_BELOW_HZ
+
+    notes = []
+    low = float(np.min(plan.frequencies))
+    pin, out = bench.scope.pin, bench.scope.output
+    if pin.coupling != out.coupling and low < MEASURE_BELOW_HZ:
+        notes.append(
+            f"the pin channel is {pin.coupling}-coupled and the output channel "
+            f"{out.coupling}-coupled: below about ten times the scope's AC-coupling corner "
+            "(often a few hertz) the ratio carries that corner's loss; couple both alike"
+        )
+    elif pin.coupling == "AC" and low < MEASURE_BELOW_HZ:
+        notes.append(
+            f"the plan reaches {format_si(low, 'Hz', 3)} with AC-coupled channels: the run "
+            "first measures the scope's AC-coupling corner there (pin read AC- then "
+            "DC-coupled with the pin DC offset away) and refers pin readings to the pin; "
+            "within about twice that corner the readings lose signal and take longer"
+        )
+    return notes
+
+
 # -- check_plan ------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class ReasonGroup:
@@ -269,7 +292,7 @@ def check_plan(plan: Plan, bench: Bench) -> CheckReport:
         time_breakdown=breakdown,
         capture_estimate=method,
         corners=corners,
-        warnings=tuple(bench_warnings(model, corners)),
+        warnings=tuple(bench_warnings(model, corners) + coupling_warnings(plan, bench)),
         groups=groups,
         worst=worst,
         feasibility=feas,
