@@ -139,11 +139,35 @@ def cmd_run(args: argparse.Namespace) -> int:
             f"bench time {duration_text(outcome.bench_time)}"
         )
         console.print("safe state: " + _escape("; ".join(outcome.safe_state)))
+        from benchseq.store import read_meta, read_results
+
+        verdict = _verdict(read_meta(path), read_results(path), str(path))
+        if verdict is not None and verdict.status != "no mask":
+            console.print(_verdict_markup(verdict))
         console.print(f"results: [bold]{_escape(path)}[/]")
         if outcome.status != "complete":
             console.print(f"continue with: benchseq run --resume {_escape(path)}")
         console.print(f"summary: benchseq show {_escape(path)}")
     return EXIT_OK if outcome.status in ("complete", "stopped") else EXIT_FAILURE
+
+
+def _verdict(meta: dict[str, Any], frame: Any, path: str) -> Any:
+    """The mask verdict of a stored run (None when its plan cannot be read back)."""
+    from benchseq.plan import parse_plan
+    from benchseq.tomlfile import parse_toml_text
+    from benchseq.verdict import mask_verdict
+
+    try:
+        text, data = parse_toml_text(str(meta.get("plan_text", "")), f"{path} (stored plan)")
+        plan = parse_plan(data, str(meta.get("plan_source", path)), text)
+    except BenchseqError:
+        return None
+    return mask_verdict(plan.mask, frame)
+
+
+def _verdict_markup(verdict: Any) -> str:
+    colour = {"pass": "green", "fail": "red"}.get(verdict.status, "yellow")
+    return f"[bold {colour}]mask:[/] {_escape(verdict.summary())}"
 
 
 def cmd_show(args: argparse.Namespace) -> int:
@@ -152,10 +176,12 @@ def cmd_show(args: argparse.Namespace) -> int:
 
     meta = read_meta(args.result)
     frame = read_results(args.result)
+    verdict = _verdict(meta, frame, args.result)
     if args.json:
         _print_json(
             {
                 "meta": {k: v for k, v in meta.items() if not k.endswith("_text")},
+                "mask": verdict.to_dict() if verdict is not None else None,
                 "points": frame.to_dict(orient="records"),
             }
         )
@@ -166,8 +192,10 @@ def cmd_show(args: argparse.Namespace) -> int:
         f"status {_escape(meta.get('status'))}; started {_escape(meta.get('started'))}; "
         f"{len(frame)} of {meta.get('point_count', '?')} points stored; bench {_escape(meta.get('bench_name', ''))}"
     )
-    rows = frame.to_dict(orient="records")
+    rows = frame.sort_values("point_id").to_dict(orient="records")
     console.print(points_table(rows, title="points"))
+    if verdict is not None:
+        console.print(_verdict_markup(verdict))
     return EXIT_OK
 
 

@@ -54,7 +54,7 @@ def points_table(rows: list[dict[str, Any]], title: str = "latest points") -> Ta
             f"{row['dc_level']:.3g} V",
             format_si(2 * pin, "Vpp", 3),
             rejection_text(row),
-            f"{u:.2f} dB" if math.isfinite(u) else "",
+            (f"{u:.2f} dB" if u >= 0.005 else f"{u:.1g} dB") if math.isfinite(u) else "",
             escape(str(row.get("flags", ""))),
         )
     return table
