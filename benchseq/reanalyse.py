@@ -96,10 +96,27 @@ def _recomputed(flag: str) -> bool:
     return flag in _RECOMPUTED or flag.startswith(_RECOMPUTED_PREFIXES)
 
 
+def high_pass(frequency: float, corner: float) -> complex:
+    """x/(1 + x), x = j·f/f_c: a first-order high-pass (any circuit handbook); 1 without one."""
+    if not corner > 0:
+        return 1.0 + 0.0j
+    x = 1j * frequency / corner
+    return x / (1.0 + x)
+
+
 def reanalyse_row(
-    row: dict[str, Any], waves: dict[str, Any], plan: Any, calibration: Any = None
+    row: dict[str, Any],
+    waves: dict[str, Any],
+    plan: Any,
+    calibration: Any = None,
+    couplings: tuple[bool, bool] = (False, False),
+    ac_corner: float = 0.0,
 ) -> dict[str, Any]:
-    """The stored ``row`` with its analysis columns recomputed from ``waves`` (pin, output)."""
+    """The stored ``row`` with its analysis columns recomputed from ``waves`` (pin, output).
+
+    ``ac_corner`` (Hz, the run's meta ``scope_ac_corner_hz``; 0 = none) and ``couplings``
+    (pin, output AC-coupled): readings are referred back to the nodes through that
+    high-pass, as the run did (the ratio is unchanged: both channels share it)."""
     from benchseq import analysis
 
     pin, out = waves["pin"], waves["output"]
@@ -116,20 +133,24 @@ def reanalyse_row(
         calibration=calibration,
     )
     rej = result.rejection
+    f = float(row["frequency"])
+    pin_through = high_pass(f, ac_corner) if couplings[0] else 1.0 + 0.0j
+    out_through = high_pass(f, ac_corner) if couplings[1] else 1.0 + 0.0j
+    pin_amplitude = result.pin.amplitude / abs(pin_through)
     new = dict(row)
     pin_model = abs(complex(row["pin_model"]))
     model_db = (
-        20 * math.log10(result.pin.amplitude / pin_model)
-        if pin_model > 0 and result.pin.amplitude > 0
+        20 * math.log10(pin_amplitude / pin_model)
+        if pin_model > 0 and pin_amplitude > 0
         else math.nan
     )
     new.update(
         frequency_fitted=result.frequency,
-        pin=result.pin.phasor,
-        pin_sigma=result.pin.amplitude_sigma,
-        output=result.output.phasor,
-        output_sigma=result.output.amplitude_sigma,
-        output_floor=result.output_floor,
+        pin=result.pin.phasor / pin_through,
+        pin_sigma=result.pin.amplitude_sigma / abs(pin_through),
+        output=result.output.phasor / out_through,
+        output_sigma=result.output.amplitude_sigma / abs(out_through),
+        output_floor=result.output_floor / abs(out_through),
         output_noise=result.output.residual_rms,
         ratio=rej.ratio,
         rejection_db=rej.rejection_db if not rej.is_bound else math.nan,
@@ -141,7 +162,7 @@ def reanalyse_row(
     )
     flags = [f for f in str(row.get("flags", "")).split() if not _recomputed(f)]
     target = float(row["ripple_target"])
-    if target > 0 and abs(result.pin.amplitude / target - 1.0) > 0.05:
+    if target > 0 and abs(pin_amplitude / target - 1.0) > 0.05:
         flags.append("pin_off_target")
     if math.isfinite(model_db) and abs(model_db) > plan.watch.model_mismatch_db:
         flags.append("model_mismatch")
@@ -169,7 +190,6 @@ def reanalyse(
     """Recompute ``result``'s points from its stored waveforms into a new result file and
     compare with the stored numbers. A file without waveforms is a BadInput."""
     from benchseq import __version__
-    from benchseq.records import POINT_COLUMNS, TRUTH_COLUMNS
     from benchseq.replay import read_stored
     from benchseq.store import RunWriter, read_truth, read_waveforms
 
@@ -208,20 +228,24 @@ def reanalyse(
             "calibration_applied": calibration is not None,
         },
     )
+    columns = columns_of(stored.points)
     writer = RunWriter.create(
         target,
         meta,
-        POINT_COLUMNS,
+        columns,
         force=force,
-        truth_columns=TRUTH_COLUMNS if truth else None,
+        truth_columns=columns_of(truth_frame) if truth else None,
     )
+    corner = stored.meta.get("scope_ac_corner_hz", 0.0)
+    corner = float(corner) if isinstance(corner, int | float) and corner > 0 else 0.0
+    couplings = (stored.bench.scope.pin.coupling == "AC", stored.bench.scope.output.coupling == "AC")
     new_rows = []
     try:
         for row in rows:
             pid = int(row["point_id"])
             point_waves = usable.get(pid)
             new = (
-                reanalyse_row(row, point_waves, stored.plan, calibration)
+                reanalyse_row(row, point_waves, stored.plan, calibration, couplings, corner)
                 if point_waves is not None
                 else dict(row)
             )
@@ -230,7 +254,7 @@ def reanalyse(
                 truth_row = {k: v for k, v in truth_row.items() if k != "point_id"}
             writer.append(
                 pid,
-                {c.name: new[c.name] for c in POINT_COLUMNS},
+                {c.name: new[c.name] for c in columns if c.name != "point_id"},
                 waveforms=point_waves if keep_waveforms else None,
                 truth=truth_row,
             )
@@ -257,6 +281,30 @@ def reanalyse(
         summary=_summary(comparison),
         notes=notes,
     )
+
+
+def columns_of(frame: pd.DataFrame) -> list[Any]:
+    """The store Columns of a table read back (kind from the dtype; unit and meaning from
+    the frame's attrs), so a file is rewritten with exactly the columns it has."""
+    from benchseq.store import Column
+
+    units = frame.attrs.get("units", {})
+    descriptions = frame.attrs.get("descriptions", {})
+    columns = []
+    for name in frame.columns:
+        dtype = frame[name].dtype
+        if pd.api.types.is_bool_dtype(dtype):
+            kind = "bool"
+        elif pd.api.types.is_complex_dtype(dtype):
+            kind = "c16"
+        elif pd.api.types.is_integer_dtype(dtype):
+            kind = "i8"
+        elif pd.api.types.is_float_dtype(dtype):
+            kind = "f8"
+        else:
+            kind = "str"
+        columns.append(Column(name, kind, units.get(name, ""), descriptions.get(name, "")))  # type: ignore[arg-type]
+    return columns
 
 
 def _equal(a: float, b: float) -> bool:

@@ -138,9 +138,18 @@ def _learned(stored: StoredRun, base: Any, bench: Bench) -> Any:
             output_probe=bench.scope.output.probe,
             bandwidth_limit=bench.scope.bandwidth_limit,
             source=str(stored.path),
+            output_ac_corner=_output_corner(stored, bench),
         )
     except ValueError as exc:
         raise BadInput(f"{stored.path}: cannot learn the device: {exc}") from None
+
+
+def _output_corner(stored: StoredRun, bench: Bench) -> float:
+    """The AC-coupling corner the run referred its output readings through (0: none)."""
+    corner = stored.meta.get("scope_ac_corner_hz", 0.0)
+    if bench.scope.output.coupling != "AC" or not isinstance(corner, int | float):
+        return 0.0
+    return float(corner) if math.isfinite(corner) and corner > 0 else 0.0
 
 
 def _scenario_for(device: str, base: Any, learned: Any) -> Any:
@@ -182,6 +191,7 @@ class ReplayOutcome:
     simulated_bench_time_s: float  # what the replay took on the simulated bench
     stored_planned_bench_time_s: float
     stored_bench_time_s: float  # sum of the stored points' bench time
+    replay_points_bench_time_s: float  # sum of the replayed points' bench time
     summary: dict[str, Any]
     notes: list[str] = field(default_factory=list)
     model: Any = None  # the device object the replay measured
@@ -257,6 +267,7 @@ def replay(
         simulated_bench_time_s=float(run.bench_time),
         stored_planned_bench_time_s=float(stored.meta.get("planned_bench_time_s", math.nan)),
         stored_bench_time_s=float(np.nansum(stored.points["bench_time"].to_numpy())),
+        replay_points_bench_time_s=float(np.nansum(replayed["bench_time"].to_numpy())),
         summary=summarise(comparison),
         notes=notes,
         model=scenario.device,
@@ -519,8 +530,9 @@ def render_comparison(outcome: ReplayOutcome) -> Any:
         f"{escape(outcome.run.status)} ({escape(outcome.run.reason)})",
         f"bench time: planned {duration_text(outcome.planned_bench_time_s)} "
         f"(stored run planned {duration_text(outcome.stored_planned_bench_time_s)}); "
-        f"simulated {duration_text(outcome.simulated_bench_time_s)} "
-        f"(stored points took {duration_text(outcome.stored_bench_time_s)})",
+        f"simulated {duration_text(outcome.simulated_bench_time_s)} in all, points "
+        f"{duration_text(outcome.replay_points_bench_time_s)} "
+        f"(the stored points took {duration_text(outcome.stored_bench_time_s)})",
     ]
     if s["compared"]:
         head.append(

@@ -219,6 +219,14 @@ def alias_factor(scope: ScopeTruth, bandwidth_limit: float | None, sample_interv
     return max(1.0, math.pi * band * sample_interval)
 
 
+def _high_pass_gain(f: float, corner: float) -> float:
+    """|x/(1 + x)|, x = j·f/f_c: a first-order high-pass (1 without a corner)."""
+    if not corner > 0:
+        return 1.0
+    x = f / corner
+    return x / math.sqrt(1.0 + x * x)
+
+
 def _column(table: Mapping[str, Any], name: str) -> np.ndarray:
     values = table[name]
     return np.asarray(getattr(values, "to_numpy", lambda: values)())
@@ -313,12 +321,16 @@ def learn_device(
     bandwidth_limit: float | None,
     source: str = "",
     margin_db: float = BOUND_MARGIN_DB,
+    output_ac_corner: float = 0.0,
 ) -> LearnedDevice:
     """Build a LearnedDevice from a run's table of points (benchseq.store.read_results, or
     any mapping of column name -> array with the same columns).
 
     ``scope``/``output_probe``/``bandwidth_limit``: the simulated scope the device will be
-    measured with (its own noise is taken out of the stored floor)."""
+    measured with (its own noise is taken out of the stored floor). ``output_ac_corner``
+    (Hz, 0 = none): a run that refers its output readings back to the node through the
+    scope's AC coupling (meta ``scope_ac_corner_hz``) stores the floor divided by that
+    high-pass; the floor the scope itself saw is taken back."""
     f = _column(table, "frequency").astype(float)
     dc = _column(table, "dc_level").astype(float)
     load = _column(table, "load_current").astype(float)
@@ -379,7 +391,8 @@ def learn_device(
             densities = []
             for j in np.flatnonzero(at):
                 duration = length[j] * interval[j] * max(averages[j], 1.0)
-                measured = floor[j] ** 2 * duration
+                seen = floor[j] * _high_pass_gain(float(f[j]), output_ac_corner)
+                measured = seen**2 * duration
                 own = scope_density(scope, out_range[j], output_probe, bandwidth_limit, interval[j])
                 device_part = measured - own
                 if device_part < NOISE_SHARE_MIN * measured:
