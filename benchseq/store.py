@@ -717,11 +717,24 @@ class RunWriter:
             final["reason"] = reason
         self._check_open()
         clean = _jsonable(final, "final metadata")
-        self._write({"kind": "meta", "items": clean})
+        assert self._journal is not None
+        try:
+            self._journal.append({"kind": "meta", "items": clean})
+        except OSError as exc:  # e.g. the disk filled up: still say how the run ended
+            self.close()
+            tail = f"; the {len(self._stored)} points stored are intact (resume when fixed)"
+            if "intact" in (reason or ""):
+                tail = ""
+            raise StoreWriteError(
+                f"run {status}" + (f": {reason}" if reason else "") + " — recording the "
+                f"ending in {self.journal_file.name} failed too ({exc.strerror or exc}){tail}"
+            ) from None
         self.meta.update(clean)
         self._meta_revision += 1
-        self._consolidate()
-        self.close()
+        try:
+            self._consolidate()
+        finally:  # the ending is in the journal either way; readers merge it
+            self.close()
         self._finished = True
         if status == "complete":
             with contextlib.suppress(FileNotFoundError):

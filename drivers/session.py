@@ -156,6 +156,7 @@ def assemble_session(
     """Check every profile, connect, build the role objects, identify and clear status."""
     profiles = {role: profile_for(spec, bench) for role, spec in bench.instruments.items()}
     built: dict[str, Instrument] = {}
+    role = ""
     try:
         for role, spec in bench.instruments.items():
             built[role] = build_instrument(
@@ -165,12 +166,15 @@ def assemble_session(
         for role, instrument in built.items():
             identities[role] = instrument.identify().strip()
             _clear_status(instrument)
-    except BaseException:
+    except BaseException as exc:
         for instrument in built.values():
             with contextlib.suppress(Exception):
                 instrument.transport.close()
         if on_close is not None:
             on_close()
+        if isinstance(exc, InstrumentError) and role:
+            # same class and fields; the message says which role of the bench failed
+            exc.args = (f"opening the bench, the {role}: {exc}",)
         raise
     load = built.get("load")
     return BenchSession(
