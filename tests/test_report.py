@@ -538,3 +538,20 @@ def test_a_run_without_points_still_reports(fmt: str, tmp_path: Path) -> None:
     if fmt == "html":
         text = written[0].read_text(encoding="utf-8")
         assert "PARTIAL RUN (aborted)" in text and "0 of 16 planned points stored" in text
+
+
+@pytest.mark.parametrize("fmt", ["html", "md", "csv", "pdf", "png"])
+def test_odd_files_still_report(fmt: str, tmp_path: Path) -> None:
+    """One frequency only, characters the plot font lacks, a stored plan that is not valid
+    TOML (a control character in its title): every format is written without a warning,
+    and the report says why there is no mask verdict."""
+    path = write_result(
+        tmp_path / "odd.h5",
+        [row(0, 100.0, 50.0), row(1, 100.0, math.nan, bound_db=45.0)],
+        title="中文 \U0001f600 \x07 $ (bay 2)",
+    )
+    written = write_report([path], fmt, tmp_path / f"odd.{fmt}")
+    assert all(p.stat().st_size > 0 for p in written)
+    if fmt == "html":
+        text = written[0].read_text(encoding="utf-8")
+        assert "no mask verdict: the stored plan could not be read" in text

@@ -48,7 +48,8 @@ table.points { border-collapse: collapse; font-size: .85rem; width: 100%; }
 table.points th, table.points td { border-bottom: 1px solid var(--rule); padding: .2rem .45rem;
                                    text-align: right; white-space: nowrap; }
 table.points th { background: #eef0f3; position: sticky; top: 0; }
-table.points td.text { text-align: left; white-space: normal; }
+table.points .text { text-align: left; }
+table.points .wrap { white-space: normal; min-width: 9rem; }
 table.points tr.fail td { background: #fbe9e7; }
 table.points tr.undetermined td { background: #fff6df; }
 table.points tr.bound td.rej { font-style: italic; }
@@ -72,7 +73,7 @@ def _verdict(source: Source, report: Report) -> str:
     verdict = source.verdict
     css = verdict.status.replace(" ", "-")
     who = f"{_text(source.label)}: " if report.overlay else ""
-    summary = verdict.summary()
+    summary = source.verdict_summary()
     word = verdict.status.upper()
     rest = summary[len(word) :] if summary.upper().startswith(word) else " — " + summary
     return (
@@ -81,9 +82,16 @@ def _verdict(source: Source, report: Report) -> str:
     )
 
 
+_CELL_CLASS = {"operating point": "text", "verdict": "text", "flags": "text wrap"}
+
+
 def _points(source: Source) -> str:
     headers, rows = point_table(source)
-    head = "".join(f'<th scope="col">{_text(h)}</th>' for h in headers)
+    kinds = [_CELL_CLASS.get(h, "rej" if h.startswith("rejection") else "") for h in headers]
+    head = "".join(
+        f'<th scope="col" class="{k}">{_text(h)}</th>' if k else f'<th scope="col">{_text(h)}</th>'
+        for h, k in zip(headers, kinds, strict=True)
+    )
     outcomes = source.verdict.points["outcome"].tolist()
     bounds = source.frame["is_bound"].tolist() if "is_bound" in source.frame else []
     body = []
@@ -92,9 +100,7 @@ def _points(source: Source) -> str:
         if k < len(bounds) and bounds[k]:
             css.append("bound")
         tds = []
-        for name, cell in zip(headers, cells, strict=True):
-            kind = "text" if name in ("operating point", "flags", "verdict") else ""
-            kind = "rej" if name.startswith("rejection") else kind
+        for kind, cell in zip(kinds, cells, strict=True):
             tds.append(
                 f'<td class="{kind}">{_text(cell)}</td>' if kind else f"<td>{_text(cell)}</td>"
             )

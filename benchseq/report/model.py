@@ -121,6 +121,12 @@ class Source:
             self.planned is not None and self.stored < self.planned
         )
 
+    def verdict_summary(self) -> str:
+        """The verdict in a sentence; says so when the stored plan (and its mask) was unreadable."""
+        if self.mask is None and self.plan_problem:
+            return f"no mask verdict: the stored plan could not be read ({self.plan_problem})"
+        return self.verdict.summary()
+
     def status_note(self) -> str:
         """Plain words on how complete the run is."""
         of = f" of {self.planned}" if self.planned is not None else ""
@@ -392,7 +398,7 @@ def headline(source: Source) -> list[tuple[str, str]]:
         ("date", date),
         ("status", source.status_note()),
         ("run", f"{source.path.name}, run id {source.run_id or 'unknown'}"),
-        ("mask verdict", source.verdict.summary()),
+        ("mask verdict", source.verdict_summary()),
     ]
     return [(k, v) for k, v in pairs if v]
 

@@ -130,6 +130,8 @@ def _plot_page(report: Report) -> Any:
 
 
 def _table_pages(source: Source) -> list[Any]:
+    from matplotlib.table import Table
+
     headers, rows = point_table(source)
     pages: list[Any] = []
     count = max(1, math.ceil(len(rows) / ROWS_PER_PAGE))
@@ -144,17 +146,22 @@ def _table_pages(source: Source) -> list[Any]:
             continue
         ax = fig.add_axes((0.03, 0.04, 0.94, 0.88))
         ax.axis("off")
-        cells = [[plot_text(c) for c in r] for r in chunk]
-        table = ax.table(cellText=cells, colLabels=[plot_text(h) for h in headers],
-                         loc="upper center", cellLoc="right")  # fmt: skip
+        table = Table(ax, loc="upper center")
+        height = 0.88 / (ROWS_PER_PAGE + 1.5)
+        for r, texts in enumerate([headers, *chunk]):
+            for c, text in enumerate(texts):
+                left = headers[c] in ("operating point", "verdict", "flags")
+                table.add_cell(
+                    r, c, width=0.05, height=height, text=plot_text(text),
+                    loc="left" if left else "right",
+                    facecolor="#e8eaed" if r == 0 else "white", edgecolor="#9aa0a6",
+                )  # fmt: skip
         table.auto_set_font_size(False)
         table.set_fontsize(6.5)
         table.auto_set_column_width(list(range(len(headers))))
-        for (r, _), cell in table.get_celld().items():
-            cell.set_height(0.88 / (ROWS_PER_PAGE + 1.5))
+        for cell in table.get_celld().values():
             cell.set_linewidth(0.3)
-            if r == 0:
-                cell.set_facecolor("#e8eaed")
+        ax.add_table(table)
         pages.append(fig)
     return pages
 

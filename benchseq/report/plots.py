@@ -99,6 +99,29 @@ def _frequency_axis(ax: Any) -> None:
     ax.grid(True, which="minor", color="#ececec", linewidth=0.4)
 
 
+def _settle_limits(ax: Any) -> None:
+    """Give the axes a usable span when the data have none (one frequency, one value)."""
+    box = ax.dataLim
+    x0, x1, y0, y1 = box.x0, box.x1, box.y0, box.y1
+    log_y = ax.get_yscale() == "log"
+    x_span: tuple[float, float] | None = None
+    y_span: tuple[float, float] | None = None
+    if not (np.isfinite([x0, x1]).all() and x0 > 0):
+        x_span = (10.0, 1e6)
+    elif x1 <= x0 * (1 + 1e-9):
+        x_span = (x0 / 3.0, x0 * 3.0)
+    if not np.isfinite([y0, y1]).all() or (log_y and y0 <= 0):
+        y_span = (1e-6, 1.0) if log_y else (0.0, 1.0)
+    elif y1 - y0 <= 1e-9 * max(abs(y0), 1.0):
+        y_span = (y0 / 3.0, y0 * 3.0) if log_y else (y0 - 1.0, y0 + 1.0)
+    if x_span is not None:
+        ax.set_autoscalex_on(False)  # before set_xlim: no autoscale pass on the singular data
+        ax.set_xlim(*x_span)
+    if y_span is not None:
+        ax.set_autoscaley_on(False)
+        ax.set_ylim(*y_span)
+
+
 def _empty(ax: Any, report: Report) -> bool:
     if any(len(c.frame) for c in report.curves):
         return False
@@ -166,6 +189,7 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
         line.set_gid(f"{MASK_GID}-{len(drawn.masks)}")
         drawn.masks.append(line)
         handles.append(line)
+    _settle_limits(ax)
     if drawn.masks:
         bottom, top = ax.get_ylim()
         for line in drawn.masks:
@@ -184,7 +208,10 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
     for source in report.sources:
         prefix = f"{source.label}: " if report.overlay else ""
         partial = " [partial run]" if source.partial else ""
-        drawn.verdicts.append(plot_text(f"{prefix}{source.verdict.short()}{partial}"))
+        short = source.verdict.short()
+        if source.mask is None and source.plan_problem:
+            short += " (stored plan unreadable)"
+        drawn.verdicts.append(plot_text(f"{prefix}{short}{partial}"))
     ax.set_title("\n".join(drawn.verdicts), fontsize="small", loc="left")
     return drawn
 
@@ -195,6 +222,7 @@ def draw_phase(ax: Any, report: Report) -> list[Any]:
     ax.set_ylabel("phase of V_out/V_pin [°]")
     lines: list[Any] = []
     if _empty(ax, report):
+        _settle_limits(ax)
         return lines
     for curve in report.curves:
         colour, line = _style(curve)
@@ -213,6 +241,7 @@ def draw_phase(ax: Any, report: Report) -> list[Any]:
             label=plot_text(report.curve_label(curve)),
         )  # fmt: skip
         lines.append(drawn)
+    _settle_limits(ax)
     ax.legend(loc="best", fontsize="x-small", framealpha=0.85)
     return lines
 
@@ -247,6 +276,7 @@ def draw_floor(ax: Any, report: Report) -> list[Any]:
                 label=plot_text(f"{name}: {what}"),
             )  # fmt: skip
             lines.append(drawn)
+    _settle_limits(ax)
     if lines:
         ax.legend(loc="best", fontsize="x-small", framealpha=0.85)
     else:
