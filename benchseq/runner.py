@@ -12,7 +12,7 @@ from typing import Any
 
 from benchseq import __version__
 from benchseq.bench import Bench, load_bench, parse_bench
-from benchseq.errors import BadInput
+from benchseq.errors import BadInput, FileKeyError
 from benchseq.plan import Plan, load_plan, parse_plan
 from benchseq.records import POINT_COLUMNS, SCHEMA_VERSION, SIGN_CONVENTION, TRUTH_COLUMNS
 from benchseq.sequencer import EventSink, RunOutcome, Sequencer
@@ -22,6 +22,81 @@ from benchseq.tomlfile import parse_toml_text
 
 class RefusedPlan(BadInput):
     """The feasibility check refused points: nothing was switched on."""
+
+
+class _FlaggingWriter:
+    """The run's writer with run-level flags added to every point's row before it is stored
+    (the row is amended in place, so the sequencer's counts and events see the flags too)."""
+
+    def __init__(self, writer: Any, flags: list[str]) -> None:
+        self._writer = writer
+        self._flags = list(flags)
+
+    def append(
+        self,
+        point_id: int,
+        row: dict[str, Any],
+        truth: dict[str, Any] | None = None,
+        waveforms: Any = None,
+    ) -> None:
+        present = str(row.get("flags", "")).split()
+        row["flags"] = " ".join(dict.fromkeys([*present, *self._flags]))
+        self._writer.append(point_id, row, truth=truth, waveforms=waveforms)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._writer, name)
+
+
+def _bench_calibration(bench: Bench) -> Any:
+    """The calibration the bench names (scope.calibration), loaded; None when it names none.
+    A missing or unreadable file is BadInput naming the bench file and key."""
+    if bench.scope.calibration is None:
+        return None
+    from benchseq.calibrate import load_calibration
+
+    try:
+        return load_calibration(bench.scope.calibration)
+    except BadInput as exc:
+        raise FileKeyError(
+            bench.source, "scope.calibration", f"{exc}; nothing was switched on"
+        ) from None
+
+
+def _stored_calibration(record: dict[str, Any], result: Path) -> Any:
+    """On resume: the calibration the run started with, unchanged (same sha256)."""
+    from benchseq.calibrate import load_calibration
+
+    where = f"{result}: the channel-match calibration this run started with"
+    try:
+        loaded = load_calibration(record["path"])
+    except BadInput as exc:
+        raise BadInput(f"{where} cannot be read: {exc}") from None
+    if loaded.sha256 != record.get("sha256"):
+        raise BadInput(
+            f"{where} ({record['path']}) has changed since (sha256 differs); restore that file "
+            "to resume, or start a new run"
+        )
+    return loaded
+
+
+def _calibration_meta(loaded: Any, plan: Plan, bench: Bench, identities: Any) -> dict[str, Any]:
+    """What the run records of the calibration applied (mismatches: condition differences)."""
+    from benchseq.calibrate import RANGE_NOTE, condition_mismatches, uncovered_frequencies
+
+    return {
+        **loaded.record(),
+        "mismatches": condition_mismatches(loaded, bench, identities),
+        "uncovered_frequencies_hz": uncovered_frequencies(loaded, plan),
+        "notes": [RANGE_NOTE],
+    }
+
+
+def _calibrated_writer(writer: Any, record: dict[str, Any] | None) -> Any:
+    from benchseq.calibrate import CONDITIONS_FLAG
+
+    if record is not None and record["mismatches"]:
+        return _FlaggingWriter(writer, [CONDITIONS_FLAG])
+    return writer
 
 
 def default_output(plan: Plan) -> Path:
@@ -140,7 +215,11 @@ def run_prepared(
 
     open_session = session_factory or open_session
     report = _refuse_infeasible(plan, bench)
+    calibration = _bench_calibration(bench)
     meta = run_meta(plan, bench, seed, keep_waveforms, report)
+    meta["calibration"] = (
+        None if calibration is None else _calibration_meta(calibration, plan, bench, None)
+    )
     meta.update(meta_extra or {})
     writer = RunWriter.create(
         path,
@@ -152,16 +231,21 @@ def run_prepared(
     session = open_session(bench, seed=seed, faults=faults)
     try:
         writer.update_meta(identities=dict(session.identities))
+        record = None
+        if calibration is not None:
+            record = _calibration_meta(calibration, plan, bench, session.identities)
+            writer.update_meta(calibration=record)
         sequencer = Sequencer(
             plan,
             bench,
             session,
-            writer,
+            _calibrated_writer(writer, record),
             emit=emit,
             stop=stop,
             keep_waveforms=keep_waveforms,
             seed=seed,
             planned_bench_time=report.estimated_time_s,
+            calibration=None if calibration is None else calibration.table,
         )
         return sequencer.run(), path
     finally:
@@ -203,20 +287,40 @@ def resume_run(
             "resume without --bench to use the stored bench"
         )
     report = _refuse_infeasible(plan, bench)
+    stored = meta.get("calibration")
+    if stored:
+        calibration = _stored_calibration(stored, path)
+    elif "calibration" not in meta and bench.scope.calibration is not None:
+        # a run recorded before calibrations were noted: the path is relative to its bench
+        named = Path(bench.scope.calibration)
+        if not named.is_absolute():
+            named = Path(meta["bench_source"]).parent / named
+        calibration = _bench_calibration(
+            dataclasses.replace(
+                bench, scope=dataclasses.replace(bench.scope, calibration=str(named))
+            )
+        )
+    else:
+        calibration = None
     writer = RunWriter.resume(path)
     seed = int(meta.get("seed", 0))
     session = open_session(bench, seed=seed, faults=faults)
     try:
+        record = None
+        if calibration is not None:
+            record = _calibration_meta(calibration, plan, bench, session.identities)
+            writer.update_meta(calibration=record)
         sequencer = Sequencer(
             plan,
             bench,
             session,
-            writer,
+            _calibrated_writer(writer, record),
             emit=emit,
             stop=stop,
             keep_waveforms=bool(meta.get("keep_waveforms", False)),
             seed=seed,
             planned_bench_time=report.estimated_time_s,
+            calibration=None if calibration is None else calibration.table,
         )
         return sequencer.run(), path
     finally:
