@@ -358,9 +358,10 @@ def compare_points(
             "stored_bound_db": math.nan,
             "reference_from_bound": False,
         }
+        # stored points at the operating point compared with (the nearest one if need be)
         hits = np.flatnonzero(
-            _same_value(s_dc, dc)
-            & _same_value(s_load, load)
+            _same_value(s_dc, curve.dc_level)
+            & _same_value(s_load, curve.load_current)
             & (np.abs(s_f - f) <= 1e-6 * f)
         )
         if hits.size:

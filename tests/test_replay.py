@@ -326,3 +326,86 @@ def _text_of(renderable: Any) -> str:
 
 def _text(outcome: Any) -> str:
     return _text_of(render_comparison(outcome))
+
+
+# -- a stored real bench -------------------------------------------------------------------
+def _as_real_bench_run(source: Path, out: Path) -> Path:
+    """The short run's points as if measured on a real bench: the demo bench file with LAN
+    addresses and no simulation (the points themselves are copied)."""
+    from benchseq.reanalyse import columns_of
+    from benchseq.store import RunWriter
+
+    meta = read_meta(source)
+    text = meta["bench_text"].replace('simulation = "demo"', "# no simulation: a real bench")
+    for role, port in (("generator", 5025), ("supply", 5026), ("scope", 5027)):
+        text = text.replace(f'"SIM::{role}"', f'"TCPIP::192.0.2.10::{port}::SOCKET"')
+    meta.update(
+        run_id="real-bench-copy", bench_text=text, bench_source="bay2.bench.toml",
+        simulated=False, simulation="",
+    )  # fmt: skip
+    points = read_results(source)
+    writer = RunWriter.create(out, meta, columns_of(points))
+    for row in points.to_dict(orient="records"):
+        writer.append(int(row["point_id"]), row)
+    writer.finish("complete")
+    return out
+
+
+def test_stored_real_bench_becomes_a_simulated_one(short_run: Path, folder: Path) -> None:
+    """Instrument truths from the demo scenario, the injector exactly as the bench file
+    states (the scenario's own as-built values belong to its board)."""
+    real = _as_real_bench_run(short_run, folder / "real.h5")
+    assert read_stored(real).bench.simulation is None
+    outcome = replay(real, device="learned", out=folder / "real-learned.h5")
+    assert outcome.run.status == "complete"
+    assert outcome.replay_of["stored_bench"] == "real"
+    assert outcome.replay_of["instrument_truths"] == "demo"
+    circuit = outcome.simulators[0].circuit
+    bench = read_stored(real).bench
+    assert circuit.coupling_capacitor == bench.injector.coupling_capacitor  # 10 uF, not 10.8
+    assert circuit.source_resistance == bench.generator.source_resistance
+    assert any("real one" in note for note in outcome.notes)
+    meta = read_meta(outcome.path)
+    assert meta["simulated"] is True and meta["simulation"] == "demo"
+    assert bool(outcome.comparison["within"].dropna().all())
+
+
+# -- matching a new plan's points ----------------------------------------------------------
+def test_new_frequencies_compare_with_the_interpolated_curve(demo_run: Path) -> None:
+    """Points between stored frequencies are compared with the learned curve there (scipy's
+    PCHIP of rejection over log f is the reference) and marked; outside the span and at an
+    operating point never stored nothing is compared."""
+    from benchseq.replay import compare_points
+
+    stored = read_stored(demo_run)
+    scenario = load_scenario("demo")
+    device = learn_device(
+        stored.points,
+        standin=scenario.device,
+        scope=scenario.scope,
+        output_probe=1.0,
+        bandwidth_limit=20e6,
+    )
+    frame = stored.points.sort_values("frequency").reset_index(drop=True)
+    f = frame["frequency"].to_numpy()
+    reference = PchipInterpolator(np.log10(f), -20 * np.log10(np.abs(frame["ratio"].to_numpy())))
+    new = frame.iloc[:4].copy()
+    planned = frame["frequency_planned"].to_numpy()
+    new["frequency_planned"] = [np.sqrt(f[0] * f[1]), np.sqrt(f[5] * f[6]), 5e6, planned[2]]
+    new["dc_level"] = [5.0, 5.0, 5.0, 4.5]
+    new["rejection_db"] = reference(np.log10(new["frequency_planned"].to_numpy())) + 0.01
+    new["uncertainty_db"] = 0.1
+    new["is_bound"] = False
+    c = compare_points(stored.points, new, None, device)
+    assert list(c["match"]) == ["interpolated", "interpolated", "outside_span", "same"]
+    assert list(c["op_match"]) == ["same", "same", "same", "nearest"]
+    np.testing.assert_allclose(
+        c["stored_db"][:2], reference(np.log10(new["frequency_planned"][:2])), rtol=1e-12
+    )
+    u = frame["uncertainty_db"].to_numpy()
+    assert c["stored_u_db"][0] == max(u[0], u[1]) and c["stored_u_db"][1] == max(u[5], u[6])
+    assert list(c["compared"]) == [True, True, False, False]
+    assert c["within"][:2].all() and c["within"][2:].isna().all()
+    assert c["verdict"][0] == "reproduced (interpolated)"
+    assert c["stored_point_id"][3] == frame["point_id"][2]  # the nearest stored operating point
+    assert c["verdict"][3] == "not compared: operating point not stored"
