@@ -148,6 +148,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         if outcome.status != "complete":
             console.print(f"continue with: benchseq run --resume {_escape(path)}")
         console.print(f"summary: benchseq show {_escape(path)}")
+        console.print(f"lab report: benchseq report {_escape(path)}")
     return EXIT_OK if outcome.status in ("complete", "stopped") else EXIT_FAILURE
 
 
@@ -199,6 +200,21 @@ def cmd_show(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_report(args: argparse.Namespace) -> int:
+    from benchseq.report import format_name, write_report
+
+    fmt = format_name(args.format, args.out)
+    written = write_report(args.results, fmt, args.out)
+    if args.json:
+        _print_json({"format": fmt, "files": [str(p) for p in written]})
+        return EXIT_OK
+    console = _console()
+    console.print(f"{fmt} report written to [bold]{_escape(written[0])}[/]")
+    for extra in written[1:]:
+        console.print(f"  beside it: {_escape(extra)}")
+    return EXIT_OK
+
+
 def cmd_scan(args: argparse.Namespace) -> int:
     from benchseq.drivers.session import scan
 
@@ -223,7 +239,9 @@ def cmd_sim_serve(args: argparse.Namespace) -> int:
     from benchseq.sim.server import sim_serve_main
 
     return int(
-        sim_serve_main(args.scenario, base_port=args.port, seed=args.seed, console=_console())
+        sim_serve_main(
+            args.scenario, base_port=args.port, seed=args.seed, console=_console(), log=args.log
+        )
     )
 
 
@@ -265,6 +283,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
     p.set_defaults(func=cmd_show)
 
+    p = sub.add_parser("report", help="lab report of one or more runs (html, md, csv, pdf, png)")
+    p.add_argument(
+        "results", nargs="+", metavar="RESULT", help="result file(s) (.h5); several are overlaid"
+    )
+    p.add_argument(
+        "--format",
+        choices=("html", "md", "csv", "pdf", "png"),
+        help="report format (default: from the -o extension, else html)",
+    )
+    p.add_argument(
+        "-o",
+        "--out",
+        metavar="PATH",
+        help="report file (default: <first result>-report.<ext> beside it)",
+    )
+    p.add_argument("--json", action="store_true", help="print the files written as JSON")
+    p.set_defaults(func=cmd_report)
+
     p = sub.add_parser("scan", help="list reachable VISA instruments and their *IDN?")
     p.add_argument(
         "address",
@@ -282,6 +318,9 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--scenario", default="demo", help="scenario name (default demo)")
     q.add_argument("--port", type=int, default=5025, help="first TCP port (one per instrument)")
     q.add_argument("--seed", type=int, default=0, help="noise seed")
+    q.add_argument(
+        "--log", metavar="FILE", help="append every instrument state change to FILE (JSON lines)"
+    )
     q.set_defaults(func=cmd_sim_serve)
     return parser
 
