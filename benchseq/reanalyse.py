@@ -65,6 +65,22 @@ class ReanalysisOutcome:
     summary: dict[str, Any]
     notes: list[str] = field(default_factory=list)
 
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able figures (for ``--json``)."""
+        from benchseq.replay import _plain, records
+
+        return {
+            "file": str(self.path),
+            "source": str(self.source),
+            "reanalysed": self.reanalysed,
+            "copied": self.copied,
+            "identical": self.identical,
+            "coverage_k": self.coverage_k,
+            "summary": _plain(self.summary),
+            "notes": list(self.notes),
+            "points": records(self.comparison),
+        }
+
 
 def _code_range(wave: Any, full_scale: float) -> tuple[int, int]:
     """The transfer format's code range, from range / volts-per-code (else the sample type)."""

@@ -160,7 +160,13 @@ def _scenario_for(device: str, base: Any, learned: Any) -> Any:
             base.scope, gain_error={}, phase_error_deg={}, skew={}, probe_attenuation={}
         )
         return dataclasses.replace(base, device=learned, scope=clean_scope)
-    return dataclasses.replace(base, device=load_scenario(device).device)
+    from benchseq.errors import FileKeyError
+
+    try:
+        other = load_scenario(device)
+    except FileKeyError as exc:
+        raise BadInput(f'--device "{device}" is not "learned" nor a scenario: {exc.problem}') from None
+    return dataclasses.replace(base, device=other.device)
 
 
 def session_factory_for(scenario: Any, keep: list[Any] | None = None) -> Any:
@@ -196,6 +202,40 @@ class ReplayOutcome:
     notes: list[str] = field(default_factory=list)
     model: Any = None  # the device object the replay measured
     simulators: list[Any] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able figures (for ``--json``)."""
+        return {
+            "file": str(self.path),
+            "status": self.run.status,
+            "reason": self.run.reason,
+            "device": self.device,
+            "replay_of": self.replay_of,
+            "coverage_k": self.coverage_k,
+            "planned_bench_time_s": self.planned_bench_time_s,
+            "simulated_bench_time_s": self.simulated_bench_time_s,
+            "replay_points_bench_time_s": self.replay_points_bench_time_s,
+            "stored_planned_bench_time_s": self.stored_planned_bench_time_s,
+            "stored_bench_time_s": self.stored_bench_time_s,
+            "summary": _plain(self.summary),
+            "notes": list(self.notes),
+            "points": records(self.comparison),
+        }
+
+
+def _plain(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {k: _plain(v) for k, v in value.items()}
+    if value is pd.NA or (isinstance(value, float) and not math.isfinite(value)):
+        return None
+    if isinstance(value, np.generic):
+        return _plain(value.item())
+    return value
+
+
+def records(frame: pd.DataFrame) -> list[dict[str, Any]]:
+    """A comparison table as JSON-able rows (NaN and missing values become None)."""
+    return [_plain(row) for row in frame.to_dict(orient="records")]
 
 
 def default_replay_output(path: Path, device: str) -> Path:

@@ -8,6 +8,7 @@ stored measurement itself for the learned replays."""
 from __future__ import annotations
 
 import io
+import json
 import math
 from pathlib import Path
 from typing import Any
@@ -279,6 +280,7 @@ def test_reanalysis_gives_the_stored_numbers(demo_run: Path, folder: Path) -> No
     assert meta["reanalysed_from"]["run_id"] == read_meta(demo_run)["run_id"]
     assert meta["run_id"] != read_meta(demo_run)["run_id"] and meta["status"] == "complete"
     assert "identical" in _text_of(render_reanalysis(outcome))
+    assert json.loads(json.dumps(outcome.to_dict(), allow_nan=False))["identical"] == 16
 
 
 def test_reanalysis_without_waveforms_is_bad_input(short_run: Path, folder: Path) -> None:
@@ -297,6 +299,8 @@ def test_replay_file_records_what_it_replayed(demo_run: Path, learned_replay: An
     assert of["plan_changed"] is False and meta["simulated"] is True
     text = _text(learned_replay)
     assert "16 of 16 compared points within" in text
+    figures = json.loads(json.dumps(learned_replay.to_dict(), allow_nan=False))
+    assert figures["replay_of"] == of and len(figures["points"]) == 16
 
 
 def test_replay_bad_inputs_name_what_is_wrong(demo_run: Path, folder: Path) -> None:
