@@ -9,13 +9,15 @@ as LAN instruments on port 5025), reachable by pyvisa-py as TCPIP::127.0.0.1::PO
 from __future__ import annotations
 
 import contextlib
+import json
 import re
 import socket
 import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any
+from pathlib import Path
+from typing import Any, TextIO
 
 from benchseq.bench import parse_bench
 from benchseq.drivers.blocks import parse_block
@@ -237,11 +239,16 @@ class RunningServer:
     ports: dict[str, int]
     bench_text: str
     _servers: list[_InstrumentServer] = field(default_factory=list, repr=False)
+    _log: TextIO | None = field(default=None, repr=False)
 
     def stop(self) -> None:
         for server in self._servers:
             server.stop()
         self._servers = []
+        if self._log is not None:
+            with self.simulator.lock:
+                self._log.close()
+                self._log = None
 
     def __enter__(self) -> RunningServer:
         return self
@@ -266,6 +273,34 @@ def tcp_bench_text(text: str, addresses: dict[str, str], scenario: str) -> str:
     return header + "\n".join(lines) + "\n"
 
 
+def _open_log(path: str | Path) -> TextIO:
+    try:
+        return open(path, "a", encoding="utf-8", buffering=1)  # closed by RunningServer.stop
+    except OSError as exc:
+        raise BadInput(f"cannot write the state-change log {path}: {exc.strerror}") from None
+
+
+def log_state_changes(simulator: SimulatedBench, log: TextIO) -> None:
+    """Append every state change of ``simulator`` (outputs, levels, limits, in order) to
+    ``log`` as one JSON object per line: wall time, virtual time, role, what, value."""
+    record = simulator.record
+
+    def logged(role: str, what: str, value: Any) -> None:
+        record(role, what, value)
+        if not log.closed:
+            entry = {"wall": time.time(), "time": simulator.clock.now(), "role": role,
+                     "what": what, "value": value}  # fmt: skip
+            log.write(json.dumps(entry, default=str) + "\n")
+
+    simulator.record = logged  # type: ignore[method-assign]
+
+
+def read_state_log(path: str | Path) -> list[dict[str, Any]]:
+    """The entries of a state-change log written by ``serve(log=...)``, in order."""
+    text = Path(path).read_text(encoding="utf-8")
+    return [json.loads(line) for line in text.splitlines() if line.strip()]
+
+
 def serve(
     scenario: str = "demo",
     host: str = "127.0.0.1",
@@ -273,12 +308,18 @@ def serve(
     faults: dict[str, FaultRates] | None = None,
     seed: int = 0,
     pace: bool = True,
+    log: str | Path | None = None,
 ) -> RunningServer:
     """Serve a scenario's instruments on ``host`` (loopback only), one port per role:
     ``base_port``, +1, +2, ... in the bench file's role order, or free ports when 0.
-    ``pace``: after INIT:IMM the scope answers only once the acquisition would be done."""
+    ``pace``: after INIT:IMM the scope answers only once the acquisition would be done.
+    ``log``: a file to append every instrument state change to (JSON lines; see
+    log_state_changes), so another process can check what the instruments went through."""
     _check_host(host)
     simulator = SimulatedBench.from_scenario(scenario, seed=seed, faults=faults)
+    log_file = _open_log(log) if log is not None else None
+    if log_file is not None:
+        log_state_changes(simulator, log_file)
     servers: list[_InstrumentServer] = []
     try:
         for k, role in enumerate(simulator.bench.instruments):
@@ -287,13 +328,15 @@ def serve(
     except BaseException:
         for server in servers:
             server.stop()
+        if log_file is not None:
+            log_file.close()
         raise
     shown = f"[{host}]" if ":" in host else host
     ports = {s.role: s.port for s in servers}
     addresses = {role: f"TCPIP::{shown}::{port}::SOCKET" for role, port in ports.items()}
     text = tcp_bench_text(simulator.bench.text, addresses, scenario)
     parse_bench(parse_toml_text(text, "served bench")[1], "served bench", text)  # stays valid
-    return RunningServer(simulator, addresses, ports, text, servers)
+    return RunningServer(simulator, addresses, ports, text, servers, log_file)
 
 
 def sim_serve_main(
@@ -305,12 +348,13 @@ def sim_serve_main(
     host: str = "127.0.0.1",
     stop: threading.Event | None = None,
     on_ready: Callable[[RunningServer], None] | None = None,
+    log: str | Path | None = None,
 ) -> int:
     """`benchseq sim serve`: serve until Ctrl-C (or ``stop`` is set); returns exit code 0.
 
     ``console`` (a rich Console) gets the addresses and a matching bench file; or pass
-    ``on_ready`` to receive the RunningServer instead."""
-    server = serve(scenario, host=host, base_port=base_port, faults=faults, seed=seed)
+    ``on_ready`` to receive the RunningServer instead. ``log``: see serve()."""
+    server = serve(scenario, host=host, base_port=base_port, faults=faults, seed=seed, log=log)
     try:
         if on_ready is not None:
             on_ready(server)
