@@ -165,7 +165,7 @@ def _scenario_for(device: str, base: Any, learned: Any) -> Any:
     try:
         other = load_scenario(device)
     except FileKeyError as exc:
-        raise BadInput(f'--device "{device}" is not "learned" nor a scenario: {exc.problem}') from None
+        raise BadInput(f'--device "{device}" is neither "learned" nor a scenario: {exc.problem}') from None
     return dataclasses.replace(base, device=other.device)
 
 
