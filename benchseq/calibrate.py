@@ -793,6 +793,38 @@ def run_calibration(
     )
 
 
+def calibration_summary(result: CalibrationResult | LoadedCalibration) -> dict[str, Any]:
+    """The calibration as plain JSON types (for ``--json``)."""
+    loaded = result.loaded if isinstance(result, CalibrationResult) else result
+    c = loaded.columns
+    summary: dict[str, Any] = {
+        "file": str(loaded.path),
+        "id": loaded.id,
+        "created": loaded.created,
+        "sha256": loaded.sha256,
+        "span_hz": list(loaded.span),
+        "conditions": loaded.conditions,
+        "notes": list(loaded.meta.get("notes", [])),
+        "points": [
+            {
+                "frequency_hz": float(c["frequency"][i]),
+                "gain_db": float(c["gain_db"][i]),
+                "phase_deg": float(c["phase_deg"][i]),
+                "uncertainty_db": float(DB_PER_NEPER * c["uncertainty"][i]),
+                "phase_uncertainty_deg": float(c["phase_uncertainty_deg"][i]),
+                "pin_range_v": float(c["pin_range"][i]),
+                "output_range_v": float(c["output_range"][i]),
+                "flags": str(c["flags"][i]),
+            }
+            for i in range(c["frequency"].size)
+        ],
+    }
+    if isinstance(result, CalibrationResult):
+        summary["bench_time_s"] = float(result.outcome.bench_time)
+        summary["wall_time_s"] = float(result.wall_time_s)
+    return summary
+
+
 # -- display ---------------------------------------------------------------------------------
 def render_calibration(result: CalibrationResult | LoadedCalibration) -> Any:
     """A rich renderable: where, when, under which conditions, and the table."""

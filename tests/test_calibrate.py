@@ -7,6 +7,7 @@ nodal analysis (benchseq.store.read_truth). The simulator never imports the anal
 
 from __future__ import annotations
 
+import json
 import math
 import os
 from pathlib import Path
@@ -182,6 +183,9 @@ def test_file_round_trip_and_self_description(lab: dict[str, Any]) -> None:
     assert again.conditions == loaded.conditions and again.meta == loaded.meta
     probe = 2e3
     assert again.table.lookup(probe).ratio == loaded.table.lookup(probe).ratio
+    summary = json.loads(json.dumps(cal.calibration_summary(lab["result"])))
+    assert len(summary["points"]) == loaded.columns["frequency"].size
+    assert summary["points"][0]["gain_db"] == pytest.approx(loaded.columns["gain_db"][0])
     with h5py.File(loaded.path, "r") as h5:  # plain h5py, no benchseq needed
         assert h5.attrs["format"] == cal.FORMAT and h5.attrs["schema_version"] == 1
         assert h5["table/frequency"].attrs["unit"] == "Hz"
