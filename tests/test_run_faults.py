@@ -235,3 +235,70 @@ def test_faults_too_frequent_abort_safely_keep_points_and_resume(tmp_path: Path)
     band = final[(final["frequency"] >= 200) & ~final["is_bound"]]
     error = (band["rejection_db"] - truth.loc[band.index, "rejection_db"]).abs()
     assert np.all(error <= 0.3 + band["uncertainty_db"])
+
+
+class FailOnce:
+    """Wraps one method of an opened session (or of one of its instruments): the first call
+    after ``arm()`` raises ConnectionLost (a fault past the drivers' own retries); every
+    other call goes through."""
+
+    def __init__(self, role: str, method: str, armed: bool = False) -> None:
+        self.role, self.method, self.armed = role, method, armed
+        self.failed = 0
+        self.sessions: list[Any] = []
+
+    def arm(self) -> None:
+        self.armed = True
+
+    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
+        from benchseq.drivers.errors import ConnectionLost
+
+        session = open_session(bench, seed=seed, faults=faults)
+        self.sessions.append(session)
+        owner = session if self.role == "session" else getattr(session, self.role)
+        real = getattr(owner, self.method)
+
+        def failing(*args: Any, **kwargs: Any) -> Any:
+            if self.armed:
+                self.armed = False
+                self.failed += 1
+                raise ConnectionLost(f"SIM::{self.role}", self.method, "test: lost once")
+            return real(*args, **kwargs)
+
+        setattr(owner, self.method, failing)
+        return session
+
+
+def _small_plan(folder: Path) -> Path:
+    text = (PLANS / "demo.toml").read_text(encoding="utf-8")
+    old = 'frequency = { from = "10 Hz", to = "1 MHz", per_decade = 3 }'
+    assert old in text
+    path = folder / "two.toml"
+    path.write_text(text.replace(old, 'frequency = ["1 kHz", "10 kHz"]'), encoding="utf-8")
+    return path
+
+
+def _arm_after_first_point(factory: FailOnce) -> Any:
+    def emit(event: Any) -> None:
+        if event.kind == "point_stored" and event.done == 1:
+            factory.arm()
+
+    return emit
+
+
+def test_a_fault_in_a_point_is_recovered_and_flagged(tmp_path: Path) -> None:
+    """A fault that escapes the drivers in point 1 (its first generator frequency setting):
+    the bench is recovered, the point measured again and flagged instrument_retry; point 0
+    is not flagged, and both agree with the truth."""
+    factory = FailOnce("generator", "set_frequency")
+    outcome, path = start_run(
+        str(_small_plan(tmp_path)), None, str(tmp_path / "once.h5"), seed=1,
+        session_factory=factory, emit=_arm_after_first_point(factory),
+    )  # fmt: skip
+    assert outcome.status == "complete" and factory.failed == 1
+    frame = read_results(path).merge(read_truth(path), on="point_id", suffixes=("", "_true"))
+    flagged = {int(r.point_id): "instrument_retry" in r.flags.split() for r in frame.itertuples()}
+    assert flagged == {0: False, 1: True}
+    error = (frame["rejection_db"] - frame["rejection_db_true"]).abs()
+    assert np.all(error <= 0.3 + frame["uncertainty_db"])
+    _ends_safe(factory.sessions[0])
