@@ -78,22 +78,120 @@ def cmd_injector(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+class _LiveDisplay:
+    """Event sink that opens a RunDisplay on the first event and closes it at the end."""
+
+    def __init__(self, console: Any, quiet: bool = False) -> None:
+        self.console, self.quiet, self.display = console, quiet, None
+
+    def __call__(self, event: Any) -> None:
+        from benchseq.display import RunDisplay
+
+        if self.quiet:
+            return
+        if self.display is None:
+            self.display = RunDisplay(
+                self.console, event.total or 0, event.bench_time_left, event.done
+            )
+            self.display.__enter__()
+        self.display.handle(event)
+
+    def close(self) -> None:
+        if self.display is not None:
+            self.display.__exit__()
+            self.display = None
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    if args.reanalyse:
+        from benchseq.reanalyse import reanalyse, render_reanalysis
+
+        if args.plan or args.device != "learned":
+            raise BadInput(
+                "--reanalyse recomputes the stored points; it takes no --plan or --device"
+            )
+        outcome = reanalyse(args.result, args.out, force=args.force)
+        if args.json:
+            _print_json(outcome.to_dict())
+        else:
+            _console().print(render_reanalysis(outcome))
+            _console().print(f"results: [bold]{_escape(outcome.path)}[/]")
+        return EXIT_OK
+
+    from benchseq.replay import render_comparison, replay
+    from benchseq.stopping import StopControl
+
+    console = _console()
+    stop = StopControl()
+    sink = _LiveDisplay(console, quiet=args.json)
+    with stop.installed():
+        try:
+            outcome = replay(
+                args.result,
+                plan_path=args.plan,
+                device=args.device,
+                out=args.out,
+                seed=args.seed,
+                emit=sink,
+                stop=stop,
+                force=args.force,
+            )
+        finally:
+            sink.close()
+    if args.json:
+        _print_json(outcome.to_dict())
+    else:
+        console.print(render_comparison(outcome))
+        console.print(f"replay results: [bold]{_escape(outcome.path)}[/]")
+    return EXIT_OK if outcome.run.status in ("complete", "stopped") else EXIT_FAILURE
+
+
+def cmd_calibrate(args: argparse.Namespace) -> int:
+    from rich.prompt import Confirm
+
+    from benchseq.calibrate import calibration_summary, render_calibration, run_calibration
+    from benchseq.stopping import StopControl
+
+    console = _console(stderr=args.json)
+    stop = StopControl()
+    sink = _LiveDisplay(console)
+
+    def confirm(message: str) -> bool:
+        console.print(_escape(message))
+        try:
+            return Confirm.ask("Both probes on the pin?", console=console, default=False)
+        except EOFError:
+            return False
+
+    with stop.installed():
+        try:
+            result = run_calibration(
+                args.plan,
+                args.bench,
+                args.out,
+                force=args.force,
+                seed=args.seed,
+                confirm=confirm,
+                emit=sink,
+                stop=stop,
+            )
+        finally:
+            sink.close()
+    if args.json:
+        _print_json(calibration_summary(result))
+    else:
+        console.print(render_calibration(result))
+    return EXIT_OK
+
+
 def cmd_run(args: argparse.Namespace) -> int:
-    from benchseq.display import RunDisplay, duration_text
+    from benchseq.display import duration_text
     from benchseq.runner import resume_run, start_run
     from benchseq.stopping import StopControl
 
     console = _console()
     stop = StopControl()
-    state: dict[str, Any] = {}
-
-    def emit(event: Any) -> None:
-        display = state.get("display")
-        if display is None:
-            display = RunDisplay(console, event.total or 0, event.bench_time_left, event.done)
-            display.__enter__()
-            state["display"] = display
-        display.handle(event)
+    emit = _LiveDisplay(console)
 
     with stop.installed():
         try:
@@ -113,8 +211,7 @@ def cmd_run(args: argparse.Namespace) -> int:
                     stop=stop,
                 )
         finally:
-            if state.get("display") is not None:
-                state["display"].__exit__()
+            emit.close()
     if outcome is None:
         console.print(f"{_escape(path)} is already complete; nothing to do.")
         return EXIT_OK
@@ -282,6 +379,47 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("result", help="result file (.h5)")
     p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
     p.set_defaults(func=cmd_show)
+
+    p = sub.add_parser(
+        "replay",
+        help="re-run a stored run on the simulated bench and compare, or re-analyse its waveforms",
+    )
+    p.add_argument("result", help="result file (.h5) of the run to replay")
+    p.add_argument("--plan", help="replay this plan instead of the stored one")
+    p.add_argument(
+        "--device",
+        default="learned",
+        help='"learned": the device measured in RESULT (default); or a scenario name whose device to use',
+    )
+    p.add_argument(
+        "--reanalyse",
+        action="store_true",
+        help="recompute the stored points from their raw waveforms (runs made with --keep-waveforms); no bench",
+    )
+    p.add_argument(
+        "--out",
+        help="new result file (default: RESULT-replay-<device>.h5, or RESULT-reanalysed.h5)",
+    )
+    p.add_argument("--force", action="store_true", help="overwrite an existing output file")
+    p.add_argument("--seed", type=int, default=0, help="seed of the simulated bench (default 0)")
+    p.add_argument("--json", action="store_true", help="print the comparison as JSON")
+    p.set_defaults(func=cmd_replay)
+
+    p = sub.add_parser(
+        "calibrate", help="measure the scope channels' gain/phase match, both probes on the pin"
+    )
+    p.add_argument(
+        "--plan",
+        help="plan whose frequencies, ripple and DC level to calibrate at (required for a real bench)",
+    )
+    p.add_argument("--bench", help="bench file; omit (or 'sim') for the embedded simulated bench")
+    p.add_argument(
+        "--out", metavar="CAL.h5", help="calibration file (default: the bench's scope.calibration)"
+    )
+    p.add_argument("--force", action="store_true", help="replace an existing calibration file")
+    p.add_argument("--seed", type=int, default=0, help="seed of the simulated bench (default 0)")
+    p.add_argument("--json", action="store_true", help="print the calibration as JSON")
+    p.set_defaults(func=cmd_calibrate)
 
     p = sub.add_parser("report", help="lab report of one or more runs (html, md, csv, pdf, png)")
     p.add_argument(

@@ -601,6 +601,16 @@ class Sequencer:
         )
         return pin.amplitude / abs(through), out.amplitude / abs(through)
 
+    def _capture_limits(self) -> analysis.ScopeTimebase:
+        """The scope's timebase limits with averaging capped by the plan's max_averages."""
+        caps = self.session.scope.capabilities
+        return analysis.ScopeTimebase(
+            caps.sample_intervals,
+            caps.record_lengths,
+            max(1, min(int(caps.max_averages), int(self.plan.capture.max_averages))),
+            caps.rearm_time,
+        )
+
     def _coupling_at(self, frequency: float) -> complex:
         """The AC coupling's response at ``frequency`` for the pin channel (1 when DC-coupled
         or no corner was measured)."""
@@ -634,7 +644,7 @@ class Sequencer:
         rules = self.plan.capture
         sigma = noise if noise is not None and noise > 0 else DEFAULT_NOISE_GUESS
         return analysis.plan_capture(
-            self.session.scope.capabilities,
+            self._capture_limits(),
             frequency,
             max(pin, 1e-12),
             max(output, sigma * 0.1, 1e-12),
@@ -754,7 +764,7 @@ class Sequencer:
         else:
             output, target_db = expected, rules.target_uncertainty_db
         longer = analysis.plan_capture(
-            self.session.scope.capabilities,
+            self._capture_limits(),
             plan.frequency,
             max(result.pin.amplitude, 1e-12),
             max(output, 1e-12),
@@ -781,8 +791,13 @@ class Sequencer:
             offset = float(
                 (wave.volts_at_zero - wave.code_offset * wave.volts_per_code) * wave.probe
             )
+            # one storage type for every point: 8-bit records (no averaging) are widened to
+            # int16 with the same codes and scaling, so a run can mix averaged and single ones
             kept[name] = StoredWaveform(
-                samples=np.asarray(wave.codes), scale=scale, offset=offset, sample_interval=interval
+                samples=np.asarray(wave.codes).astype(np.int16),
+                scale=scale,
+                offset=offset,
+                sample_interval=interval,
             )
         return kept
 
