@@ -120,7 +120,6 @@ FLAG_TEXT: dict[str, str] = {
     "pin_dc_out_of_limits": "the pin DC level was outside the device's limits",
     "clipped": "a scope channel clipped even at its largest usable range",
     "unresolved": "a channel's signal was too small for the converter to resolve",
-    "uncalibrated": "no channel-match calibration covers this frequency",
     "target_unmet": "the capture could not reach the plan's target uncertainty within its limits",
     "instrument_retry": "an instrument fault occurred and the point was measured again after recovery",
     "nonlinear": "a linearity repeat at another ripple level changed rejection by more than the plan's tolerance (not small-signal)",
