@@ -1,0 +1,677 @@
+"""Benchmarks of the run on the embedded simulated bench (a script, not a test): prints figures.
+
+    python tests/perf/run_speed.py [--points 96] [--parts abcd] [--full] [--dir /tmp]
+
+(a) the demo sweep (plans/demo.toml): wall time per point, split into record synthesis,
+    circuit solve, analysis, storage and the rest (time.perf_counter around the package's
+    functions, nothing edited). The simulated bench runs on a virtual clock, so all of the
+    wall time is software.
+(b) plans/overnight.toml: the check's planned bench time and the sequencer's simulated bench
+    time (on --points points, a stratified subset; 832 = all) against a lower bound from the
+    simulator's truth (settle + least capture meeting the target by the Cramér–Rao bound of
+    a known-frequency sine fit) and against a fixed-capture sequencer; what the sequencer
+    spends that the bound does not (ranging, re-ranging, trims, extensions) is counted apart.
+(c) the cost of making one point durable: journal append + fsync, HDF5 update under each
+    consolidation policy, per point (median, p95), beside in-memory baselines.
+(d) memory of sequencer + store against points (500, 1000, 2000; --full adds 10,000), each
+    size in a fresh subprocess with a timeout: peak RSS (VmHWM), RSS during the run,
+    tracemalloc peak, and journal/HDF5 bytes per point.
+
+Wall-time figures mean something only on a quiet machine: the load average is printed at
+the start and the end.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from types import SimpleNamespace
+from typing import Any
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import _runbench as rb
+
+ROOT = Path(__file__).resolve().parents[2]
+PLANS = ROOT / "plans"
+FULL_SIZE = 10_000
+
+
+def load_line(when: str) -> None:
+    one, five, fifteen = os.getloadavg()
+    print(f"load average {when}: {one:.2f} {five:.2f} {fifteen:.2f} ({os.cpu_count()} CPUs)")
+
+
+def ms(seconds: float) -> str:
+    return f"{1e3 * seconds:9.1f}"
+
+
+# -- (a) the demo sweep ------------------------------------------------------------------------
+def part_a(folder: Path, repeats: int) -> None:
+    from benchseq.runner import start_run
+
+    print("\n== (a) demo sweep (plans/demo.toml) on the embedded simulated bench")
+    profiler = rb.Profiler()
+    rb.install_run_profiler(profiler)
+    runs = []
+    try:
+        for k in range(repeats):
+            profiler.reset()
+            out = folder / f"demo-{k}.h5"
+            start = time.perf_counter()
+            outcome, _ = start_run(str(PLANS / "demo.toml"), None, str(out), force=True, seed=0)
+            wall = time.perf_counter() - start
+            runs.append((wall, outcome, dict(profiler.totals), dict(profiler.calls)))
+    finally:
+        profiler.undo()
+    points = runs[0][1].measured
+    print(
+        f"{points} points, status {runs[0][1].status}, simulated bench time "
+        f"{runs[0][1].bench_time:.2f} s ({runs[0][1].bench_time / points:.2f} s/point); "
+        "in-process (imports done), run k=1 is cold"
+    )
+    categories = sorted({c for run in runs for c in run[2]}, key=lambda c: -runs[-1][2].get(c, 0))
+    head = "".join(f"{'run ' + str(k + 1) + ' ms/pt':>14}" for k in range(len(runs)))
+    print(f"{'part of the wall time':<40}{head}{'calls/run':>11}")
+    for c in categories:
+        cells = "".join(f"{1e3 * run[2].get(c, 0.0) / points:>14.1f}" for run in runs)
+        print(f"{c:<40}{cells}{runs[-1][3].get(c, 0):>11}")
+    rest = "".join(f"{1e3 * (run[0] - sum(run[2].values())) / points:>14.1f}" for run in runs)
+    print(f"{'rest (SCPI, drivers, sequencer, setup)':<40}{rest}")
+    total = "".join(f"{1e3 * run[0] / points:>14.1f}" for run in runs)
+    print(f"{'wall per point':<40}{total}")
+    walls = ", ".join(f"{run[0]:.2f}" for run in runs)
+    print(
+        f"wall per run: {walls} s; bench time / wall = {runs[-1][1].bench_time / runs[-1][0]:.1f}x"
+    )
+    storage = sum(v for c, v in runs[-1][2].items() if c.startswith("store"))
+    print(
+        f"overhead per point beyond the simulated bench (last run): synthesis "
+        f"{ms(runs[-1][2].get(rb.SIM_SYNTH, 0) / points)} ms, analysis "
+        f"{ms((runs[-1][2].get(rb.FITS, 0) + runs[-1][2].get(rb.PLANNING, 0)) / points)} ms, "
+        f"storage {ms(storage / points)} ms"
+    )
+    last_wall, _, last, _ = runs[-1]
+    simulated = sum(last.get(c, 0.0) for c in (rb.SIM_SYNTH, rb.SIM_FORMAT, rb.SIM_PHYSICS))
+    print(
+        f"the virtual clock costs no wall time, so all {1e3 * last_wall / points:.0f} ms/point is "
+        f"software; without the simulator's own work ({1e3 * simulated / points:.0f} ms/point) a "
+        f"real bench would add {1e3 * (last_wall - simulated) / points:.0f} ms/point of software "
+        "to its bench time (instrument I/O not included)"
+    )
+    out = folder / "demo-cli.h5"
+    command = [
+        sys.executable,
+        "-m",
+        "benchseq",
+        "run",
+        str(PLANS / "demo.toml"),
+        "--out",
+        str(out),
+        "--force",
+        "--json",
+    ]
+    start = time.perf_counter()
+    done = subprocess.run(command, capture_output=True, text=True, timeout=300, cwd=ROOT)
+    wall = time.perf_counter() - start
+    print(
+        f"fresh process `benchseq run plans/demo.toml` (imports included): {wall:.2f} s, "
+        f"exit {done.returncode}"
+    )
+
+
+# -- (b) overnight plan: planned, run and least bench time -----------------------------------------
+def _scope_limits() -> Any:
+    from benchseq.sim.world import scope_capabilities
+
+    return SimpleNamespace(**scope_capabilities())
+
+
+def lower_bounds(plan: Any, bench: Any, frequency, dc, ripple) -> list[rb.LeastCapture]:
+    """Least capture of each point from the simulator's truth (cached per state)."""
+    truth = rb.TruthBench(bench, rb_fill())
+    scope = _scope_limits()
+    rules = plan.capture
+    cache: dict[tuple, rb.LeastCapture] = {}
+    out = []
+    for f, d, r in zip(frequency, dc, ripple, strict=True):
+        key = (float(f), float(d), float(r))
+        if key not in cache:
+            cache[key] = rb.least_capture(
+                truth.point(key[1], key[0], key[2]),
+                scope,
+                rules.target_uncertainty_db,
+                rules.min_cycles,
+                rules.max_time_s,
+            )
+        out.append(cache[key])
+    return out
+
+
+def rb_fill() -> float:
+    from benchseq.sequencer import RANGE_FILL
+
+    return RANGE_FILL
+
+
+def part_b(folder: Path, points: int, noise_trials: int) -> None:
+    from benchseq.bench import load_bench
+    from benchseq.check import _linearity_points, check_plan
+    from benchseq.injector import InjectorModel
+    from benchseq.plan import load_plan
+    from benchseq.store import read_results, read_truth
+
+    print("\n== (b) plans/overnight.toml: planned bench time against its lower bound")
+    plan = load_plan(PLANS / "overnight.toml")
+    bench = load_bench(None)
+    report = check_plan(plan, bench)
+    sweep = plan.expand()
+    n = len(sweep)
+    corners = InjectorModel(bench.injector, bench.generator, bench.pin).corners()
+    settle = plan.settle.fixed_s + plan.settle.time_constants * corners.slowest_time_constant_s
+    repeats = _linearity_points(plan, sweep)
+    start = time.perf_counter()
+    bound = lower_bounds(plan, bench, sweep.frequency, sweep.dc_level, sweep.ripple_peak)
+    bound_rep = lower_bounds(
+        plan, bench, repeats["frequency"], repeats["dc_level"], repeats["ripple_peak"]
+    )
+    truth_s = time.perf_counter() - start
+    b = report.time_breakdown
+    operating = b["dc_ramps"] + b["bias_filter"]
+    cap = np.array([x.bench_time for x in bound])
+    cap_rep = np.array([x.bench_time for x in bound_rep])
+    unmet = sum(not x.meets_target for x in bound + bound_rep)
+    lb_total = (n + cap_rep.size) * settle + cap.sum() + cap_rep.sum() + operating
+    print(
+        f"{n} points + {cap_rep.size} linearity repeats; settle {settle:.3f} s per point "
+        f"(wait {plan.settle.fixed_s:g} s + {plan.settle.time_constants:g} x "
+        f"{corners.slowest_time_constant_s:.3g} s); truth + least captures computed in "
+        f"{truth_s:.2f} s"
+    )
+    print(
+        f"check_plan estimated_time_s = {report.estimated_time_s:.1f} s: "
+        + ", ".join(f"{k} {v:.1f}" for k, v in b.items())
+    )
+    print(
+        f"lower bound (settle + least capture meeting {plan.capture.target_uncertainty_db:g} dB, "
+        f"+ DC ramps and bias-filter waits {operating:.1f} s) = {lb_total:.1f} s; captures "
+        f"{cap.sum() + cap_rep.sum():.1f} s; {unmet} points cannot meet the target within "
+        f"max_time {plan.capture.max_time_s:g} s (their bound is the most accurate capture "
+        "within it)"
+    )
+    print(
+        f"ratio check estimate / lower bound = {report.estimated_time_s / lb_total:.3f} "
+        "(the check counts cycle-bound captures only, plus after_operating_point waits and "
+        "floor captures the bound leaves out)"
+    )
+    worst = max(cap.max(), cap_rep.max() if cap_rep.size else 0.0)
+    meetable = [x.bench_time for x in bound + bound_rep if x.meets_target]
+    fixed_total = (n + cap_rep.size) * (settle + worst) + operating
+    fixed_meet = (n + cap_rep.size) * (settle + max(meetable)) + operating
+    print(
+        f"fixed-capture sequencer (one capture for every point, long enough for the worst): "
+        f"{worst:.3f} s each -> {fixed_total:.0f} s = {fixed_total / lb_total:.2f}x the bound; "
+        f"sized for the worst point that can meet the target ({max(meetable):.3f} s): "
+        f"{fixed_meet:.0f} s = {fixed_meet / lb_total:.2f}x"
+    )
+    print(
+        f"{'decade':>16} {'points':>6} {'bound capture s':>16} {'check capture s':>16} "
+        f"{'noise-bound':>11} {'unmet':>6}"
+    )
+    check_caps = np.minimum(
+        np.maximum(plan.capture.min_cycles / sweep.frequency, 1e-3), plan.capture.max_time_s
+    )
+    decades = np.floor(np.log10(sweep.frequency) + 1e-9)
+    for d in np.unique(decades):
+        sel = np.nonzero(decades == d)[0]
+        noise_bound = sum(
+            bound[i].record_length * bound[i].sample_interval * bound[i].records
+            > plan.capture.min_cycles / sweep.frequency[i] * 1.5
+            for i in sel
+        )
+        print(
+            f"{10**d:>9.0f} Hz .. {sel.size:>6} {cap[sel].sum():>16.2f} "
+            f"{check_caps[sel].sum():>16.2f} {noise_bound:>11} "
+            f"{sum(not bound[i].meets_target for i in sel):>6}"
+        )
+
+    if noise_trials:
+        print(
+            f"noise model of the bound against the simulator ({noise_trials} synthesised records "
+            "each, amplitude fitted at the true frequency; ratio 1 ± "
+            f"{1 / math.sqrt(2 * (noise_trials - 1)):.2f} expected):"
+        )
+        checker = rb.TruthBench(bench, rb_fill())
+        for f, dt, length in ((100.0, 1e-6, 200_000), (10e3, 1e-8, 200_000)):
+            found = rb.check_noise_model(checker, 4.2, f, 0.05, dt, length, noise_trials)
+            print(
+                f"  {f:g} Hz, {dt:g} s x {length}: "
+                + "; ".join(
+                    f"{name} predicted σ_A {p:.3g} V, empirical {e:.3g} V (ratio {e / p:.3f})"
+                    for name, p, e in found
+                )
+            )
+
+    keep = rb.stratified(sweep.frequency, points)
+    label = "all points" if keep.size == n else "a subset stratified over frequency"
+    freqs = sweep.frequency[keep]
+    print(
+        f"\nsequencer on {keep.size} of {n} points ({label}; --points {points}): "
+        f"{np.unique(freqs).size} distinct frequencies {freqs.min():.3g}-{freqs.max():.3g} Hz, "
+        f"{np.unique(sweep.dc_level[keep]).size} DC levels"
+    )
+    out = folder / "overnight-subset.h5"
+    start = time.perf_counter()
+    outcome, clock, _ = rb.run_sweep(plan, bench, out, keep=keep, attach=rb.BenchClock)
+    wall = time.perf_counter() - start
+    rows = read_results(out).merge(read_truth(out), on="point_id", suffixes=("", "_true"))
+    totals = clock.totals()
+    spent = sum(totals.values())
+    lb_sub = np.array([bound[int(i)].bench_time for i in keep])
+    ramps = totals.get(rb.RAMP, 0.0)  # the plan's DC steps: the bound takes them too
+    lb_sub_total = keep.size * settle + lb_sub.sum() + ramps
+    print(
+        f"run {outcome.status}: wall {wall:.1f} s ({wall / keep.size:.2f} s/point); bench time "
+        f"{outcome.bench_time:.1f} s (points {spent:.1f} s + power-up "
+        f"{sum(clock.outside.values()):.1f} s)"
+    )
+    print(f"{'bench time by activity':<26}{'s':>9}{'s/point':>9}{'share':>8}")
+    for tag in rb.ACTIVITIES:
+        if totals.get(tag, 0.0) > 0:
+            v = totals[tag]
+            print(f"{tag:<26}{v:>9.2f}{v / keep.size:>9.3f}{v / spent:>8.1%}")
+    overhead = sum(
+        totals.get(t, 0.0)
+        for t in (rb.RANGING, rb.RERANGE, rb.TRIM_CAPTURE, rb.TRIM_SETTLE, rb.EXTENSION, rb.PIN_DC)
+    )
+    planned = totals.get(rb.PLANNED, 0.0)
+    print(
+        f"lower bound on the same points: {lb_sub_total:.2f} s (settle {keep.size * settle:.2f} + "
+        f"captures {lb_sub.sum():.2f} + the same DC ramps/bias waits {ramps:.2f}); sequencer "
+        f"points {spent:.2f} s -> ratio {spent / lb_sub_total:.3f} (goal <= 1.15)"
+    )
+    print(
+        f"  explained: planned captures {planned:.2f} s vs bound captures {lb_sub.sum():.2f} s "
+        f"({planned - lb_sub.sum():+.2f} s); time the bound does not spend (ranging, re-range, "
+        f"trims, extensions, pin DC checks) {overhead:.2f} s, of which extensions "
+        f"{totals.get(rb.EXTENSION, 0.0):.2f} s; settling {totals.get(rb.SETTLE, 0.0):.2f} s"
+    )
+    flags = rows["flags"].fillna("")
+    err = (rows["rejection_db"] - rows["rejection_db_true"]).abs()
+    detected = ~rows["is_bound"]
+    print(
+        f"  quality: {int(detected.sum())} detected, {int(rows['is_bound'].sum())} bounds, "
+        f"{int(flags.str.contains('target_unmet').sum())} target_unmet; reported uncertainty "
+        f"median {rows.loc[detected, 'uncertainty_db'].median():.3f} dB, max "
+        f"{rows.loc[detected, 'uncertainty_db'].max():.3f} dB; |error vs truth| median "
+        f"{err[detected].median():.3f} dB, p95 {np.nanpercentile(err[detected], 95):.3f} dB; "
+        f"captures per point {rows['captures'].mean():.2f}, trims {rows['trims'].mean():.2f}"
+    )
+    rows["bound_s"] = [bound[int(i)].bench_time for i in rows["point_id"]]
+    rows["decade"] = np.floor(np.log10(rows["frequency_planned"]) + 1e-9)
+    print(
+        f"{'decade':>12} {'pts':>4} {'seq s/pt':>9} {'bound s/pt':>10} {'ratio':>6} "
+        f"{'captures':>8} {'planned cap/bound cap':>22}"
+    )
+    per_point = {p.point_id: p for p in clock.points}
+    ratios = {}
+    for d, group in rows.groupby("decade"):
+        seq = sum(sum(per_point[int(i)].seconds.values()) for i in group["point_id"])
+        plan_cap = sum(per_point[int(i)].seconds.get(rb.PLANNED, 0.0) for i in group["point_id"])
+        lb = len(group) * settle + group["bound_s"].sum()
+        print(
+            f"{10**d:>9.0f} Hz {len(group):>4} {seq / len(group):>9.3f} {lb / len(group):>10.3f} "
+            f"{seq / lb:>6.2f} {group['captures'].mean():>8.2f} "
+            f"{plan_cap / max(group['bound_s'].sum(), 1e-12):>22.2f}"
+        )
+        ratios[float(d)] = seq / lb
+    if set(ratios) == {float(d) for d in np.unique(decades)}:
+        full = sum(
+            ratios[float(d)] * (np.count_nonzero(decades == d) * settle + cap[decades == d].sum())
+            for d in np.unique(decades)
+        )
+        lb_sweep = n * settle + cap.sum()
+        print(
+            f"extrapolated to all {n} sweep points (each decade's ratio x its bound): sequencer "
+            f"~{full:.0f} s against a bound of {lb_sweep:.0f} s ({full / lb_sweep:.2f}x); the "
+            "sequencer does not run the linearity repeats or floor captures yet"
+        )
+
+
+# -- (c) cost of a durable point -------------------------------------------------------------
+def _rows(count: int) -> tuple[list[dict], list[dict]]:
+    from benchseq.records import POINT_COLUMNS
+
+    rng = np.random.default_rng(7)
+    rows, truths = [], []
+    for i in range(count):
+        row: dict[str, Any] = {}
+        for column in POINT_COLUMNS:
+            row[column.name] = {
+                "f8": float(rng.normal()),
+                "c16": complex(rng.normal(), rng.normal()),
+                "i8": int(rng.integers(0, 1000)),
+                "bool": bool(i % 5 == 0),
+                "str": "bound target_unmet" if i % 7 == 0 else "",
+            }[column.kind]
+        row["point_id"] = i
+        row["ripple_convention"] = "pp"
+        rows.append(row)
+        truths.append(
+            {
+                "point_id": i,
+                "pin": complex(0.05, 0.001),
+                "output": 1e-5j,
+                "rejection_db": 73.9,
+                "pin_dc": 5.0,
+            }
+        )
+    return rows, truths
+
+
+def part_c(folder: Path, count: int) -> None:
+    from benchseq import journal
+    from benchseq.records import POINT_COLUMNS, TRUTH_COLUMNS
+    from benchseq.store import Consolidation, RunWriter, _encode_row
+
+    print(
+        f"\n== (c) cost of one durable point (RunWriter.append), {count} points each, "
+        f"real row columns ({len(POINT_COLUMNS)}) + truth, folder {folder}"
+    )
+    rows, truths = _rows(count)
+    results: list[tuple[str, list[float], str]] = []
+    kept: list[dict] = []
+    times = []
+    for row in rows:
+        start = time.perf_counter()
+        kept.append(dict(row))
+        times.append(time.perf_counter() - start)
+    results.append(("in memory: list.append(copy of row)", times, ""))
+    times = []
+    for i, row in enumerate(rows):
+        start = time.perf_counter()
+        body = {"kind": "point", "id": i, "row": _encode_row(POINT_COLUMNS, row, i, "p")}
+        journal.encode_record(body, b"")
+        times.append(time.perf_counter() - start)
+    results.append(("in memory: encode row + record (no I/O)", times, ""))
+    policies = (
+        ("journal + fsync only (HDF5 at finish)", Consolidation(min_interval_s=1e12)),
+        ("default policy (HDF5 when <= 5 % of time)", Consolidation()),
+        ("HDF5 update after every point", Consolidation(every_point=True)),
+    )
+    for name, policy in policies:
+        path = folder / f"durable-{len(results)}.h5"
+        writer = RunWriter.create(
+            path,
+            {"run_id": name},
+            POINT_COLUMNS,
+            force=True,
+            truth_columns=TRUTH_COLUMNS,
+            policy=policy,
+        )
+        merges = [0]
+        original = writer._consolidate
+
+        def counted(original=original, merges=merges) -> None:
+            merges[0] += 1
+            original()
+
+        writer._consolidate = counted  # type: ignore[method-assign]
+        times = []
+        for i, row in enumerate(rows):
+            start = time.perf_counter()
+            writer.append(i, row, truth=truths[i])
+            times.append(time.perf_counter() - start)
+        journal_bytes = writer.journal_file.stat().st_size
+        start = time.perf_counter()
+        writer.finish("complete")
+        finish = time.perf_counter() - start
+        note = (
+            f"{merges[0] - 1} HDF5 updates during; finish {1e3 * finish:.1f} ms; journal "
+            f"{journal_bytes / count:.0f} B/pt, HDF5 {path.stat().st_size / count:.0f} B/pt"
+        )
+        results.append((name, times, note))
+    print(f"{'per point':<44}{'median ms':>10}{'p95 ms':>9}{'max ms':>9}")
+    for name, values, note in results:
+        print(
+            f"{name:<44}{1e3 * statistics.median(values):>10.3f}"
+            f"{1e3 * rb.percentile(values, 95):>9.3f}{1e3 * max(values):>9.2f}  {note}"
+        )
+    every = results[-1][1]
+    tenth = max(1, count // 10)
+    print(
+        f"HDF5 after every point: median of the first {tenth} {1e3 * statistics.median(every[:tenth]):.2f} ms, "
+        f"of the last {tenth} {1e3 * statistics.median(every[-tenth:]):.2f} ms (the copy grows with the file)"
+    )
+
+
+# -- (d) memory against points --------------------------------------------------------------
+CHEAP_PLAN = """
+title = "memory benchmark, {n} points"
+[device]
+name = "benchmark"
+absolute_max = "6 V"
+min_operating = "3.8 V"
+[sweep]
+dc = ["5 V"]
+ripple = ["100 mVpp"]
+frequency = {{ from = "200 kHz", to = "1 MHz", points = {n} }}
+[settle]
+time_constants = 1
+[capture]
+min_cycles = 1
+max_time = "1 ms"
+target_uncertainty = "3 dB"
+"""
+
+
+def _status(key: str) -> float:
+    with open("/proc/self/status") as status:
+        for line in status:
+            if line.startswith(key + ":"):
+                return int(line.split()[1]) / 1024
+    return math.nan
+
+
+def memory_child(n: int, folder: Path, trace: bool) -> None:
+    """One size in a fresh process: prints one JSON line."""
+    import tracemalloc
+
+    from benchseq.bench import load_bench
+    from benchseq.plan import load_plan
+    from benchseq.store import RunWriter
+
+    plan_path = folder / f"memory-{n}.toml"
+    plan_path.write_text(CHEAP_PLAN.format(n=n), encoding="utf-8")
+    plan, bench = load_plan(plan_path), load_bench(None)
+    sizes: dict[str, float] = {}
+    finish = RunWriter.finish
+
+    def finish_sized(self: Any, *args: Any, **kwargs: Any) -> None:
+        sizes["journal"] = self.journal_file.stat().st_size
+        finish(self, *args, **kwargs)
+
+    RunWriter.finish = finish_sized  # type: ignore[method-assign]
+    marks: list[tuple[int, float, float]] = []
+    step = max(1, n // 10)
+    holder: dict[str, Any] = {}
+
+    def attach(sequencer: Any) -> None:
+        holder["sim"] = sequencer.session.simulator
+        emit = sequencer.emit
+
+        def watch(event: Any) -> None:
+            if event.kind == "point_stored" and event.done % step == 0:
+                current = tracemalloc.get_traced_memory()[0] / 2**20 if trace else math.nan
+                marks.append((event.done, _status("VmRSS"), current))
+            emit(event)
+
+        sequencer.emit = watch
+
+    before = _status("VmHWM")
+    if trace:
+        tracemalloc.start()
+    start = time.perf_counter()
+    outcome, _, _ = rb.run_sweep(plan, bench, folder / f"memory-{n}.h5", attach=attach)
+    wall = time.perf_counter() - start
+    peak_traced = tracemalloc.get_traced_memory()[1] / 2**20 if trace else math.nan
+    print(
+        json.dumps(
+            {
+                "n": n,
+                "status": outcome.status,
+                "wall": wall,
+                "bench_time": outcome.bench_time,
+                "hwm_before": before,
+                "hwm": _status("VmHWM"),
+                "marks": marks,
+                "traced_peak": peak_traced,
+                "journal": sizes.get("journal", math.nan),
+                "h5": (folder / f"memory-{n}.h5").stat().st_size,
+                "sim_log": len(holder["sim"].log),
+                "sim_log_bytes": sum(
+                    sys.getsizeof(e) + sys.getsizeof(vars(e)) + sys.getsizeof(e.value)
+                    for e in holder["sim"].log[:100_000]
+                ),
+            }
+        )
+    )
+
+
+def _slope(x: list[float], y: list[float]) -> float:
+    if len(x) < 2:
+        return math.nan
+    return float(np.polyfit(np.asarray(x, float), np.asarray(y, float), 1)[0]) * 1000.0
+
+
+def _child(n: int, folder: Path, trace: bool) -> dict[str, Any] | str:
+    command = [sys.executable, __file__, "--memory-child", str(n), "--dir", str(folder)]
+    if trace:
+        command.append("--tracemalloc")
+    limit = 120 + (1.0 if trace else 0.25) * n
+    try:
+        done = subprocess.run(command, capture_output=True, text=True, timeout=limit, cwd=ROOT)
+    except subprocess.TimeoutExpired:
+        return f"no result within {limit:.0f} s (killed)"
+    if done.returncode != 0:
+        return f"child failed ({done.returncode}): {done.stderr.strip()[-400:]}"
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def part_d(folder: Path, sizes: tuple[int, ...], trace_up_to: int) -> None:
+    print(
+        "\n== (d) memory of sequencer + store against points (cheapest captures: 200 kHz-1 MHz, "
+        "1 cycle, 1000-sample records), one fresh process per size and measure; tracemalloc "
+        f"(which slows the run several times) in a separate process, up to {trace_up_to} points"
+    )
+    results = []
+    for n in sizes:
+        result = _child(n, folder, trace=False)
+        if isinstance(result, str):
+            print(f"{n:>6} points: {result}")
+            continue
+        traced = _child(n, folder, trace=True) if n <= trace_up_to else "not run"
+        result["traced_peak"] = traced["traced_peak"] if isinstance(traced, dict) else math.nan
+        traced_growth = (
+            _slope([m[0] for m in traced["marks"]], [m[2] for m in traced["marks"]])
+            if isinstance(traced, dict)
+            else math.nan
+        )
+        results.append(result)
+        marks = result["marks"]
+        inside = _slope([m[0] for m in marks], [m[1] for m in marks])
+        print(
+            f"{n:>6} points: {result['status']}, wall {result['wall']:.1f} s "
+            f"({1e3 * result['wall'] / n:.1f} ms/pt); peak RSS {result['hwm']:.1f} MB "
+            f"(before the run {result['hwm_before']:.1f}); RSS during the run "
+            f"{marks[0][1]:.1f} (at {marks[0][0]}) -> {marks[-1][1]:.1f} MB (slope "
+            f"{inside:+.2f} MB/1000 pts); tracemalloc peak "
+            + (
+                f"{result['traced_peak']:.1f} MB (traced memory during the run "
+                f"{traced_growth:+.3f} MB/1000 pts)"
+                if isinstance(traced, dict)
+                else str(traced)
+            )
+            + f"; journal {result['journal'] / n:.0f} B/pt, HDF5 {result['h5'] / n:.0f} B/pt; "
+            f"simulator's state-change log {result['sim_log'] / n:.1f} entries, "
+            f"{result['sim_log_bytes'] / n:.0f} B per point"
+        )
+    if len(results) >= 2:
+        xs = [r["n"] for r in results]
+        traced = [(r["n"], r["traced_peak"]) for r in results if math.isfinite(r["traced_peak"])]
+        print(
+            f"slope per 1000 points across sizes: peak RSS "
+            f"{_slope(xs, [r['hwm'] for r in results]):+.2f} MB, tracemalloc peak "
+            f"{_slope([t[0] for t in traced], [t[1] for t in traced]):+.3f} MB"
+        )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument(
+        "--points",
+        type=int,
+        default=96,
+        help="overnight points the sequencer runs in (b) (default 96; 832 = all)",
+    )
+    parser.add_argument("--parts", default="abcd", help="which parts to run (default abcd)")
+    parser.add_argument("--full", action="store_true", help="(d) also at 10,000 points")
+    parser.add_argument(
+        "--sizes", default="500,1000,2000", help="(d) points per run, comma-separated"
+    )
+    parser.add_argument("--durable-points", type=int, default=300, help="(c) points (>= 200)")
+    parser.add_argument("--demo-runs", type=int, default=3, help="(a) repeats of the demo")
+    parser.add_argument("--no-tracemalloc", action="store_true", help="(d) peak RSS only")
+    parser.add_argument(
+        "--noise-trials", type=int, default=80, help="(b) records per noise-model check (0: skip)"
+    )
+    parser.add_argument("--dir", help="folder for result files (default: a new temp folder)")
+    parser.add_argument("--memory-child", type=int, help=argparse.SUPPRESS)
+    parser.add_argument("--tracemalloc", action="store_true", help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.memory_child:
+        memory_child(args.memory_child, Path(args.dir), args.tracemalloc)
+        return
+    sizes_ok = all(x.strip().isdigit() and 10 <= int(x) <= 20_000 for x in args.sizes.split(","))
+    if (
+        not 1 <= args.points <= 832
+        or not (args.noise_trials == 0 or 10 <= args.noise_trials <= 1000)
+        or not 200 <= args.durable_points <= 20_000
+        or not (1 <= args.demo_runs <= 10 and sizes_ok)
+    ):
+        parser.error(
+            "--points 1..832, --durable-points 200..20000, --demo-runs 1..10, "
+            "--sizes 10..20000 each"
+        )
+    load_line("at start")
+    print(f"python {platform.python_version()}, {platform.machine()}, numpy {np.__version__}")
+    started = time.perf_counter()
+    with tempfile.TemporaryDirectory(dir=args.dir) as tmp:
+        folder = Path(tmp)
+        if "a" in args.parts:
+            part_a(folder, args.demo_runs)
+        if "b" in args.parts:
+            part_b(folder, args.points, args.noise_trials)
+        if "c" in args.parts:
+            part_c(folder, args.durable_points)
+        if "d" in args.parts:
+            sizes = tuple(int(x) for x in args.sizes.split(",")) + (
+                (FULL_SIZE,) if args.full else ()
+            )
+            part_d(folder, sizes, 0 if args.no_tracemalloc else 2000)
+    print(f"\nscript wall time {time.perf_counter() - started:.0f} s")
+    load_line("at end")
+
+
+if __name__ == "__main__":
+    main()
