@@ -228,7 +228,11 @@ def run_prepared(
         force=force,
         truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,
     )
-    session = open_session(bench, seed=seed, faults=faults)
+    try:
+        session = open_session(bench, seed=seed, faults=faults)
+    except BaseException as exc:  # the file must not go on saying "running"
+        writer.finish("aborted", reason=f"the bench could not be opened: {exc}")
+        raise
     try:
         writer.update_meta(identities=dict(session.identities))
         record = None
@@ -304,7 +308,11 @@ def resume_run(
         calibration = None
     writer = RunWriter.resume(path)
     seed = int(meta.get("seed", 0))
-    session = open_session(bench, seed=seed, faults=faults)
+    try:
+        session = open_session(bench, seed=seed, faults=faults)
+    except BaseException as exc:  # the file must not go on saying "running"
+        writer.finish("aborted", reason=f"the bench could not be opened: {exc}")
+        raise
     try:
         record = None
         if calibration is not None:

@@ -155,7 +155,7 @@ class Sequencer:
         )
         try:
             if todo:
-                self._power_up(todo[0])
+                self._with_recoveries("power-up", lambda: self._power_up(todo[0]))
             for position, i in enumerate(todo):
                 if self.stop.stop_requested:
                     status, reason = "stopped", self.stop.reason
@@ -197,7 +197,12 @@ class Sequencer:
             with self.stop.shielded():
                 steps = self._safe_state()
         bench_time = self.session.clock.now() - bench_start
-        self.writer.finish(status, traceback=getattr(self, "_last_traceback", None), reason=reason)
+        try:
+            self.writer.finish(
+                status, traceback=getattr(self, "_last_traceback", None), reason=reason
+            )
+        except BenchseqError as exc:  # e.g. a full disk: the points already stored stay so
+            status, reason = "aborted", f"{reason}; then the ending could not be stored: {exc}"
         self.emit(Event("finished", f"run {status}: {reason}"))
         return RunOutcome(
             status,
@@ -227,9 +232,10 @@ class Sequencer:
         s.generator.set_load_mode(self.bench.generator.load_mode)
         s.supply.set_current_limit(self.bench.supply.current_limit)
         s.supply.set_overvoltage_protection(self.bench.supply.overvoltage_protection)
-        s.supply.set_voltage(0.0)
-        s.supply.output(True)
-        self._dc_now = 0.0
+        if self._dc_now is None:  # a retried power-up ramps on from where the supply is
+            s.supply.set_voltage(0.0)
+            s.supply.output(True)
+            self._dc_now = 0.0
         s.scope.trigger_external()
         self._set_operating_point(first)
         self._measure_ac_corner(first)
@@ -319,6 +325,7 @@ class Sequencer:
         self.emit(Event("state", f"ramping DC from {start:.3f} V to {target:.3f} V"))
         for k in range(1, steps + 1):
             s.supply.set_voltage(start + (target - start) * k / steps)
+            self._dc_now = start + (target - start) * k / steps
             s.clock.sleep(abs(target - start) / rate / steps)
         self._dc_now = target
         # the bias filter follows with its own time constant
@@ -357,9 +364,13 @@ class Sequencer:
     ) -> tuple[dict[str, Any], dict[str, Any] | None]:
         from benchseq.drivers.errors import InstrumentError
 
-        attempt = 0
+        attempt, recover = 0, False
         while True:
             try:
+                if recover:  # inside the try: a fault while recovering is one more attempt
+                    recover = False
+                    self.session.recover()
+                    self._freq_now = None
                 simulator = getattr(self.session, "simulator", None)
                 if simulator is not None:
                     simulator.reseed(int(self.sweep.index[i]) * 16 + attempt)
@@ -378,8 +389,28 @@ class Sequencer:
                         f"{MAX_POINT_RETRIES} recoveries: {exc}"
                     ) from exc
                 self.emit(Event("warning", f"instrument fault, recovering: {exc}"))
-                self.session.recover()
-                self._freq_now = None
+                recover = True
+
+    def _with_recoveries(self, what: str, action: Callable[[], None]) -> None:
+        """Run ``action``; after an instrument fault recover the session and run it again
+        (at most MAX_POINT_RETRIES times), as a point is."""
+        from benchseq.drivers.errors import InstrumentError
+
+        attempt = 0
+        while True:
+            try:
+                if attempt:
+                    self.session.recover()
+                action()
+                return
+            except InstrumentError as exc:
+                attempt += 1
+                if attempt > MAX_POINT_RETRIES:
+                    raise MeasurementFailure(
+                        f"{what}: instrument fault persists after {MAX_POINT_RETRIES} "
+                        f"recoveries: {exc}"
+                    ) from exc
+                self.emit(Event("warning", f"instrument fault during {what}, recovering: {exc}"))
 
     def _measure_point(self, i: int, carry: Carry, done: int, total: int) -> dict[str, Any]:
         s = self.session

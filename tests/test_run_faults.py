@@ -302,3 +302,51 @@ def test_a_fault_in_a_point_is_recovered_and_flagged(tmp_path: Path) -> None:
     error = (frame["rejection_db"] - frame["rejection_db_true"]).abs()
     assert np.all(error <= 0.3 + frame["uncertainty_db"])
     _ends_safe(factory.sessions[0])
+
+
+def test_a_fault_during_power_up_is_recovered_like_one_during_a_point(tmp_path: Path) -> None:
+    """The same kind of fault during power-up (the supply's over-voltage setting): the bench
+    is recovered and the power-up done again, as a point is measured again; the run then
+    completes (a passing fault must not cost the whole run before its first point)."""
+    factory = FailOnce("supply", "set_overvoltage_protection", armed=True)
+    outcome, path = start_run(
+        str(_small_plan(tmp_path)), None, str(tmp_path / "power-up.h5"), seed=1,
+        session_factory=factory,
+    )  # fmt: skip
+    assert factory.failed == 1
+    assert outcome.status == "complete", outcome.reason
+    assert sorted(read_results(path)["point_id"]) == [0, 1]
+    _ends_safe(factory.sessions[0])
+
+
+def test_a_fault_during_the_recovery_counts_as_one_more_attempt(tmp_path: Path) -> None:
+    """A point's fault, then the recovery after it meets a passing fault too (its first
+    session.recover() loses a connection): that is one more of the point's attempts
+    (MAX_POINT_RETRIES), not the end of the run."""
+    point = FailOnce("generator", "set_frequency")
+    recovery = {"failed": 0}
+
+    def factory(bench: Any, seed: int = 0, faults: Any = None) -> Any:
+        session = point(bench, seed=seed, faults=faults)
+        real = session.recover
+
+        def recover() -> None:
+            if recovery["failed"] == 0:
+                recovery["failed"] += 1
+                from benchseq.drivers.errors import ConnectionLost
+
+                raise ConnectionLost("SIM::scope", "recover", "test: lost during recovery")
+            real()
+
+        session.recover = recover
+        return session
+
+    outcome, path = start_run(
+        str(_small_plan(tmp_path)), None, str(tmp_path / "recovery.h5"), seed=1,
+        session_factory=factory, emit=_arm_after_first_point(point),
+    )  # fmt: skip
+    assert point.failed == 1 and recovery["failed"] == 1
+    assert outcome.status == "complete", outcome.reason
+    frame = read_results(path)
+    assert "instrument_retry" in frame.set_index("point_id").loc[1, "flags"].split()
+    _ends_safe(point.sessions[0])

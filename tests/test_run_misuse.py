@@ -403,3 +403,43 @@ def test_resume_of_a_file_that_is_not_a_result_names_it(
     assert str(target) in err
     assert len(opened.sessions) == sessions  # no bench opened for it
     assert (_digest(target) if target.exists() else None) == before
+
+
+def test_the_result_file_of_an_unanswered_bench_says_aborted(
+    tmp_path: Path, opened: Keeper, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The result file is created before the bench is opened; when the bench then does not
+    answer, that file must not be left saying "running": it says aborted, and why."""
+    port = _free_port()
+    code, _, out, _ = _unanswered(capsys, tmp_path, port)
+    assert code == 1 and out.exists()
+    meta = read_meta(out)
+    assert meta["status"] == "aborted", meta["status"]
+    assert f"TCPIP::127.0.0.1::{port}::SOCKET" in meta.get("reason", "")
+
+
+def test_a_full_disk_still_reports_the_safe_state(
+    tmp_path: Path,
+    opened: Keeper,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """When even the run's ending cannot be recorded (the disk is full), the engineer is
+    still told what state the bench was left in (the run summary's "safe state:" line)."""
+    plan = _plan(tmp_path, '"1 kHz", "3 kHz", "10 kHz"')
+    real_append = jr.JournalWriter.append
+    points = {"n": 0}
+
+    def append(self: Any, body: dict[str, Any], blob: bytes = b"") -> tuple[int, int]:
+        if points["n"] >= 1:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        done = real_append(self, body, blob)
+        points["n"] += body.get("kind") == "point"
+        return done
+
+    monkeypatch.setattr(jr.JournalWriter, "append", append)
+    code, out, err = _cli(capsys, "run", str(plan), "--out", str(tmp_path / "full.h5"))
+    monkeypatch.setattr(jr.JournalWriter, "append", real_append)
+    assert code == 1
+    assert _safe_order(opened.sessions[0]) == [("generator", False), ("supply", False)]
+    assert "safe state: generator: output off, verified" in out + err
