@@ -127,6 +127,7 @@ EXTENSION = "extension captures"
 SETTLE = "settling"
 RAMP = "DC ramp + bias filter"
 PIN_DC = "pin DC check"
+FLOOR = "floor captures (plan)"
 OTHER = "other"
 ACTIVITIES = (
     SETTLE,
@@ -136,6 +137,7 @@ ACTIVITIES = (
     TRIM_CAPTURE,
     TRIM_SETTLE,
     EXTENSION,
+    FLOOR,
     RAMP,
     PIN_DC,
     OTHER,
@@ -205,6 +207,8 @@ class BenchClock:
         seq._measure_point = measure_point
         seq._ramp_supply = within(RAMP, seq._ramp_supply)
         seq._check_pin_dc = within(PIN_DC, seq._check_pin_dc)
+        if hasattr(seq, "_floor_capture"):
+            seq._floor_capture = within(FLOOR, seq._floor_capture)
         capture = seq._capture_ranged
 
         def capture_ranged(*args: Any, **kwargs: Any) -> Any:
@@ -466,39 +470,59 @@ def subset_sweep(sweep: Any, keep: np.ndarray) -> Any:
     )
 
 
+def restrict(sequencer: Any, keep: np.ndarray) -> None:
+    """Make ``sequencer`` measure only the plan points at positions ``keep`` (ids kept, so
+    the simulator's per-point reseeding is unchanged), with their linearity repeats when the
+    sequencer runs those (attributes repeat_of / ripple_factor / run_order)."""
+    sweep = sequencer.sweep
+    repeat_of = getattr(sequencer, "repeat_of", None)
+    if repeat_of is None:
+        sequencer.sweep = subset_sweep(sweep, keep)
+        return
+    ids = {int(sweep.index[k]) for k in keep}
+    repeats = [k for k in range(len(sweep)) if repeat_of[k] >= 0 and int(repeat_of[k]) in ids]
+    positions = np.array(sorted({int(k) for k in keep} | set(repeats)), dtype=np.int64)
+    sequencer.sweep = subset_sweep(sweep, positions)
+    sequencer.repeat_of = repeat_of[positions]
+    if hasattr(sequencer, "ripple_factor"):
+        sequencer.ripple_factor = sequencer.ripple_factor[positions]
+    order: list[int] = []  # each point followed at once by its repeats, as the plan's order
+    for k, base in enumerate(sequencer.repeat_of):
+        if base < 0:
+            order.append(k)
+            point_id = int(sequencer.sweep.index[k])
+            order.extend(j for j, b in enumerate(sequencer.repeat_of) if b == point_id)
+    sequencer.run_order = order
+
+
 def run_sweep(
     plan: Any,
     bench: Any,
     path: Path,
     keep: np.ndarray | None = None,
     seed: int = 0,
-    policy: Any = None,
     attach: Callable[[Any], Any] | None = None,
-) -> tuple[Any, Any, Any]:
-    """Run ``plan`` (or the points ``keep`` of it) on the simulated ``bench`` as
-    benchseq.runner.run_prepared does; returns (outcome, attached, writer)."""
-    from benchseq.drivers.session import open_session
-    from benchseq.records import POINT_COLUMNS, TRUTH_COLUMNS
-    from benchseq.runner import _refuse_infeasible, run_meta
-    from benchseq.sequencer import Sequencer
-    from benchseq.store import RunWriter
+) -> tuple[Any, Any]:
+    """benchseq.runner.run_prepared on ``plan`` (or its points ``keep`` only); ``attach`` is
+    called with the Sequencer before it runs. Returns (outcome, what attach returned)."""
+    import benchseq.runner as runner
 
-    report = _refuse_infeasible(plan, bench)
-    meta = run_meta(plan, bench, seed, False, report)
-    writer = RunWriter.create(
-        path, meta, POINT_COLUMNS, force=True, truth_columns=TRUTH_COLUMNS, policy=policy
-    )
-    session = open_session(bench, seed=seed)
-    try:
-        sequencer = Sequencer(
-            plan, bench, session, writer, seed=seed, planned_bench_time=report.estimated_time_s
-        )
+    original = runner.Sequencer
+    made: dict[str, Any] = {}
+
+    def build(*args: Any, **kwargs: Any) -> Any:
+        sequencer = original(*args, **kwargs)
         if keep is not None:
-            sequencer.sweep = subset_sweep(sequencer.sweep, keep)
-        attached = attach(sequencer) if attach is not None else None
-        return sequencer.run(), attached, writer
+            restrict(sequencer, keep)
+        made["attached"] = attach(sequencer) if attach is not None else None
+        return sequencer
+
+    runner.Sequencer = build  # type: ignore[assignment,misc]
+    try:
+        outcome, _ = runner.run_prepared(plan, bench, Path(path), force=True, seed=seed)
     finally:
-        session.close()
+        runner.Sequencer = original  # type: ignore[misc]
+    return outcome, made.get("attached")
 
 
 def percentile(values: list[float], q: float) -> float:

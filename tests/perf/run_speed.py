@@ -164,9 +164,50 @@ def rb_fill() -> float:
     return RANGE_FILL
 
 
+def plan_points(plan: Any) -> dict[str, np.ndarray]:
+    """Every point a run of ``plan`` measures, as the sequencer lists them: the sweep, then
+    the linearity repeats (ids n, n+1, ...); ``floor`` marks the plan's [floor] captures."""
+    try:
+        from benchseq.sequencer import with_repeats
+    except ImportError:  # a sequencer without repeats: the check's list of them
+        from benchseq.check import _linearity_points
+
+        sweep = plan.expand()
+        rep = _linearity_points(plan, sweep)
+        n, m = len(sweep), rep["frequency"].size
+        points = {
+            "id": np.arange(n + m),
+            "frequency": np.concatenate([sweep.frequency, rep["frequency"]]),
+            "dc": np.concatenate([sweep.dc_level, rep["dc_level"]]),
+            "ripple": np.concatenate([sweep.ripple_peak, rep["ripple_peak"]]),
+            "repeat": np.arange(n + m) >= n,
+        }
+    else:
+        sweep, repeat_of, _ = with_repeats(plan)
+        points = {
+            "id": np.asarray(sweep.index),
+            "frequency": np.asarray(sweep.frequency),
+            "dc": np.asarray(sweep.dc_level),
+            "ripple": np.asarray(sweep.ripple_peak),
+            "repeat": np.asarray(repeat_of) >= 0,
+        }
+    floor = np.zeros(points["id"].size, dtype=bool)
+    rules = getattr(plan, "floor", None)
+    if rules is not None:
+        floor = ~points["repeat"] & (
+            True
+            if rules.every_point
+            else np.isclose(
+                points["frequency"][:, None], rules.frequencies[None, :], rtol=1e-3
+            ).any(axis=1)
+        )
+    points["floor"] = floor
+    return points
+
+
 def part_b(folder: Path, points: int, noise_trials: int) -> None:
     from benchseq.bench import load_bench
-    from benchseq.check import _linearity_points, check_plan
+    from benchseq.check import check_plan
     from benchseq.injector import InjectorModel
     from benchseq.plan import load_plan
     from benchseq.store import read_results, read_truth
@@ -175,26 +216,24 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     plan = load_plan(PLANS / "overnight.toml")
     bench = load_bench(None)
     report = check_plan(plan, bench)
-    sweep = plan.expand()
-    n = len(sweep)
+    every = plan_points(plan)
+    n_all = every["id"].size
+    sweep_pos = np.nonzero(~every["repeat"])[0]
     corners = InjectorModel(bench.injector, bench.generator, bench.pin).corners()
     settle = plan.settle.fixed_s + plan.settle.time_constants * corners.slowest_time_constant_s
-    repeats = _linearity_points(plan, sweep)
     start = time.perf_counter()
-    bound = lower_bounds(plan, bench, sweep.frequency, sweep.dc_level, sweep.ripple_peak)
-    bound_rep = lower_bounds(
-        plan, bench, repeats["frequency"], repeats["dc_level"], repeats["ripple_peak"]
-    )
+    bound = lower_bounds(plan, bench, every["frequency"], every["dc"], every["ripple"])
     truth_s = time.perf_counter() - start
-    b = report.time_breakdown
-    operating = b["dc_ramps"] + b["bias_filter"]
     cap = np.array([x.bench_time for x in bound])
-    cap_rep = np.array([x.bench_time for x in bound_rep])
-    unmet = sum(not x.meets_target for x in bound + bound_rep)
-    lb_total = (n + cap_rep.size) * settle + cap.sum() + cap_rep.sum() + operating
+    floor = every["floor"]
+    b = report.time_breakdown
+    operating = b.get("dc_ramps", 0.0) + b.get("bias_filter", 0.0)
+    unmet = sum(not x.meets_target for x in bound)
+    lb_total = n_all * settle + cap.sum() + (settle * floor + cap * floor).sum() + operating
     print(
-        f"{n} points + {cap_rep.size} linearity repeats; settle {settle:.3f} s per point "
-        f"(wait {plan.settle.fixed_s:g} s + {plan.settle.time_constants:g} x "
+        f"{sweep_pos.size} points + {n_all - sweep_pos.size} linearity repeats + "
+        f"{int(floor.sum())} floor captures; settle {settle:.3f} s per point (wait "
+        f"{plan.settle.fixed_s:g} s + {plan.settle.time_constants:g} x "
         f"{corners.slowest_time_constant_s:.3g} s); truth + least captures computed in "
         f"{truth_s:.2f} s"
     )
@@ -203,40 +242,42 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         + ", ".join(f"{k} {v:.1f}" for k, v in b.items())
     )
     print(
-        f"lower bound (settle + least capture meeting {plan.capture.target_uncertainty_db:g} dB, "
-        f"+ DC ramps and bias-filter waits {operating:.1f} s) = {lb_total:.1f} s; captures "
-        f"{cap.sum() + cap_rep.sum():.1f} s; {unmet} points cannot meet the target within "
-        f"max_time {plan.capture.max_time_s:g} s (their bound is the most accurate capture "
-        "within it)"
+        f"lower bound (per point and floor capture: settle + least capture meeting "
+        f"{plan.capture.target_uncertainty_db:g} dB; + DC ramps and bias-filter waits "
+        f"{operating:.1f} s) = {lb_total:.1f} s; captures {cap.sum() + cap[floor].sum():.1f} s; "
+        f"{unmet} points cannot meet the target within max_time {plan.capture.max_time_s:g} s "
+        "(their bound is the most accurate capture within it)"
     )
     print(
         f"ratio check estimate / lower bound = {report.estimated_time_s / lb_total:.3f} "
-        "(the check counts cycle-bound captures only, plus after_operating_point waits and "
-        "floor captures the bound leaves out)"
+        f"(the check's captures are cycle-bound, {b.get('captures', 0.0):.1f} s against "
+        f"{cap.sum():.1f} s; it adds after_operating_point waits the bound leaves out)"
     )
-    worst = max(cap.max(), cap_rep.max() if cap_rep.size else 0.0)
-    meetable = [x.bench_time for x in bound + bound_rep if x.meets_target]
-    fixed_total = (n + cap_rep.size) * (settle + worst) + operating
-    fixed_meet = (n + cap_rep.size) * (settle + max(meetable)) + operating
+    worst = float(cap.max())
+    meetable = max(x.bench_time for x in bound if x.meets_target)
+    captures_total = n_all + int(floor.sum())
+    fixed_total = captures_total * (settle + worst) + operating
+    fixed_meet = captures_total * (settle + meetable) + operating
     print(
         f"fixed-capture sequencer (one capture for every point, long enough for the worst): "
         f"{worst:.3f} s each -> {fixed_total:.0f} s = {fixed_total / lb_total:.2f}x the bound; "
-        f"sized for the worst point that can meet the target ({max(meetable):.3f} s): "
+        f"sized for the worst point that can meet the target ({meetable:.3f} s): "
         f"{fixed_meet:.0f} s = {fixed_meet / lb_total:.2f}x"
     )
     print(
         f"{'decade':>16} {'points':>6} {'bound capture s':>16} {'check capture s':>16} "
         f"{'noise-bound':>11} {'unmet':>6}"
     )
+    freq = every["frequency"]
     check_caps = np.minimum(
-        np.maximum(plan.capture.min_cycles / sweep.frequency, 1e-3), plan.capture.max_time_s
+        np.maximum(plan.capture.min_cycles / freq, 1e-3), plan.capture.max_time_s
     )
-    decades = np.floor(np.log10(sweep.frequency) + 1e-9)
+    decades = np.floor(np.log10(freq) + 1e-9)
     for d in np.unique(decades):
         sel = np.nonzero(decades == d)[0]
         noise_bound = sum(
             bound[i].record_length * bound[i].sample_interval * bound[i].records
-            > plan.capture.min_cycles / sweep.frequency[i] * 1.5
+            > plan.capture.min_cycles / freq[i] * 1.5
             for i in sel
         )
         print(
@@ -262,49 +303,56 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
                 )
             )
 
-    keep = rb.stratified(sweep.frequency, points)
-    label = "all points" if keep.size == n else "a subset stratified over frequency"
-    freqs = sweep.frequency[keep]
+    keep = sweep_pos[rb.stratified(every["frequency"][sweep_pos], points)]
+    label = "all points" if keep.size == sweep_pos.size else "a subset stratified over frequency"
     print(
-        f"\nsequencer on {keep.size} of {n} points ({label}; --points {points}): "
-        f"{np.unique(freqs).size} distinct frequencies {freqs.min():.3g}-{freqs.max():.3g} Hz, "
-        f"{np.unique(sweep.dc_level[keep]).size} DC levels"
+        f"\nsequencer on {keep.size} of {sweep_pos.size} points ({label}; --points {points}) and "
+        f"their linearity repeats: {np.unique(freq[keep]).size} distinct frequencies "
+        f"{freq[keep].min():.3g}-{freq[keep].max():.3g} Hz, {np.unique(every['dc'][keep]).size} "
+        "DC levels"
     )
     out = folder / "overnight-subset.h5"
     start = time.perf_counter()
-    outcome, clock, _ = rb.run_sweep(plan, bench, out, keep=keep, attach=rb.BenchClock)
+    outcome, clock = rb.run_sweep(plan, bench, out, keep=keep, attach=rb.BenchClock)
     wall = time.perf_counter() - start
     rows = read_results(out).merge(read_truth(out), on="point_id", suffixes=("", "_true"))
     totals = clock.totals()
     spent = sum(totals.values())
-    lb_sub = np.array([bound[int(i)].bench_time for i in keep])
+    position = {int(i): k for k, i in enumerate(every["id"])}
+    run_pos = np.array([position[p.point_id] for p in clock.points], dtype=np.int64)
     ramps = totals.get(rb.RAMP, 0.0)  # the plan's DC steps: the bound takes them too
-    lb_sub_total = keep.size * settle + lb_sub.sum() + ramps
+    lb_caps = cap[run_pos].sum() + cap[run_pos][floor[run_pos]].sum()
+    lb_settle = settle * (run_pos.size + int(floor[run_pos].sum()))
+    lb_sub_total = lb_settle + lb_caps + ramps
     print(
-        f"run {outcome.status}: wall {wall:.1f} s ({wall / keep.size:.2f} s/point); bench time "
-        f"{outcome.bench_time:.1f} s (points {spent:.1f} s + power-up "
+        f"run {outcome.status}: {len(clock.points)} points measured "
+        f"({int(every['repeat'][run_pos].sum())} repeats, {int(floor[run_pos].sum())} with a "
+        f"floor capture); wall {wall:.1f} s ({wall / len(clock.points):.2f} s/point); bench "
+        f"time {outcome.bench_time:.1f} s (points {spent:.1f} s + power-up "
         f"{sum(clock.outside.values()):.1f} s)"
     )
     print(f"{'bench time by activity':<26}{'s':>9}{'s/point':>9}{'share':>8}")
     for tag in rb.ACTIVITIES:
         if totals.get(tag, 0.0) > 0:
             v = totals[tag]
-            print(f"{tag:<26}{v:>9.2f}{v / keep.size:>9.3f}{v / spent:>8.1%}")
+            print(f"{tag:<26}{v:>9.2f}{v / len(clock.points):>9.3f}{v / spent:>8.1%}")
     overhead = sum(
         totals.get(t, 0.0)
-        for t in (rb.RANGING, rb.RERANGE, rb.TRIM_CAPTURE, rb.TRIM_SETTLE, rb.EXTENSION, rb.PIN_DC)
+        for t in (rb.RANGING, rb.RERANGE, rb.TRIM_CAPTURE, rb.TRIM_SETTLE, rb.PIN_DC)
     )
-    planned = totals.get(rb.PLANNED, 0.0)
+    planned = totals.get(rb.PLANNED, 0.0) + totals.get(rb.EXTENSION, 0.0)
     print(
-        f"lower bound on the same points: {lb_sub_total:.2f} s (settle {keep.size * settle:.2f} + "
-        f"captures {lb_sub.sum():.2f} + the same DC ramps/bias waits {ramps:.2f}); sequencer "
-        f"points {spent:.2f} s -> ratio {spent / lb_sub_total:.3f} (goal <= 1.15)"
+        f"lower bound on the same points: {lb_sub_total:.2f} s (settle {lb_settle:.2f} + captures "
+        f"{lb_caps:.2f} + the same DC ramps/bias waits {ramps:.2f}); sequencer {spent:.2f} s -> "
+        f"ratio {spent / lb_sub_total:.3f} (goal <= 1.15)"
     )
     print(
-        f"  explained: planned captures {planned:.2f} s vs bound captures {lb_sub.sum():.2f} s "
-        f"({planned - lb_sub.sum():+.2f} s); time the bound does not spend (ranging, re-range, "
-        f"trims, extensions, pin DC checks) {overhead:.2f} s, of which extensions "
-        f"{totals.get(rb.EXTENSION, 0.0):.2f} s; settling {totals.get(rb.SETTLE, 0.0):.2f} s"
+        f"  explained: planned + extension captures {planned:.2f} s (extensions "
+        f"{totals.get(rb.EXTENSION, 0.0):.2f}) against the bound's point captures "
+        f"{cap[run_pos].sum():.2f} s ({planned - cap[run_pos].sum():+.2f} s); ranging, "
+        f"re-ranging, trims and pin DC checks, which the bound does not spend, {overhead:.2f} s; "
+        f"floor captures {totals.get(rb.FLOOR, 0.0):.2f} s against "
+        f"{settle * floor[run_pos].sum() + cap[run_pos][floor[run_pos]].sum():.2f} s"
     )
     flags = rows["flags"].fillna("")
     err = (rows["rejection_db"] - rows["rejection_db_true"]).abs()
@@ -317,34 +365,39 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         f"{err[detected].median():.3f} dB, p95 {np.nanpercentile(err[detected], 95):.3f} dB; "
         f"captures per point {rows['captures'].mean():.2f}, trims {rows['trims'].mean():.2f}"
     )
-    rows["bound_s"] = [bound[int(i)].bench_time for i in rows["point_id"]]
-    rows["decade"] = np.floor(np.log10(rows["frequency_planned"]) + 1e-9)
     print(
         f"{'decade':>12} {'pts':>4} {'seq s/pt':>9} {'bound s/pt':>10} {'ratio':>6} "
         f"{'captures':>8} {'planned cap/bound cap':>22}"
     )
-    per_point = {p.point_id: p for p in clock.points}
+    per_decade: dict[float, list] = {}
+    for p, k in zip(clock.points, run_pos, strict=True):
+        per_decade.setdefault(float(decades[k]), []).append((p, k))
     ratios = {}
-    for d, group in rows.groupby("decade"):
-        seq = sum(sum(per_point[int(i)].seconds.values()) for i in group["point_id"])
-        plan_cap = sum(per_point[int(i)].seconds.get(rb.PLANNED, 0.0) for i in group["point_id"])
-        lb = len(group) * settle + group["bound_s"].sum()
+    captures = dict(zip(rows["point_id"], rows["captures"], strict=True))
+    for d in sorted(per_decade):
+        group = per_decade[d]
+        seq = sum(sum(p.seconds.values()) - p.seconds.get(rb.RAMP, 0.0) for p, _ in group)
+        plan_cap = sum(p.seconds.get(rb.PLANNED, 0.0) for p, _ in group)
+        lb = sum(settle * (1 + floor[k]) + cap[k] * (1 + floor[k]) for _, k in group)
         print(
             f"{10**d:>9.0f} Hz {len(group):>4} {seq / len(group):>9.3f} {lb / len(group):>10.3f} "
-            f"{seq / lb:>6.2f} {group['captures'].mean():>8.2f} "
-            f"{plan_cap / max(group['bound_s'].sum(), 1e-12):>22.2f}"
+            f"{seq / lb:>6.2f} {np.mean([captures[p.point_id] for p, _ in group]):>8.2f} "
+            f"{plan_cap / max(sum(cap[k] for _, k in group), 1e-12):>22.2f}"
         )
-        ratios[float(d)] = seq / lb
+        ratios[d] = seq / lb
     if set(ratios) == {float(d) for d in np.unique(decades)}:
         full = sum(
-            ratios[float(d)] * (np.count_nonzero(decades == d) * settle + cap[decades == d].sum())
+            ratios[float(d)]
+            * (
+                settle * ((decades == d) + floor * (decades == d)).sum()
+                + (cap * ((decades == d) + floor * (decades == d))).sum()
+            )
             for d in np.unique(decades)
         )
-        lb_sweep = n * settle + cap.sum()
         print(
-            f"extrapolated to all {n} sweep points (each decade's ratio x its bound): sequencer "
-            f"~{full:.0f} s against a bound of {lb_sweep:.0f} s ({full / lb_sweep:.2f}x); the "
-            "sequencer does not run the linearity repeats or floor captures yet"
+            f"extrapolated to the whole plan (each decade's ratio x its bound, DC ramps apart): "
+            f"sequencer ~{full + operating:.0f} s against the bound's {lb_total:.0f} s "
+            f"({(full + operating) / lb_total:.2f}x)"
         )
 
 
@@ -522,7 +575,7 @@ def memory_child(n: int, folder: Path, trace: bool) -> None:
     if trace:
         tracemalloc.start()
     start = time.perf_counter()
-    outcome, _, _ = rb.run_sweep(plan, bench, folder / f"memory-{n}.h5", attach=attach)
+    outcome, _ = rb.run_sweep(plan, bench, folder / f"memory-{n}.h5", attach=attach)
     wall = time.perf_counter() - start
     peak_traced = tracemalloc.get_traced_memory()[1] / 2**20 if trace else math.nan
     print(
