@@ -1,0 +1,226 @@
+"""The HDF5 layout of a result file: where the file and its journal live, the column groups,
+appending rows and waveforms, writing the metadata, and reading back what a file holds.
+
+Layout (plain h5py, no pickles)::
+
+    /                 attrs: format="benchseq-result", format_version, run_id, status,
+                      every short scalar meta item, point_rows, journal_id, journal_offset
+    /meta/json        the whole meta dict as JSON text (authoritative for read_meta)
+    /meta/<key>       long text items (plan_text, bench_text) and nested items (JSON text)
+    /points/<column>  one resizable 1-D dataset per column; attrs unit, description, kind;
+                      the group's "columns" attr lists the order; point_id is a column
+    /truth/<column>   the simulator's truth per point, same layout (simulated benches)
+    /waveforms/<ch>/  samples: every point's record of channel <ch> end to end (chunked,
+                      gzip); point_id, start, length, scale, offset, sample_interval: one
+                      entry per point. value = samples[start:start+length] * scale + offset
+
+Complex columns are stored as HDF5 complex128 (a compound of float64 fields "r" and "i",
+h5py's native mapping): h5py reads them back as complex numbers.
+
+File locking is never used (network drives often lack it): files are opened with
+``locking=False`` and HDF5_USE_FILE_LOCKING=FALSE is set for older builds.
+
+benchseq.store brings the file up to date from the journal; benchseq.results reads it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from benchseq.rowcodec import _DTYPES, BadResultFile, Column, _decode
+
+os.environ.setdefault("HDF5_USE_FILE_LOCKING", "FALSE")
+import h5py  # after the locking switch, which older HDF5 builds read at open
+
+FORMAT = "benchseq-result"
+FORMAT_VERSION = 1
+JOURNAL_SUFFIX = ".journal"
+COMPLEX_LAYOUT = "complex128: HDF5 compound of float64 fields r (real) and i (imaginary)"
+_RESERVED_ATTRS = {"format", "format_version", "point_rows", "journal_id", "journal_offset"}
+_ATTR_TEXT_LIMIT = 2048  # longer strings go to /meta datasets (attributes stay small)
+
+
+def journal_path(path: str | Path) -> Path:
+    """Where the journal of result ``path`` lives (beside it)."""
+    return Path(str(path) + JOURNAL_SUFFIX)
+
+
+def _result_path(path: str | Path) -> Path:
+    text = str(path)
+    return Path(text[: -len(JOURNAL_SUFFIX)] if text.endswith(JOURNAL_SUFFIX) else text)
+
+
+def _open_h5(path: Path, mode: str) -> h5py.File:
+    return h5py.File(path, mode, locking=False)
+
+
+# -- the HDF5 file -------------------------------------------------------------------------
+def _column_group(h5: h5py.File, name: str, columns: Sequence[Column]) -> h5py.Group:
+    group = h5.require_group(name)
+    if "columns" not in group.attrs:
+        group.attrs["columns"] = json.dumps([c.name for c in columns])
+        group.attrs["id_column"] = "point_id"
+        group.attrs["complex_layout"] = COMPLEX_LAYOUT
+        for column in columns:
+            dtype = h5py.string_dtype() if column.kind == "str" else _DTYPES[column.kind]
+            ds = group.create_dataset(
+                column.name, shape=(0,), maxshape=(None,), chunks=(256,), dtype=dtype
+            )
+            ds.attrs["unit"] = column.unit
+            ds.attrs["description"] = column.description
+            ds.attrs["kind"] = column.kind
+    return group
+
+
+def _append_rows(group: h5py.Group, columns: Sequence[Column], rows: list[dict]) -> None:
+    if not rows:
+        return
+    for column in columns:
+        values = [_decode(column.kind, row[column.name]) for row in rows]
+        array = np.array(values, dtype=_DTYPES[column.kind])
+        ds = group[column.name]
+        n = ds.shape[0]
+        ds.resize((n + len(rows),))
+        ds[n:] = array
+
+
+def _append_waveforms(h5: h5py.File, point_id: int, parts: list[dict], blob: bytes) -> None:
+    for part in parts:
+        group = h5.require_group("waveforms").require_group(part["channel"])
+        dtype = np.dtype(part["dtype"])
+        samples = np.frombuffer(blob, dtype=dtype, count=part["length"], offset=part["at"])
+        if "samples" not in group:
+            group.attrs["meaning"] = "value = samples[start:start+length] * scale + offset"
+            group.attrs["unit"] = part["unit"]
+            group.create_dataset(
+                "samples", shape=(0,), maxshape=(None,), dtype=dtype, chunks=(1 << 15,),
+                compression="gzip", compression_opts=4, shuffle=True,
+            )  # fmt: skip
+            for name, kind in (("point_id", "i8"), ("start", "i8"), ("length", "i8")):
+                group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype=kind)
+            for name in ("scale", "offset", "sample_interval"):
+                group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype="f8")
+            group["sample_interval"].attrs["unit"] = "s"
+        store = group["samples"]
+        start = store.shape[0]
+        store.resize((start + samples.size,))
+        store[start:] = samples.astype(store.dtype, copy=False)
+        entry = {
+            "point_id": point_id,
+            "start": start,
+            "length": samples.size,
+            "scale": part["scale"],
+            "offset": part["offset"],
+            "sample_interval": part["sample_interval"],
+        }
+        for name, value in entry.items():
+            ds = group[name]
+            ds.resize((ds.shape[0] + 1,))
+            ds[-1] = value
+
+
+def _write_meta(h5: h5py.File, meta: Mapping[str, Any]) -> None:
+    if "meta" in h5:
+        del h5["meta"]
+    group = h5.create_group("meta")
+    text_dtype = h5py.string_dtype()
+    group.create_dataset("json", data=json.dumps(meta, allow_nan=True), dtype=text_dtype)
+    for key, value in meta.items():
+        if key in _RESERVED_ATTRS:
+            continue
+        if (isinstance(value, str) and len(value) <= _ATTR_TEXT_LIMIT) or isinstance(
+            value, bool | int | float
+        ):
+            h5.attrs[key] = value
+        elif isinstance(value, str) and "/" not in key and key != "json":
+            group.create_dataset(key, data=value, dtype=text_dtype)
+        elif value is not None and "/" not in key and key != "json":
+            ds = group.create_dataset(key, data=json.dumps(value), dtype=text_dtype)
+            ds.attrs["encoding"] = "json"
+
+
+# -- reading a file's state ---------------------------------------------------------------
+class _Unreadable(BadResultFile):
+    """The HDF5 file exists but HDF5 cannot read it (damaged or not HDF5)."""
+
+
+@dataclass
+class _H5State:
+    """What a consolidated HDF5 result holds (rows are not loaded here)."""
+
+    run_id: str
+    journal_id: str
+    journal_offset: int
+    meta: dict[str, Any]
+    columns: list[Column]
+    truth_columns: list[Column] | None
+    ids: set[int]
+
+
+def _group_columns(group: h5py.Group, where: str) -> list[Column]:
+    try:
+        names = json.loads(group.attrs["columns"])
+        return [
+            Column(n, str(group[n].attrs["kind"]), str(group[n].attrs["unit"]),
+                   str(group[n].attrs["description"]))
+            for n in names
+        ]  # fmt: skip
+    except (KeyError, ValueError, TypeError) as exc:
+        raise BadResultFile(f"{where}: damaged column table ({exc})") from None
+
+
+def _read_h5_state(path: Path) -> _H5State | None:
+    """The consolidated file's state, None if it does not exist."""
+    if not path.exists():
+        return None
+    if path.is_dir():
+        raise BadResultFile(f"{path} is a folder, not a result file")
+    try:
+        h5 = _open_h5(path, "r")
+    except OSError as exc:
+        raise _Unreadable(f"{path} is not a readable HDF5 file ({exc})") from None
+    with h5:
+        if h5.attrs.get("format") != FORMAT:
+            raise BadResultFile(f"{path} is an HDF5 file but not a benchseq result")
+        try:
+            meta = json.loads(h5["meta/json"].asstr()[()])
+            columns = _group_columns(h5["points"], f"{path} /points")
+            truth = _group_columns(h5["truth"], f"{path} /truth") if "truth" in h5 else None
+            ids = {int(i) for i in h5["points/point_id"][:]}
+            return _H5State(
+                str(h5.attrs["run_id"]), str(h5.attrs["journal_id"]),
+                int(h5.attrs["journal_offset"]), meta, columns, truth, ids,
+            )  # fmt: skip
+        except (KeyError, ValueError, OSError) as exc:
+            raise _Unreadable(f"{path}: damaged benchseq result ({exc})") from None
+
+
+def _column_arrays(group: h5py.Group, columns: Sequence[Column], rows: slice) -> dict:
+    out: dict[str, np.ndarray] = {}
+    for c in columns:
+        ds = group[c.name]
+        out[c.name] = ds.asstr()[rows] if c.kind == "str" else ds[rows]
+    return out
+
+
+def _last_h5_row(path: Path, columns: Sequence[Column]) -> dict[str, Any] | None:
+    with _open_h5(path, "r") as h5:
+        if h5["points/point_id"].shape[0] == 0:
+            return None
+        arrays = _column_arrays(h5["points"], columns, slice(-1, None))
+    return {name: values[0].item() if hasattr(values[0], "item") else values[0]
+            for name, values in arrays.items()}  # fmt: skip
+
+
+def _h5_wave_dtypes(path: Path) -> dict[str, str]:
+    with _open_h5(path, "r") as h5:
+        if "waveforms" not in h5:
+            return {}
+        return {ch: g["samples"].dtype.str for ch, g in h5["waveforms"].items()}
