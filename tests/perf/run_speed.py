@@ -221,6 +221,9 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     sweep_pos = np.nonzero(~every["repeat"])[0]
     corners = InjectorModel(bench.injector, bench.generator, bench.pin).corners()
     settle = plan.settle.fixed_s + plan.settle.time_constants * corners.slowest_time_constant_s
+    # a floor capture's wait after the generator goes off: the run's (Sequencer._floor_capture
+    # waits 5 slowest time constants), so floor captures are compared capture to capture
+    off_wait = plan.settle.fixed_s + 5.0 * corners.slowest_time_constant_s
     start = time.perf_counter()
     bound = lower_bounds(plan, bench, every["frequency"], every["dc"], every["ripple"])
     truth_s = time.perf_counter() - start
@@ -229,12 +232,13 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     b = report.time_breakdown
     operating = b.get("dc_ramps", 0.0) + b.get("bias_filter", 0.0)
     unmet = sum(not x.meets_target for x in bound)
-    lb_total = n_all * settle + cap.sum() + (settle * floor + cap * floor).sum() + operating
+    lb_total = n_all * settle + cap.sum() + (off_wait * floor + cap * floor).sum() + operating
     print(
         f"{sweep_pos.size} points + {n_all - sweep_pos.size} linearity repeats + "
         f"{int(floor.sum())} floor captures; settle {settle:.3f} s per point (wait "
         f"{plan.settle.fixed_s:g} s + {plan.settle.time_constants:g} x "
-        f"{corners.slowest_time_constant_s:.3g} s); truth + least captures computed in "
+        f"{corners.slowest_time_constant_s:.3g} s), {off_wait:.3f} s before a floor capture (the "
+        "run waits 5 time constants there); truth + least captures computed in "
         f"{truth_s:.2f} s"
     )
     print(
@@ -256,8 +260,9 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     worst = float(cap.max())
     meetable = max(x.bench_time for x in bound if x.meets_target)
     captures_total = n_all + int(floor.sum())
-    fixed_total = captures_total * (settle + worst) + operating
-    fixed_meet = captures_total * (settle + meetable) + operating
+    waits = n_all * settle + int(floor.sum()) * off_wait + operating
+    fixed_total = captures_total * worst + waits
+    fixed_meet = captures_total * meetable + waits
     print(
         f"fixed-capture sequencer (one capture for every point, long enough for the worst): "
         f"{worst:.3f} s each -> {fixed_total:.0f} s = {fixed_total / lb_total:.2f}x the bound; "
@@ -322,7 +327,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     run_pos = np.array([position[p.point_id] for p in clock.points], dtype=np.int64)
     ramps = totals.get(rb.RAMP, 0.0)  # the plan's DC steps: the bound takes them too
     lb_caps = cap[run_pos].sum() + cap[run_pos][floor[run_pos]].sum()
-    lb_settle = settle * (run_pos.size + int(floor[run_pos].sum()))
+    lb_settle = settle * run_pos.size + off_wait * int(floor[run_pos].sum())
     lb_sub_total = lb_settle + lb_caps + ramps
     print(
         f"run {outcome.status}: {len(clock.points)} points measured "
@@ -352,7 +357,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         f"{cap[run_pos].sum():.2f} s ({planned - cap[run_pos].sum():+.2f} s); ranging, "
         f"re-ranging, trims and pin DC checks, which the bound does not spend, {overhead:.2f} s; "
         f"floor captures {totals.get(rb.FLOOR, 0.0):.2f} s against "
-        f"{settle * floor[run_pos].sum() + cap[run_pos][floor[run_pos]].sum():.2f} s"
+        f"{off_wait * floor[run_pos].sum() + cap[run_pos][floor[run_pos]].sum():.2f} s"
     )
     flags = rows["flags"].fillna("")
     err = (rows["rejection_db"] - rows["rejection_db_true"]).abs()
@@ -378,7 +383,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         group = per_decade[d]
         seq = sum(sum(p.seconds.values()) - p.seconds.get(rb.RAMP, 0.0) for p, _ in group)
         plan_cap = sum(p.seconds.get(rb.PLANNED, 0.0) for p, _ in group)
-        lb = sum(settle * (1 + floor[k]) + cap[k] * (1 + floor[k]) for _, k in group)
+        lb = sum(settle + off_wait * floor[k] + cap[k] * (1 + floor[k]) for _, k in group)
         print(
             f"{10**d:>9.0f} Hz {len(group):>4} {seq / len(group):>9.3f} {lb / len(group):>10.3f} "
             f"{seq / lb:>6.2f} {np.mean([captures[p.point_id] for p, _ in group]):>8.2f} "
@@ -389,7 +394,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         full = sum(
             ratios[float(d)]
             * (
-                settle * ((decades == d) + floor * (decades == d)).sum()
+                (settle * (decades == d) + off_wait * floor * (decades == d)).sum()
                 + (cap * ((decades == d) + floor * (decades == d))).sum()
             )
             for d in np.unique(decades)
