@@ -561,6 +561,7 @@ def memory_child(n: int, folder: Path, trace: bool) -> None:
 
     RunWriter.finish = finish_sized  # type: ignore[method-assign]
     marks: list[tuple[int, float, float]] = []
+    snapshots: list[Any] = []
     step = max(1, n // 10)
     holder: dict[str, Any] = {}
 
@@ -572,6 +573,8 @@ def memory_child(n: int, folder: Path, trace: bool) -> None:
             if event.kind == "point_stored" and event.done % step == 0:
                 current = tracemalloc.get_traced_memory()[0] / 2**20 if trace else math.nan
                 marks.append((event.done, _status("VmRSS"), current))
+                if trace and event.done in (step, step * 10):
+                    snapshots.append(tracemalloc.take_snapshot())
             emit(event)
 
         sequencer.emit = watch
@@ -583,6 +586,25 @@ def memory_child(n: int, folder: Path, trace: bool) -> None:
     outcome, _ = rb.run_sweep(plan, bench, folder / f"memory-{n}.h5", attach=attach)
     wall = time.perf_counter() - start
     peak_traced = tracemalloc.get_traced_memory()[1] / 2**20 if trace else math.nan
+    growth: dict[str, float] = {}
+    if len(snapshots) == 2:  # what the memory held at the end and not at 1/10 is, by package
+        for stat in snapshots[1].compare_to(snapshots[0], "filename"):
+            where = stat.traceback[0].filename.replace(os.sep, "/")
+            part = (
+                "simulator (sim/)"
+                if "/sim/" in where
+                else "store (store, rowcodec, h5layout, journal)"
+                if any(
+                    f"/benchseq/{m}.py" in where
+                    for m in ("store", "rowcodec", "h5layout", "journal")
+                )
+                else "sequencer"
+                if where.endswith("/benchseq/sequencer.py")
+                else "other benchseq"
+                if "/benchseq/" in where
+                else "outside benchseq (tracemalloc, json, h5py, numpy...)"
+            )
+            growth[part] = growth.get(part, 0.0) + stat.size_diff
     print(
         json.dumps(
             {
@@ -594,6 +616,8 @@ def memory_child(n: int, folder: Path, trace: bool) -> None:
                 "hwm": _status("VmHWM"),
                 "marks": marks,
                 "traced_peak": peak_traced,
+                "growth": growth,
+                "growth_points": marks[9][0] - marks[0][0] if len(marks) >= 10 else 0,
                 "journal": sizes.get("journal", math.nan),
                 "h5": (folder / f"memory-{n}.h5").stat().st_size,
                 "sim_log": len(holder["sim"].log),
@@ -633,6 +657,7 @@ def part_d(folder: Path, sizes: tuple[int, ...], trace_up_to: int) -> None:
         f"(which slows the run several times) in a separate process, up to {trace_up_to} points"
     )
     results = []
+    last_growth: tuple[int, int, dict[str, float]] | None = None
     for n in sizes:
         result = _child(n, folder, trace=False)
         if isinstance(result, str):
@@ -640,6 +665,8 @@ def part_d(folder: Path, sizes: tuple[int, ...], trace_up_to: int) -> None:
             continue
         traced = _child(n, folder, trace=True) if n <= trace_up_to else "not run"
         result["traced_peak"] = traced["traced_peak"] if isinstance(traced, dict) else math.nan
+        if isinstance(traced, dict) and traced["growth_points"]:
+            last_growth = (n, traced["growth_points"], traced["growth"])
         traced_growth = (
             _slope([m[0] for m in traced["marks"]], [m[2] for m in traced["marks"]])
             if isinstance(traced, dict)
@@ -663,6 +690,16 @@ def part_d(folder: Path, sizes: tuple[int, ...], trace_up_to: int) -> None:
             + f"; journal {result['journal'] / n:.0f} B/pt, HDF5 {result['h5'] / n:.0f} B/pt; "
             f"simulator's state-change log {result['sim_log'] / n:.1f} entries, "
             f"{result['sim_log_bytes'] / n:.0f} B per point"
+        )
+    if last_growth is not None:
+        n, span, growth = last_growth
+        print(
+            f"traced memory gained between points {n // 10} and {n} of the {n}-point run, by "
+            "where it was allocated (KB per 1000 points): "
+            + ", ".join(
+                f"{part} {value / 1024 / span * 1000:+.0f}"
+                for part, value in sorted(growth.items(), key=lambda kv: -kv[1])
+            )
         )
     if len(results) >= 2:
         xs = [r["n"] for r in results]
