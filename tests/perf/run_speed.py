@@ -370,6 +370,12 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         f"{err[detected].median():.3f} dB, p95 {np.nanpercentile(err[detected], 95):.3f} dB; "
         f"captures per point {rows['captures'].mean():.2f}, trims {rows['trims'].mean():.2f}"
     )
+    over = detected & (rows["uncertainty_db"] > plan.capture.target_uncertainty_db * (1 + 1e-9))
+    print(
+        f"  {int(over.sum())} detected points report an uncertainty above the "
+        f"{plan.capture.target_uncertainty_db:g} dB target, "
+        f"{int((over & flags.str.contains('target_unmet')).sum())} of them flagged target_unmet"
+    )
     print(
         f"{'decade':>12} {'pts':>4} {'seq s/pt':>9} {'bound s/pt':>10} {'ratio':>6} "
         f"{'captures':>8} {'planned cap/bound cap':>22}"
