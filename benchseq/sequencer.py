@@ -525,7 +525,10 @@ class Sequencer:
             flags.append("pin_dc_out_of_limits")
         if result.rejection.is_bound:
             flags.append("bound")
-        if not plan.meets_target:
+        if not plan.meets_target or (
+            not result.rejection.is_bound
+            and result.rejection.uncertainty_db > self.plan.capture.target_uncertainty_db
+        ):  # the planner's promise, and what the capture actually reached
             flags.append("target_unmet")
         flags.extend(result.flags)
 
