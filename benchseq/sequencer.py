@@ -306,12 +306,17 @@ class Sequencer:
         dc = float(self.sweep.dc_level[i])
         load = float(self.sweep.load_current[i])
         s = self.session
+        changed = False
         if self._dc_now is None or abs(dc - self._dc_now) > 1e-9:
             self._ramp_supply(dc)
+            changed = True
         if math.isfinite(load) and s.load is not None and load != self._load_now:
             s.load.set_current(load)
             s.load.input(True)
             self._load_now = load
+            changed = True
+        if changed:  # the plan's settle.after_operating_point: the device's own DC settling
+            s.clock.sleep(self.plan.settle.operating_point_s)
         if self._pin_dc != self._pin_dc or abs(dc - (self._dc_checked_at or -1)) > 1e-9:
             self._pin_dc = self._check_pin_dc(dc)
 
