@@ -228,13 +228,47 @@ def run_prepared(
         force=force,
         truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,
     )
+    outcome = _run_on_bench(
+        plan,
+        bench,
+        writer,
+        open_session,
+        calibration,
+        report.estimated_time_s,
+        seed=seed,
+        faults=faults,
+        emit=emit,
+        stop=stop,
+        keep_waveforms=keep_waveforms,
+        record_identities=True,
+    )
+    return outcome, path
+
+
+def _run_on_bench(
+    plan: Plan,
+    bench: Bench,
+    writer: Any,
+    open_session: Any,
+    calibration: Any,
+    planned_bench_time: float,
+    *,
+    seed: int,
+    faults: Any,
+    emit: EventSink | None,
+    stop: StopControl | None,
+    keep_waveforms: bool,
+    record_identities: bool,
+) -> RunOutcome:
+    """Open the bench, note what the file must know of it, run the sequencer, close."""
     try:
         session = open_session(bench, seed=seed, faults=faults)
     except BaseException as exc:  # the file must not go on saying "running"
         writer.finish("aborted", reason=f"the bench could not be opened: {exc}")
         raise
     try:
-        writer.update_meta(identities=dict(session.identities))
+        if record_identities:
+            writer.update_meta(identities=dict(session.identities))
         record = None
         if calibration is not None:
             record = _calibration_meta(calibration, plan, bench, session.identities)
@@ -248,10 +282,10 @@ def run_prepared(
             stop=stop,
             keep_waveforms=keep_waveforms,
             seed=seed,
-            planned_bench_time=report.estimated_time_s,
+            planned_bench_time=planned_bench_time,
             calibration=None if calibration is None else calibration.table,
         )
-        return sequencer.run(), path
+        return sequencer.run()
     finally:
         session.close()
 
@@ -308,28 +342,18 @@ def resume_run(
         calibration = None
     writer = RunWriter.resume(path)
     seed = int(meta.get("seed", 0))
-    try:
-        session = open_session(bench, seed=seed, faults=faults)
-    except BaseException as exc:  # the file must not go on saying "running"
-        writer.finish("aborted", reason=f"the bench could not be opened: {exc}")
-        raise
-    try:
-        record = None
-        if calibration is not None:
-            record = _calibration_meta(calibration, plan, bench, session.identities)
-            writer.update_meta(calibration=record)
-        sequencer = Sequencer(
-            plan,
-            bench,
-            session,
-            _calibrated_writer(writer, record),
-            emit=emit,
-            stop=stop,
-            keep_waveforms=bool(meta.get("keep_waveforms", False)),
-            seed=seed,
-            planned_bench_time=report.estimated_time_s,
-            calibration=None if calibration is None else calibration.table,
-        )
-        return sequencer.run(), path
-    finally:
-        session.close()
+    outcome = _run_on_bench(
+        plan,
+        bench,
+        writer,
+        open_session,
+        calibration,
+        report.estimated_time_s,
+        seed=seed,
+        faults=faults,
+        emit=emit,
+        stop=stop,
+        keep_waveforms=bool(meta.get("keep_waveforms", False)),
+        record_identities=False,
+    )
+    return outcome, path

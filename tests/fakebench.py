@@ -18,6 +18,7 @@ from benchseq.bench import InstrumentSpec
 from benchseq.drivers.errors import ConnectionLost, InstrumentError
 from benchseq.drivers.profile import load_profile
 from benchseq.drivers.replay import Conversation, ReplayTransport, replay
+from benchseq.drivers.session import open_session as _open_session
 
 NO_ERROR = '+0,"No error"'
 OK = ("SYST:ERR?", NO_ERROR)  # the empty error queue read after every setting
@@ -116,3 +117,17 @@ def time_bound(seconds: int) -> Any:
         signal.signal(signal.SIGALRM, previous)
 
     return bounded
+
+
+class Keeper:
+    """A session factory for runs (``session_factory=``) that keeps every session it opened,
+    so a test can read the simulator's log and counts afterwards (none opened: nothing on)."""
+
+    def __init__(self) -> None:
+        self.sessions: list[Any] = []
+
+    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
+        # the function itself, taken at import: tests monkeypatch the module's name to a Keeper
+        session = _open_session(bench, seed=seed, faults=faults)
+        self.sessions.append(session)
+        return session

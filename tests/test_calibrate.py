@@ -16,10 +16,10 @@ from typing import Any
 import h5py
 import numpy as np
 import pytest
+from fakebench import Keeper
 
 from benchseq import calibrate as cal
 from benchseq.bench import embedded_bench_text, load_bench
-from benchseq.drivers.session import open_session
 from benchseq.errors import BadInput, FileKeyError, MeasurementFailure
 from benchseq.records import FLAG_TEXT
 from benchseq.runner import resume_run, start_run
@@ -29,18 +29,6 @@ from benchseq.store import read_meta, read_results, read_truth
 
 PLANS = Path(__file__).resolve().parent.parent / "plans"
 DB = 20.0 / math.log(10.0)  # dB per neper
-
-
-class Keeper:
-    """A session factory that keeps the sessions it opened (to read the simulator's log)."""
-
-    def __init__(self) -> None:
-        self.sessions: list[Any] = []
-
-    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
-        session = open_session(bench, seed=seed, faults=faults)
-        self.sessions.append(session)
-        return session
 
 
 def bench_text(calibration: str | None = None, **replace: str) -> str:

@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from fakebench import Keeper
 
 from benchseq.drivers.session import open_session
 from benchseq.runner import resume_run, start_run
@@ -30,18 +31,6 @@ FAULTY = FaultRates(
 )
 ROLES = ("generator", "supply", "scope")
 POINTS = 16  # plans/demo.toml: one DC level, one ripple, 10 Hz - 1 MHz at 3 per decade
-
-
-class Keeper:
-    """A session factory that keeps the sessions it opened (the simulator's log and counts)."""
-
-    def __init__(self) -> None:
-        self.sessions: list[Any] = []
-
-    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
-        session = open_session(bench, seed=seed, faults=faults)
-        self.sessions.append(session)
-        return session
 
 
 def _faulty() -> dict[str, FaultRates]:

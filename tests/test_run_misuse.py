@@ -22,11 +22,11 @@ from typing import Any
 
 import numpy as np
 import pytest
+from fakebench import Keeper
 
 from benchseq import journal as jr
 from benchseq.bench import load_bench
 from benchseq.cli import main
-from benchseq.drivers.session import open_session as _open_session
 from benchseq.runner import start_run
 from benchseq.sim.server import tcp_bench_text
 from benchseq.stopping import StopControl
@@ -35,18 +35,6 @@ from benchseq.store import journal_path, read_meta, read_results
 ROOT = Path(__file__).resolve().parent.parent
 PLANS = ROOT / "plans"
 DEMO_FREQUENCIES = 'frequency = { from = "10 Hz", to = "1 MHz", per_decade = 3 }'
-
-
-class Keeper:
-    """Stands in for open_session: records every bench opened (nothing opened = nothing on)."""
-
-    def __init__(self) -> None:
-        self.sessions: list[Any] = []
-
-    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
-        session = _open_session(bench, seed=seed, faults=faults)
-        self.sessions.append(session)
-        return session
 
 
 @pytest.fixture

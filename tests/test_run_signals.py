@@ -24,10 +24,10 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from fakebench import Keeper
 
 from benchseq import journal as jr
 from benchseq.bench import load_bench
-from benchseq.drivers.session import open_session
 from benchseq.runner import resume_run, start_run
 from benchseq.sim.faults import FaultRates
 from benchseq.sim.server import read_state_log, tcp_bench_text, wait_for_port
@@ -331,18 +331,6 @@ def test_stop_requests_during_the_safe_state_do_not_interrupt_it(tmp_path: Path)
 
 
 # -- exceptions during a point (in-process: the simulator's own log) -----------------------------
-class Keeper:
-    """A session factory that keeps the sessions it opened (to read the simulator's log)."""
-
-    def __init__(self) -> None:
-        self.sessions: list[Any] = []
-
-    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
-        session = open_session(bench, seed=seed, faults=faults)
-        self.sessions.append(session)
-        return session
-
-
 def _in_process_safe(session: Any) -> None:
     log = session.simulator.log
     switches = [(c.role, bool(c.value)) for c in log if c.what in ("output", "input")]

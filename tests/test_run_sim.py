@@ -11,25 +11,13 @@ from typing import Any
 
 import numpy as np
 import pytest
+from fakebench import Keeper
 
-from benchseq.drivers.session import open_session
 from benchseq.runner import RefusedPlan, resume_run, start_run
 from benchseq.stopping import StopControl
 from benchseq.store import read_meta, read_results, read_truth
 
 PLANS = Path(__file__).resolve().parent.parent / "plans"
-
-
-class Keeper:
-    """A session factory that keeps the sessions it opened (to read the simulator's log)."""
-
-    def __init__(self) -> None:
-        self.sessions: list[Any] = []
-
-    def __call__(self, bench: Any, seed: int = 0, faults: Any = None) -> Any:
-        session = open_session(bench, seed=seed, faults=faults)
-        self.sessions.append(session)
-        return session
 
 
 def _tightened_demo(folder: Path) -> Path:
