@@ -1,21 +1,20 @@
 """Re-analysis: recompute a run's results from its stored raw waveforms, without a bench.
 
-A run made with ``keep_waveforms`` stores, per point, the last pin and output records the
-sequencer analysed (raw codes with their scaling). ``reanalyse`` feeds them to
+A run made with ``keep_waveforms`` stores, per point, the pooled pin and output records the
+sequencer analysed: every triggered record of the point's final capture, summed as integer
+converter codes with their scaling (benchseq.batches.Pool). ``reanalyse`` feeds them to
 benchseq.analysis.measure_point with the analysis settings of the installed software and
 writes a new result file: the stored metadata (plus ``reanalysed_from``), every point's
 row with the analysis columns replaced, the stored truth and the same waveforms.
 
 What is reproduced and what is not:
 
-* the same record is analysed whenever a point's final capture read ONE waveform (the
-  scope's own averaging is inside that waveform): the numbers are then identical unless
-  the analysis changed. When the capture read several averaged waveforms (more averages
-  than the scope offers) only the last is stored: the re-analysis sees fewer samples, so
-  its noise and uncertainty are larger and its numbers differ within them;
+* the same pooled record the run analysed is analysed again, so the numbers are identical
+  unless the analysis changed (a pool whose batches had different ranges was requantised
+  at its finest step: the run analysed the same requantised record);
 * the converter's code range (for clipping and resolution checks) is taken from the
-  stored range and scaling (range / volts-per-code = 256 codes for 8-bit transfers,
-  65,536 for 16-bit), else from the sample type;
+  stored range and scaling (range / scale = k·256 codes for k pooled 8-bit records,
+  k·65,536 for 16-bit), else from the sample type;
 * a channel calibration is applied only when given (``calibration=``);
 * the bench-side columns (generator setting, pin DC, supply current, ranges, capture
   settings, bench time) are the stored ones; flags from the bench (current limit, pin DC
@@ -83,15 +82,11 @@ class ReanalysisOutcome:
 
 
 def _code_range(wave: Any, full_scale: float) -> tuple[int, int]:
-    """The transfer format's code range, from range / volts-per-code (else the sample type)."""
-    if math.isfinite(full_scale) and wave.scale > 0:
-        codes = full_scale / abs(wave.scale)
-        if abs(codes / 256.0 - 1.0) < 0.02:
-            return -128, 127
-        if abs(codes / 65536.0 - 1.0) < 0.02:
-            return -32768, 32767
-    info = np.iinfo(np.asarray(wave.samples).dtype)
-    return int(info.min), int(info.max)
+    """The code range of the stored samples, as the run saw it (benchseq.batches.code_range:
+    from range / scale, an 8- or 16-bit transfer or a pool of them; else the sample type)."""
+    from benchseq.batches import code_range
+
+    return code_range(full_scale, float(wave.scale), np.asarray(wave.samples).dtype)
 
 
 def _channel_codes(wave: Any, full_scale: float) -> Any:
@@ -254,7 +249,10 @@ def reanalyse(
     )
     corner = stored.meta.get("scope_ac_corner_hz", 0.0)
     corner = float(corner) if isinstance(corner, int | float) and corner > 0 else 0.0
-    couplings = (stored.bench.scope.pin.coupling == "AC", stored.bench.scope.output.coupling == "AC")
+    couplings = (
+        stored.bench.scope.pin.coupling == "AC",
+        stored.bench.scope.output.coupling == "AC",
+    )
     new_rows = []
     try:
         for row in rows:
@@ -330,7 +328,10 @@ def _equal(a: float, b: float) -> bool:
 
 
 def compare_analyses(
-    stored: list[dict[str, Any]], new: list[dict[str, Any]], reanalysed: set[int], k: float = COVERAGE_K
+    stored: list[dict[str, Any]],
+    new: list[dict[str, Any]],
+    reanalysed: set[int],
+    k: float = COVERAGE_K,
 ) -> pd.DataFrame:
     out = []
     for s, r in zip(stored, new, strict=True):
@@ -404,7 +405,10 @@ def _summary(comparison: pd.DataFrame) -> dict[str, Any]:
         if len(values)
         else math.nan,
         "bound_changes": int(
-            (comparison["reanalysed"] & (comparison["stored_is_bound"] != comparison["new_is_bound"])).sum()
+            (
+                comparison["reanalysed"]
+                & (comparison["stored_is_bound"] != comparison["new_is_bound"])
+            ).sum()
         ),
     }
 
@@ -431,6 +435,7 @@ def render_reanalysis(outcome: ReanalysisOutcome) -> Any:
     for name in ("#", "frequency", "stored", "re-analysed", "difference", "verdict"):
         table.add_column(name, justify="left" if name == "verdict" else "right")
     for r in outcome.comparison.to_dict(orient="records"):
+
         def side(value: float, u: float, bound: float, is_bound: bool) -> str:
             if is_bound:
                 return f"≥ {bound:.1f} dB"

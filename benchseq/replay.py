@@ -165,7 +165,9 @@ def _scenario_for(device: str, base: Any, learned: Any) -> Any:
     try:
         other = load_scenario(device)
     except FileKeyError as exc:
-        raise BadInput(f'--device "{device}" is neither "learned" nor a scenario: {exc.problem}') from None
+        raise BadInput(
+            f'--device "{device}" is neither "learned" nor a scenario: {exc.problem}'
+        ) from None
     return dataclasses.replace(base, device=other.device)
 
 
@@ -405,7 +407,9 @@ def compare_points(
             & (np.abs(s_f - f) <= 1e-6 * f)
         )
         if hits.size:
-            ripple_hits = hits[np.abs(s_ripple[hits] - row["ripple_target"]) <= 1e-6 * s_ripple[hits]]
+            ripple_hits = hits[
+                np.abs(s_ripple[hits] - row["ripple_target"]) <= 1e-6 * s_ripple[hits]
+            ]
             s = stored.iloc[int(ripple_hits[0] if ripple_hits.size else hits[0])]
             row["stored_point_id"] = int(s["point_id"])
             if bool(s["is_bound"]):
@@ -510,7 +514,11 @@ def summarise(comparison: pd.DataFrame) -> dict[str, Any]:
     """Counts and the largest |difference| / u_c over the compared points."""
     compared = comparison[comparison["compared"].astype(bool)] if len(comparison) else comparison
     z = compared["z"].abs().to_numpy(float) if len(compared) else np.zeros(0)
-    bounds = comparison[comparison["reference_from_bound"].astype(bool)] if len(comparison) else comparison
+    bounds = (
+        comparison[comparison["reference_from_bound"].astype(bool)]
+        if len(comparison)
+        else comparison
+    )
     resolved = int(bounds["resolved_now"].fillna(False).astype(bool).sum()) if len(bounds) else 0
     stored_values = comparison[
         ~comparison["reference_from_bound"].astype(bool) & comparison["stored_db"].notna()
@@ -525,9 +533,15 @@ def summarise(comparison: pd.DataFrame) -> dict[str, Any]:
         "resolved_now": resolved,
         "still_bound": len(bounds) - resolved,
         "bounds_on_stored_values": int(stored_values["replay_is_bound"].astype(bool).sum()),
-        "interpolated": int((comparison["match"] == "interpolated").sum()) if len(comparison) else 0,
-        "not_compared_op": int((comparison["op_match"] == "nearest").sum()) if len(comparison) else 0,
-        "outside_span": int((comparison["match"] == "outside_span").sum()) if len(comparison) else 0,
+        "interpolated": int((comparison["match"] == "interpolated").sum())
+        if len(comparison)
+        else 0,
+        "not_compared_op": int((comparison["op_match"] == "nearest").sum())
+        if len(comparison)
+        else 0,
+        "outside_span": int((comparison["match"] == "outside_span").sum())
+        if len(comparison)
+        else 0,
     }
 
 
@@ -607,10 +621,14 @@ def render_comparison(outcome: ReplayOutcome) -> Any:
         stored_text = _side(
             r["stored_db"], r["stored_u_db"], r["stored_bound_db"], r["reference_from_bound"]
         )
-        replay_text = _side(r["replay_db"], r["replay_u_db"], r["replay_bound_db"], r["replay_is_bound"])
+        replay_text = _side(
+            r["replay_db"], r["replay_u_db"], r["replay_bound_db"], r["replay_is_bound"]
+        )
         verdict = r["verdict"]
-        style = "green" if verdict.startswith(("reproduced", "resolved")) else (
-            "red" if verdict.startswith("differs") else "yellow"
+        style = (
+            "green"
+            if verdict.startswith(("reproduced", "resolved"))
+            else ("red" if verdict.startswith("differs") else "yellow")
         )
         table.add_row(
             str(r["point_id"]),

@@ -16,7 +16,7 @@ from typing import Any
 
 import numpy as np
 
-from benchseq import analysis
+from benchseq import analysis, batches
 from benchseq.bench import Bench
 from benchseq.errors import BenchseqError, MeasurementFailure
 from benchseq.injector import InjectorModel
@@ -28,10 +28,8 @@ PIN_TOLERANCE = 0.02  # relative: trim the generator when the pin ripple is furt
 MAX_TRIMS = 3
 MAX_RANGING = 5
 MAX_POINT_RETRIES = 2
-MAX_EXTENSIONS = 2  # longer captures after the planned one
 RANGE_FILL = 0.7  # aim the sine's peak-to-peak at this fraction of full scale
 INITIAL_REJECTION_GUESS_DB = 40.0
-QUICK_TARGET_DB = 3.0  # the ranging capture only needs to see the signal
 CORNER_SEED_KEY = 2**40  # simulator noise key of the AC-corner measurement (points: id·16+try)
 COUPLING_SETTLE_S = 0.3  # after switching a channel between AC and DC coupling
 DEFAULT_NOISE_GUESS = 200e-6  # V rms per sample, until a capture shows the real noise
@@ -62,7 +60,7 @@ class Carry:
     output_floor: float = float("nan")
     pin_correction: float = 1.0  # measured/model pin ripple ratio seen last
     output_range: float = float("nan")
-    noise_sigma: float = float("nan")  # output channel noise per sample, V
+    noise: batches.NoiseGuess | None = None  # the noise the last point showed
 
     @classmethod
     def from_row(cls, row: dict[str, Any]) -> Carry:
@@ -78,7 +76,14 @@ class Carry:
             output_floor=float(row["output_floor"]),
             pin_correction=float(np.clip(correction, 0.5, 2.0)),
             output_range=float(row["output_range"]),
-            noise_sigma=float(row["output_noise"]),
+            noise=batches.NoiseGuess.from_point(
+                float(row["output_floor"]),
+                float(row["output_noise"]),
+                float(row["pin_sigma"]),
+                float(row["sample_interval"]),
+                int(row["record_length"]),
+                int(row["averages"]),
+            ),
         )
 
 
@@ -132,7 +137,11 @@ class Sequencer:
         self._pin_dc = float("nan")
         self.calibration = calibration  # channel match applied to every ratio (None: none)
         self._last_waveforms: tuple[Any, Any, float] | None = None
+        self._pool: batches.Pool | None = None  # the last point's pooled records
         self._ac_corner = 0.0  # Hz, the scope's AC-coupling corner once measured (0: none)
+        # what the bench is doing now ("power-up", "operating point", "settle", "capture",
+        # "trim", "top-up", "floor"): for progress displays and the run benchmarks
+        self.activity = "idle"
 
     # -- the whole run ---------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -223,6 +232,7 @@ class Sequencer:
 
     # -- power-up and operating point -------------------------------------------------
     def _power_up(self, first: int) -> None:
+        self.activity = "power-up"
         s = self.session
         self.emit(Event("state", "setting limits: generator off, supply limits and protection"))
         s.generator.output(False)
@@ -316,6 +326,7 @@ class Sequencer:
             self._load_now = load
             changed = True
         if changed:  # the plan's settle.after_operating_point: the device's own DC settling
+            self.activity = "operating point"
             s.clock.sleep(self.plan.settle.operating_point_s)
         if self._pin_dc != self._pin_dc or abs(dc - (self._dc_checked_at or -1)) > 1e-9:
             self._pin_dc = self._check_pin_dc(dc)
@@ -323,6 +334,7 @@ class Sequencer:
     _dc_checked_at: float | None = None
 
     def _ramp_supply(self, target: float) -> None:
+        self.activity = "operating point"
         s = self.session
         start = self._dc_now or 0.0
         rate = self.bench.supply.ramp_rate
@@ -338,6 +350,7 @@ class Sequencer:
 
     def _check_pin_dc(self, dc: float) -> float:
         """Measure the pin's DC level with the pin channel briefly DC-coupled."""
+        self.activity = "operating point"
         scope = self.session.scope
         pin = self.bench.scope.pin
         ranges = np.asarray(scope.capabilities.ranges) * pin.probe
@@ -440,41 +453,42 @@ class Sequencer:
             self.plan.settle.fixed_s
             + self.plan.settle.time_constants * self.corners.slowest_time_constant_s
         )
+        self.activity = "settle"
         clock.sleep(settle)
 
-        # a quick capture to range both channels and see the noise
+        # the capture, predicted from what the last point showed and taken in batches of one
+        # timebase (benchseq.batches): the first ranges both channels and shows the pin
+        # ripple and this point's noise; top-ups add records until the pool meets the target
+        self.activity = "capture"
+        rules = self.plan.capture
+        timebase = self._capture_limits()
         expected_out = target * 10 ** (-carry.rejection_db / 20.0)
-        noise = carry.noise_sigma if math.isfinite(carry.noise_sigma) else None
-        quick = self._plan_capture(
-            actual_frequency, target, expected_out, noise, target_db=QUICK_TARGET_DB
+        plan = batches.predicted_plan(
+            timebase,
+            actual_frequency,
+            target,
+            max(expected_out, 1e-12),
+            carry.noise or batches.NoiseGuess(DEFAULT_NOISE_GUESS),
+            rules.target_uncertainty_db,
+            rules.min_cycles,
+            rules.max_time_s,
+        )
+        actual_frequency = s.generator.set_frequency(plan.frequency)
+        probe = batches.batch(
+            plan, batches.probe_records(plan), timebase.max_averages, timebase.rearm_time
         )
         pin_range = self._range_for(self.bench.scope.pin, target)
+        noise = carry.noise.white_sigma if carry.noise is not None else 0.0
         out_range = (
             carry.output_range
             if math.isfinite(carry.output_range)
-            else self._range_for(self.bench.scope.output, expected_out, noise or 0.0)
+            else self._range_for(self.bench.scope.output, expected_out, noise)
         )
         flags: list[str] = []
-        pin_range, out_range, result, captures = self._capture_ranged(
-            quick, actual_frequency, pin_range, out_range, flags
-        )
-
-        # the real capture: least bench time for the target uncertainty, coherent
-        plan = self._plan_capture(
-            actual_frequency,
-            max(result.pin.amplitude, target * 0.1),
-            max(result.output.amplitude, result.output_floor),
-            max(result.output.residual_rms, 1e-9),
-        )
-        actual_frequency = s.generator.set_frequency(plan.frequency)
-        trims = 0
+        captures = trims = 0
         while True:
-            # whether to extend is decided on an amplitude from an EARLIER capture: judging a
-            # capture by its own (noisy) output amplitude would keep the captures that happened
-            # to read high and retake those that read low, biasing rejection low
-            prior = result
-            pin_range, out_range, result, used = self._capture_ranged(
-                plan, actual_frequency, pin_range, out_range, flags
+            pin_range, out_range, result, used, waves = self._capture_ranged(
+                probe, actual_frequency, pin_range, out_range, flags
             )
             captures += used
             measured_pin = result.pin.amplitude / abs(self._coupling_at(actual_frequency))
@@ -485,22 +499,47 @@ class Sequencer:
             ):
                 break
             trims += 1
+            self.activity = "trim"
             actual_pp = s.generator.set_amplitude_pp(
                 self._clamp_generator(actual_pp * target / measured_pin)
             )
             clock.sleep(self.plan.settle.fixed_s + 3.0 * self.corners.coupling_time_constant_s)
-
-        for _ in range(MAX_EXTENSIONS):
-            longer = self._longer_capture(plan, result, prior)
-            if longer is None:
+        pool = self._pool = batches.Pool()
+        pool.add(*waves, probe.averages, probe.bench_time, self._last_waveforms[2])
+        capped = False
+        detecting = 0
+        cal_u = 0.0
+        if self.calibration is not None:
+            found = self.calibration.lookup(result.frequency)
+            cal_u = found.uncertainty if found.inside else 0.0
+        carried_ratio = 10 ** (-carry.rejection_db / 20.0)
+        for _ in range(batches.MAX_TOP_UPS):
+            more = batches.top_up(
+                result,
+                pool.triggered,
+                pool.bench_time,
+                plan.record_duration,
+                timebase.rearm_time,
+                rules.target_uncertainty_db,
+                rules.max_time_s,
+                carried_ratio,
+                cal_u,
+            )
+            capped = more.capped
+            if more.records < 1 or (more.detecting and detecting >= batches.MAX_DETECT_TOP_UPS):
                 break
-            actual_frequency = s.generator.set_frequency(longer.frequency)
-            prior = result
-            pin_range, out_range, result, used = self._capture_ranged(
-                longer, actual_frequency, pin_range, out_range, flags
+            detecting += int(more.detecting)
+            self.activity = "top-up"
+            extra = batches.batch(plan, more.records, timebase.max_averages, timebase.rearm_time)
+            pin_range, out_range, _, used, waves = self._capture_ranged(
+                extra, actual_frequency, pin_range, out_range, flags
             )
             captures += used
-            plan = longer
+            pool.add(*waves, extra.averages, extra.bench_time, self._last_waveforms[2])
+            result = self._pooled_result(pool, actual_frequency, pin_range, out_range)
+        if pool.batches == 1:  # the stored numbers always come from the pooled codes
+            result = self._pooled_result(pool, actual_frequency, pin_range, out_range)
+        plan = batches.batch(plan, pool.triggered, timebase.max_averages, timebase.rearm_time)
         # readings through the scope's AC coupling, referred back to the nodes (the ratio,
         # and so the rejection, is unchanged: both channels share the coupling)
         through = self._coupling_at(actual_frequency)
@@ -530,10 +569,10 @@ class Sequencer:
             flags.append("pin_dc_out_of_limits")
         if result.rejection.is_bound:
             flags.append("bound")
-        if not plan.meets_target or (
+        if capped or (
             not result.rejection.is_bound
-            and result.rejection.uncertainty_db > self.plan.capture.target_uncertainty_db
-        ):  # the planner's promise, and what the capture actually reached
+            and result.rejection.uncertainty_db > rules.target_uncertainty_db
+        ):  # the time cap stopped the top-ups, or what the pool reached misses the target
             flags.append("target_unmet")
         flags.extend(result.flags)
 
@@ -576,7 +615,7 @@ class Sequencer:
             "output_range": out_range,
             "sample_interval": plan.sample_interval,
             "record_length": plan.record_length,
-            "averages": plan.averages,
+            "averages": pool.triggered,
             "captures": captures,
             "trims": trims,
             "bench_time": clock.now() - bench_start,
@@ -627,6 +666,7 @@ class Sequencer:
         ):
             return math.nan, math.nan
         s = self.session
+        self.activity = "floor"
         s.generator.output(False)
         self._generator_on = False
         s.clock.sleep(self.plan.settle.fixed_s + 5.0 * self.corners.slowest_time_constant_s)
@@ -718,8 +758,10 @@ class Sequencer:
         pin_range: float,
         out_range: float,
         flags: list[str],
-    ) -> tuple[float, float, analysis.PointMeasurement, int]:
-        """Capture, re-ranging a channel that clipped or wasted codes (bounded tries)."""
+    ) -> tuple[float, float, analysis.PointMeasurement, int, tuple[list[Any], list[Any]]]:
+        """Capture, re-ranging a channel that clipped or wasted codes (bounded tries).
+        Returns the ranges, the capture's measurement, the acquisitions made and the
+        capture's waveforms (as read, pin and output)."""
         used = 0
         pin_ch, out_ch = self.bench.scope.pin, self.bench.scope.output
         pin_ranges, out_ranges = self._tip_ranges(pin_ch), self._tip_ranges(out_ch)
@@ -727,6 +769,7 @@ class Sequencer:
             pins, outs, interval = self._acquire(plan, pin_range, out_range)
             self._last_waveforms = (pins[-1], outs[-1], interval)
             used += 1
+            waves = (pins, outs)
             result = analysis.measure_point(
                 np.vstack([w.volts() for w in pins]),
                 np.vstack([w.volts() for w in outs]),
@@ -749,8 +792,38 @@ class Sequencer:
             if (new_pin == pin_range and new_out == out_range) or used >= MAX_RANGING:
                 if used >= MAX_RANGING and "clipped_pin" in result.flags + tuple(flags):
                     flags.append("clipped")
-                return pin_range, out_range, result, used
+                return pin_range, out_range, result, used, waves
             pin_range, out_range = new_pin, new_out
+
+    def _pooled_result(
+        self, pool: batches.Pool, frequency: float, pin_range: float, out_range: float
+    ) -> analysis.PointMeasurement:
+        """The measurement of every record pooled so far, from the pooled codes (as a
+        re-analysis of the kept waveforms sees them)."""
+        channels = []
+        for k, (spec, full_scale) in enumerate(
+            ((self.bench.scope.pin, pin_range), (self.bench.scope.output, out_range))
+        ):
+            samples, scale, offset, _ = pool.kept(k)
+            low, high = batches.code_range(full_scale, scale, samples.dtype)
+            codes = analysis.ChannelCodes(
+                codes=samples,
+                code_min=low,
+                code_max=high,
+                volts_per_code=scale,
+                full_scale=full_scale,
+                ranges=self._tip_ranges(spec),
+            )
+            channels.append((samples.astype(np.float64) * scale + offset, codes))
+        return analysis.measure_point(
+            channels[0][0],
+            channels[1][0],
+            pool.interval,
+            frequency,
+            pin_codes=channels[0][1],
+            out_codes=channels[1][1],
+            calibration=self.calibration,
+        )
 
     @staticmethod
     def _next_range(
@@ -768,75 +841,20 @@ class Sequencer:
             return min(wanted, present)
         return present
 
-    def _longer_capture(
-        self,
-        plan: analysis.CapturePlan,
-        result: analysis.PointMeasurement,
-        prior: analysis.PointMeasurement,
-    ) -> analysis.CapturePlan | None:
-        """A longer capture, planned from the noise this capture showed, when the output was
-        not detected or the uncertainty missed the target, and the plan's limits allow it.
-
-        The output amplitude the decision uses comes from ``prior`` (an earlier, independent
-        capture), scaled to this capture's pin ripple; only the noise comes from ``result``.
-        A stopping rule that looked at the accepted capture's own amplitude would select
-        captures that read high (optional stopping), biasing rejection low."""
-        rules = self.plan.capture
-        rej = result.rejection
-        ratio = prior.output.amplitude / max(prior.pin.amplitude, 1e-15)
-        expected = ratio * result.pin.amplitude
-        detected = not prior.rejection.is_bound and not rej.is_bound
-        if detected and expected > 0:
-            predicted_db = analysis.db_uncertainty(
-                result.output_floor / expected,
-                result.pin.amplitude_sigma / max(result.pin.amplitude, 1e-15),
-            )
-            if predicted_db <= rules.target_uncertainty_db:
-                return None
-        # σ_c = σ·√(2/N) per quadrature over all N samples recorded (MEASUREMENT.md): the
-        # per-sample noise of one raw record, taken as aliased broadband (scope front end)
-        samples = plan.record_length * plan.averages * plan.records
-        sigma = max(result.output_floor, 1e-15) * math.sqrt(samples / 2.0)
-        pin_sigma = max(result.pin.quadrature_sigma, 1e-15) * math.sqrt(samples / 2.0)
-        if not detected:  # aim to detect an output at the present floor, not to pin it down
-            output, target_db = max(expected, 4.0 * result.output_floor), 1.0
-        else:
-            output, target_db = expected, rules.target_uncertainty_db
-        longer = analysis.plan_capture(
-            self._capture_limits(),
-            plan.frequency,
-            max(result.pin.amplitude, 1e-12),
-            max(output, 1e-12),
-            target_db,
-            min_cycles=rules.min_cycles,
-            max_time_s=rules.max_time_s,
-            noise_sigma=sigma,
-            pin_noise_sigma=pin_sigma,
-        )
-        if longer.capture_time <= plan.capture_time * 1.2:
-            return None
-        return longer
-
     def _waveforms_to_keep(self) -> dict[str, Any] | None:
-        """The point's last raw records (codes with their scaling), when asked to keep them."""
-        if not self.keep_waveforms or self._last_waveforms is None:
+        """The point's pooled records as integer codes with their scaling (every triggered
+        record the rejection came from), when asked to keep them. One storage type for every
+        point: int32 sums of codes, scale = volts per code / records."""
+        pool = self._pool
+        if not self.keep_waveforms or pool is None or pool.batches == 0:
             return None
         from benchseq.store import StoredWaveform
 
-        pin, out, interval = self._last_waveforms
         kept = {}
-        for name, wave in (("pin", pin), ("output", out)):
-            scale = float(wave.volts_per_code * wave.probe)
-            offset = float(
-                (wave.volts_at_zero - wave.code_offset * wave.volts_per_code) * wave.probe
-            )
-            # one storage type for every point: 8-bit records (no averaging) are widened to
-            # int16 with the same codes and scaling, so a run can mix averaged and single ones
+        for k, name in enumerate(("pin", "output")):
+            samples, scale, offset, _ = pool.kept(k)
             kept[name] = StoredWaveform(
-                samples=np.asarray(wave.codes).astype(np.int16),
-                scale=scale,
-                offset=offset,
-                sample_interval=interval,
+                samples=samples, scale=scale, offset=offset, sample_interval=pool.interval
             )
         return kept
 

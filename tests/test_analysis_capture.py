@@ -140,3 +140,30 @@ def test_bad_planning_input() -> None:
         plan_capture(scope, 1e5, 0.1, 1e-3, 0.1, noise_sigma=1e-4)
     with pytest.raises(AnalysisError, match="exactly one"):
         plan_capture(scope, 10.0, 0.1, 1e-3, 0.1)
+
+
+def test_coloured_density_adds_to_the_white_part(scope: ScopeTimebase) -> None:
+    """σ_A² ≈ S/T with S = 2σ²Δt (white per sample) + S_c (a rate-independent part at f):
+    the plan's expected uncertainty follows the formula with both (MEASUREMENT.md)."""
+    coloured = 4e-13  # V²/Hz
+    plan = plan_capture(
+        scope, 50.0, 0.05, 5e-6, 0.1, min_cycles=10, noise_sigma=1e-4, density_at_f=coloured
+    )
+    density = 2 * 1e-4**2 * plan.sample_interval + coloured
+    expected = 8.6859 * math.sqrt(density / plan.capture_time * (1 / 5e-6**2 + 1 / 0.05**2))
+    assert plan.expected_uncertainty_db == pytest.approx(expected, rel=1e-3)
+    white_only = plan_capture(scope, 50.0, 0.05, 5e-6, 0.1, min_cycles=10, noise_sigma=1e-4)
+    assert plan.capture_time > 2 * white_only.capture_time
+
+
+def test_records_kept_short_when_asked(scope: ScopeTimebase) -> None:
+    """max_record_time caps each record (but never below one holding min_cycles): the same
+    need is met by more, shorter records."""
+    free = _plan(scope, 1e3, 95.0)
+    capped = _plan(scope, 1e3, 95.0, max_record_time=free.capture_time / 4)
+    assert capped.meets_target and capped.record_duration <= free.capture_time / 4 + 1e-12
+    assert capped.records * capped.averages >= 4
+    floor = _plan(scope, 1e3, 95.0, max_record_time=1e-6)
+    assert floor.record_duration == pytest.approx(10 / 1e3, rel=1e-9)
+    with pytest.raises(AnalysisError, match="negative"):
+        _plan(scope, 1e3, 60.0, density_at_f=-1.0)

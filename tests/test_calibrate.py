@@ -99,7 +99,8 @@ def test_calibration_measures_the_scenarios_mismatch(lab: dict[str, Any]) -> Non
     assert np.all(np.abs(error.real) <= 3 * u_gain), DB * error.real
     assert np.all(np.abs(error.imag) <= 3 * u_phase), np.degrees(error.imag)
     assert np.all(np.abs(np.log(np.abs(truth))) > 6 * u_gain)
-    assert np.all(np.abs(np.angle(truth)) > 30 * u_phase)
+    # 0.5° is 25 uncertainties at the sweep's 0.003 dB target (3.5e-4, in rad likewise)
+    assert np.all(np.abs(np.angle(truth)) > 20 * u_phase)
     # the demo's figures, for the record: +0.0434 dB and +0.5° (1.003·1.002, 0.5°)
     assert DB * math.log(abs(truth[0])) == pytest.approx(0.04337, abs=1e-5)
 

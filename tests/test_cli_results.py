@@ -71,9 +71,10 @@ def test_reanalyse_and_learned_replay(
     _, out = stored
     again = tmp_path / "again.h5"
     assert main(["replay", str(out), "--reanalyse", "--out", str(again)]) == 0
-    assert read_results(again)["rejection_db"].round(9).tolist() == read_results(out)[
-        "rejection_db"
-    ].round(9).tolist()
+    assert (
+        read_results(again)["rejection_db"].round(9).tolist()
+        == read_results(out)["rejection_db"].round(9).tolist()
+    )
     assert main(["replay", str(out), "--reanalyse", "--device", "demo"]) == 2
     replayed = tmp_path / "replayed.h5"
     capsys.readouterr()

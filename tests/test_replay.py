@@ -47,10 +47,10 @@ frequency = { at = ["100 Hz", "220 Hz", "1 kHz", "4.7 kHz"] }
 after_operating_point = "0.5 s"
 [capture]
 min_cycles = 10
-max_time = "0.12 s"
+max_time = "0.05 s"
 target_uncertainty = "0.2 dB"
 """
-LONG_PLAN = SHORT_PLAN.replace('max_time = "0.12 s"', 'max_time = "10 s"').replace(
+LONG_PLAN = SHORT_PLAN.replace('max_time = "0.05 s"', 'max_time = "10 s"').replace(
     "short captures", "room for long captures"
 )
 
@@ -166,7 +166,9 @@ def test_learned_transfer_is_stored_ratios_and_scipy_pchip_between(demo_run: Pat
     expected = 10 ** mag(np.log10(between)) * np.exp(1j * phase(np.log10(between)))
     np.testing.assert_allclose(device.transfer(between, op), expected, rtol=1e-12)
     # outside the stored span the end values are held
-    np.testing.assert_allclose(device.transfer(np.array([1.0, 1e8]), op), ratio[[0, -1]], rtol=1e-12)
+    np.testing.assert_allclose(
+        device.transfer(np.array([1.0, 1e8]), op), ratio[[0, -1]], rtol=1e-12
+    )
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 4, 9, 30])
@@ -183,7 +185,9 @@ def test_pchip_matches_scipy(n: int) -> None:
     if n == 1:
         assert np.all(ours(inside) == y[0])
         return
-    np.testing.assert_allclose(ours(inside), PchipInterpolator(x, y)(inside), rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(
+        ours(inside), PchipInterpolator(x, y)(inside), rtol=1e-12, atol=1e-12
+    )
     np.testing.assert_allclose(ours(np.array([x[0] - 5, x[-1] + 5])), [y[0], y[-1]])
 
 

@@ -99,13 +99,22 @@ def plan_capture(
     pin_noise_density: float | None = None,
     calibration_uncertainty: float = 0.0,
     min_samples_per_cycle: int = DEFAULT_MIN_SAMPLES_PER_CYCLE,
+    density_at_f: float = 0.0,
+    pin_density_at_f: float = 0.0,
+    max_record_time: float | None = None,
 ) -> CapturePlan:
     """Least-bench-time capture of one point (amplitudes peak V at the scope input).
 
     Noise (output channel; the pin channel uses the same unless given): noise_sigma (V rms
     per sample) or noise_density (V/√Hz, one-sided), white up to noise_bandwidth (Hz) and
     aliased by sampling below 2× that; without a bandwidth, noise_sigma is taken as white at
-    whatever rate is chosen (a scope's own quantiser-like noise).
+    whatever rate is chosen (a scope's own quantiser-like noise). density_at_f and
+    pin_density_at_f (V²/Hz) add a part that does not depend on the sample rate (coloured
+    noise at f: flicker, a node's own noise) to the output's and the pin's density.
+
+    max_record_time (s) keeps records at most this long unless none that short holds
+    min_cycles (then the shortest that does): a capture meant to be topped up with more
+    records of the same timebase wants records much shorter than its whole need.
     """
     if not (frequency > 0 and pin_amplitude > 0 and output_amplitude > 0):
         raise AnalysisError(
@@ -125,22 +134,33 @@ def plan_capture(
     intervals = sorted(float(dt) for dt in scope.sample_intervals)
     max_averages = max(int(scope.max_averages), 1)
     min_record_time = min_cycles / frequency
+    if density_at_f < 0 or pin_density_at_f < 0:
+        raise AnalysisError("a noise density cannot be negative")
+    longest = math.inf
+    if max_record_time is not None:
+        holding = [
+            n * dt
+            for dt in intervals
+            for n in lengths
+            if n * dt >= min_record_time * (1 - 1e-9)
+            and dt * frequency * min_samples_per_cycle <= 1.0
+        ]
+        longest = max(max_record_time, min(holding, default=math.inf))
     best: tuple[tuple[float, ...], CapturePlan] | None = None
     for dt in intervals:
         if dt * frequency * min_samples_per_cycle > 1.0:
             continue
         weight = (
             _effective_density(dt, pin_noise_sigma, pin_noise_density, noise_bandwidth)
-            / pin_amplitude**2
-        )
+            + pin_density_at_f
+        ) / pin_amplitude**2
         weight += (
-            _effective_density(dt, noise_sigma, noise_density, noise_bandwidth)
-            / output_amplitude**2
-        )
+            _effective_density(dt, noise_sigma, noise_density, noise_bandwidth) + density_at_f
+        ) / output_amplitude**2
         needed = DB_PER_NEPER**2 * weight / budget if budget > 0 else math.inf
         for length in lengths:
             duration = length * dt
-            if duration < min_record_time * (1 - 1e-9):
+            if duration < min_record_time * (1 - 1e-9) or duration > longest * (1 + 1e-9):
                 continue
             total = (
                 max(1, math.ceil(needed / duration * (1 - 1e-12)))

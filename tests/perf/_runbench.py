@@ -173,7 +173,12 @@ class BenchClock:
                 sleep(seconds)
                 return
             if self._point is not None and tag == "point":
-                tag = SETTLE if self._point.top_sleeps == 0 else TRIM_SETTLE
+                if getattr(sequencer, "activity", None) == "trim":
+                    tag = TRIM_SETTLE
+                elif hasattr(sequencer, "activity"):
+                    tag = SETTLE
+                else:
+                    tag = SETTLE if self._point.top_sleeps == 0 else TRIM_SETTLE
                 self._point.top_sleeps += 1
             target = self._point.seconds if self._point is not None else self.outside
             target[tag] += float(seconds)
@@ -214,7 +219,12 @@ class BenchClock:
         def capture_ranged(*args: Any, **kwargs: Any) -> Any:
             point = self._point
             assert point is not None
-            if point.extension:
+            activity = getattr(seq, "activity", None)
+            if activity is not None:  # a sequencer that says what it is doing
+                phase = {"capture": PLANNED, "trim": TRIM_CAPTURE, "top-up": EXTENSION}.get(
+                    activity, OTHER
+                )
+            elif point.extension:
                 phase = EXTENSION
             else:
                 phase = (RANGING, PLANNED)[point.captures] if point.captures < 2 else TRIM_CAPTURE
@@ -239,6 +249,8 @@ class BenchClock:
                 self._tags.pop()
 
         seq._capture_ranged = capture_ranged
+        if not hasattr(seq, "_longer_capture"):
+            return
         longer = seq._longer_capture
 
         def longer_capture(*args: Any, **kwargs: Any) -> Any:
