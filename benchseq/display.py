@@ -83,7 +83,7 @@ class RunDisplay:
             "sweep",
             total=total,
             completed=done,
-            left=f"planned bench time ≈ {duration_text(bench_time_left)}",
+            left=f"planned bench time ≈ {duration_text(bench_time_left)} (at least)",
         )
         self.live = Live(self._render(), console=console, refresh_per_second=4, transient=False)
 
@@ -107,9 +107,11 @@ class RunDisplay:
             self.latest.append(event.row)
             self.bench_spent += float(event.row.get("bench_time", 0.0))
             done = event.done
-            left = max(0.0, (self.total - done) * self.per_point)
+            left = event.bench_time_left
+            if not left > 0:  # a sink without the learnt figure: the plan's share
+                left = max(0.0, (self.total - done) * self.per_point)
             self.progress.update(
-                self.task, completed=done, left=f"planned bench time left ≈ {duration_text(left)}"
+                self.task, completed=done, left=f"bench time left ≈ {duration_text(left)}"
             )
         elif event.kind == "point_started":
             self.progress.update(self.task, completed=event.done)

@@ -142,6 +142,7 @@ class Sequencer:
         # what the bench is doing now ("power-up", "operating point", "settle", "capture",
         # "trim", "top-up", "floor"): for progress displays and the run benchmarks
         self.activity = "idle"
+        self._eta = BenchTimeLeft(plan, self.sweep, self.corners.slowest_time_constant_s)
 
     # -- the whole run ---------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -162,6 +163,7 @@ class Sequencer:
                 bench_time_left=self.planned_bench_time * len(todo) / max(total, 1),
             )
         )
+        left = set(todo)
         try:
             if todo:
                 self._with_recoveries("power-up", lambda: self._power_up(todo[0]))
@@ -179,6 +181,8 @@ class Sequencer:
                     carry = Carry.from_row(row)
                 if int(row["point_id"]) in self._has_repeats:
                     self._rows[int(row["point_id"])] = row
+                left.discard(i)
+                self._eta.learn(i, float(row["bench_time"]))
                 counts["measured"] += 1
                 counts["bounds"] += int(bool(row["is_bound"]))
                 counts["flagged"] += int(bool(row["flags"]))
@@ -189,6 +193,7 @@ class Sequencer:
                         row=row,
                         done=len(stored) + position + 1,
                         total=total,
+                        bench_time_left=self._eta.left(left),
                     )
                 )
                 self._check_stop_rules(row)
@@ -892,6 +897,40 @@ class Sequencer:
             steps = [f"safe state incomplete: {exc}"]
             self.emit(Event("warning", steps[0]))
         return list(steps)
+
+
+class BenchTimeLeft:
+    """The bench time the points still to measure will take, learnt as the run goes.
+
+    Before any point: the check's cycle-bound estimate per point (settle + capture), which
+    is a lower bound (noise-bound points take longer). Then a point at a frequency already
+    measured is expected to take what the last point there took (same frequency, the same
+    noise to average), and any other its estimate times the ratio measured/estimated over
+    the points so far."""
+
+    def __init__(self, plan: Plan, sweep: Sweep, slowest_time_constant_s: float) -> None:
+        from benchseq.check import capture_seconds
+
+        captures, _ = capture_seconds(np.asarray(sweep.frequency), plan)
+        settle = plan.settle.fixed_s + plan.settle.time_constants * slowest_time_constant_s
+        self.estimate = np.asarray(captures, dtype=float) + settle
+        self.frequency = np.asarray(sweep.frequency, dtype=float)
+        self._seen: dict[float, float] = {}
+        self._estimated = 0.0
+        self._measured = 0.0
+
+    def learn(self, i: int, bench_time: float) -> None:
+        self._seen[round(float(self.frequency[i]), 6)] = bench_time
+        self._estimated += float(self.estimate[i])
+        self._measured += bench_time
+
+    def left(self, remaining: set[int]) -> float:
+        ratio = self._measured / self._estimated if self._estimated > 0 else 1.0
+        total = 0.0
+        for i in remaining:
+            seen = self._seen.get(round(float(self.frequency[i]), 6))
+            total += seen if seen is not None else float(self.estimate[i]) * ratio
+        return total
 
 
 class _StopRun(Exception):

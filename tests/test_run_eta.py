@@ -1,0 +1,76 @@
+"""The bench time left that the run shows: learnt from the points measured.
+
+Reference: the bench time the run actually spent on the points still to come (the stored
+rows' bench_time), on the simulated bench (Fernhollow bay 2, FV-33 board, two input
+levels so the second block repeats the first one's frequencies)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from benchseq.plan import parse_plan
+from benchseq.runner import start_run
+from benchseq.sequencer import BenchTimeLeft
+from benchseq.store import read_results
+from benchseq.tomlfile import parse_toml_text
+
+PLAN = """
+title = "FV-33 two levels, low frequencies (bench time left)"
+operator = "T. Varga-Ellison"
+[device]
+name = "FV-33 regulator evaluation board"
+absolute_max = "6 V"
+min_operating = "3.8 V"
+[sweep]
+order = ["dc", "ripple", "frequency"]
+dc = ["4.5 V", "5 V"]
+ripple = ["100 mVpp"]
+frequency = { at = ["20 Hz", "60 Hz", "200 Hz", "2 kHz", "20 kHz"] }
+[settle]
+after_operating_point = "0.5 s"
+[capture]
+min_cycles = 10
+max_time = "10 s"
+target_uncertainty = "0.1 dB"
+"""
+
+
+def _plan():
+    text, data = parse_toml_text(PLAN, "eta.toml")
+    return parse_plan(data, "eta.toml", text)
+
+
+def test_estimates_learn_from_measured_points() -> None:
+    plan = _plan()
+    sweep = plan.expand()
+    eta = BenchTimeLeft(plan, sweep, 0.1)
+    everything = set(range(len(sweep)))
+    assert eta.left(everything) == pytest.approx(float(np.sum(eta.estimate)))
+    eta.learn(0, 10 * float(eta.estimate[0]))  # 20 Hz took ten times its estimate
+    later_20hz = int(np.nonzero(np.isclose(sweep.frequency, 20.0))[0][1])
+    other = 1
+    assert eta.left({later_20hz}) == pytest.approx(10 * float(eta.estimate[0]))
+    assert eta.left({other}) == pytest.approx(10 * float(eta.estimate[other]))
+
+
+def test_shown_bench_time_left_follows_what_the_rest_took(tmp_path: Path) -> None:
+    """After the first block the figure shown is within 25 % of the bench time the second
+    block then took; the check's cycle-bound estimate of the same points is far below it."""
+    (tmp_path / "eta.toml").write_text(PLAN, encoding="utf-8")
+    events = []
+    outcome, path = start_run(
+        str(tmp_path / "eta.toml"), None, str(tmp_path / "eta.h5"), emit=events.append
+    )
+    assert outcome.status == "complete"
+    rows = read_results(path).sort_values("point_id")
+    stored = [e for e in events if e.kind == "point_stored"]
+    assert len(stored) == 10
+    shown = stored[4].bench_time_left  # after the 4.5 V block
+    actual = float(rows["bench_time"].iloc[5:].sum())
+    assert abs(shown / actual - 1) <= 0.25, (shown, actual)
+    eta = BenchTimeLeft(_plan(), _plan().expand(), 0.1)
+    assert float(np.sum(eta.estimate[5:])) < 0.8 * actual
+    assert stored[-1].bench_time_left == 0.0
