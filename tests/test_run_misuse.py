@@ -14,6 +14,7 @@ import shutil
 import socket
 import subprocess
 import sys
+import tempfile
 import threading
 import time
 from collections.abc import Iterator
@@ -179,35 +180,47 @@ def test_folder_without_write_permission(
     tmp_path: Path, opened: Keeper, capsys: pytest.CaptureFixture[str]
 ) -> None:
     """A folder the user may not write to: mode 0555, or as root (whom permission bits do
-    not bind) the file system's immutable attribute (chattr +i): exit 2, no bench opened."""
-    plan = _plan(tmp_path, '"1 kHz"')
-    folder = tmp_path / "locked"
+    not bind) the file system's immutable attribute (chattr +i), or where that is not
+    available the run made with an ordinary user's effective id (nobody, 65534), whom the
+    mode binds: exit 2, no bench opened."""
+    as_root = os.geteuid() == 0
+    chattr = shutil.which("chattr") if as_root else None
+    base = tmp_path
+    if as_root:
+        # a scratch folder an ordinary user can traverse, in case the run drops to one
+        base = Path(tempfile.mkdtemp(prefix="benchseq-locked-"))
+        base.chmod(0o755)
+    plan = _plan(base, '"1 kHz"')
+    plan.chmod(0o644)
+    folder = base / "locked"
     folder.mkdir()
     out = folder / "r.h5"
-    as_root = os.geteuid() == 0
-    if as_root:
-        chattr = shutil.which("chattr")
-        locked = (
-            chattr is not None
-            and subprocess.run(
-                [chattr, "+i", str(folder)], capture_output=True, timeout=10
-            ).returncode
-            == 0
-        )
-        if not locked:
-            pytest.skip("running as root where chattr +i is not available (see the EROFS test)")
-        refusal = os.strerror(errno.EPERM)
-    else:
+    locked = (
+        chattr is not None
+        and subprocess.run([chattr, "+i", str(folder)], capture_output=True, timeout=10).returncode
+        == 0
+    )
+    refusal = os.strerror(errno.EPERM if locked else errno.EACCES)
+    if not locked:
         folder.chmod(0o555)
-        refusal = os.strerror(errno.EACCES)
+    drop = as_root and not locked
+    if drop:  # load what the command renders with while the interpreter's files are readable
+        assert _cli(capsys, "check", str(plan))[0] == 0
     try:
-        code, _, err = _cli(capsys, "run", str(plan), "--out", str(out))
+        if drop:
+            os.seteuid(65534)
+        try:
+            code, _, err = _cli(capsys, "run", str(plan), "--out", str(out))
+        finally:
+            if drop:
+                os.seteuid(0)
         assert list(folder.iterdir()) == []
     finally:
+        if locked:
+            subprocess.run([chattr or "chattr", "-i", str(folder)], timeout=10)
+        folder.chmod(0o755)
         if as_root:
-            subprocess.run([shutil.which("chattr") or "chattr", "-i", str(folder)], timeout=10)
-        else:
-            folder.chmod(0o755)
+            shutil.rmtree(base, ignore_errors=True)
     assert code == 2, err
     assert str(out) in err and refusal in err
     assert opened.sessions == []
