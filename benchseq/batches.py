@@ -167,7 +167,7 @@ class Pool:
         self.batches = 0
         self.interval = math.nan
 
-    def add(self, pins: list, outs: list, averages: int, bench: float, interval: float) -> None:
+    def add(self, pins: list, outs: list, interval: float, averages: int, bench: float) -> None:
         """Waveforms (benchseq.drivers.scope.Waveform) of one batch, each the scope's
         average of ``averages`` triggered records."""
         a = int(averages)

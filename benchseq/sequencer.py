@@ -136,7 +136,6 @@ class Sequencer:
         self._freq_now: float | None = None
         self._pin_dc = float("nan")
         self.calibration = calibration  # channel match applied to every ratio (None: none)
-        self._last_waveforms: tuple[Any, Any, float] | None = None
         self._pool: batches.Pool | None = None  # the last point's pooled records
         self._ac_corner = 0.0  # Hz, the scope's AC-coupling corner once measured (0: none)
         # what the bench is doing now ("power-up", "operating point", "settle", "capture",
@@ -510,13 +509,9 @@ class Sequencer:
             )
             clock.sleep(self.plan.settle.fixed_s + 3.0 * self.corners.coupling_time_constant_s)
         pool = self._pool = batches.Pool()
-        pool.add(*waves, probe.averages, probe.bench_time, self._last_waveforms[2])
+        pool.add(*waves, probe.averages, probe.bench_time)
         capped = False
         detecting = 0
-        cal_u = 0.0
-        if self.calibration is not None:
-            found = self.calibration.lookup(result.frequency)
-            cal_u = found.uncertainty if found.inside else 0.0
         carried_ratio = 10 ** (-carry.rejection_db / 20.0)
         for _ in range(batches.MAX_TOP_UPS):
             more = batches.top_up(
@@ -528,7 +523,7 @@ class Sequencer:
                 rules.target_uncertainty_db,
                 rules.max_time_s,
                 carried_ratio,
-                cal_u,
+                result.calibration_uncertainty,
             )
             capped = more.capped
             if more.records < 1 or (more.detecting and detecting >= batches.MAX_DETECT_TOP_UPS):
@@ -540,7 +535,7 @@ class Sequencer:
                 extra, actual_frequency, pin_range, out_range, flags
             )
             captures += used
-            pool.add(*waves, extra.averages, extra.bench_time, self._last_waveforms[2])
+            pool.add(*waves, extra.averages, extra.bench_time)
             result = self._pooled_result(pool, actual_frequency, pin_range, out_range)
         if pool.batches == 1:  # the stored numbers always come from the pooled codes
             result = self._pooled_result(pool, actual_frequency, pin_range, out_range)
@@ -763,18 +758,17 @@ class Sequencer:
         pin_range: float,
         out_range: float,
         flags: list[str],
-    ) -> tuple[float, float, analysis.PointMeasurement, int, tuple[list[Any], list[Any]]]:
+    ) -> tuple[float, float, analysis.PointMeasurement, int, tuple[list[Any], list[Any], float]]:
         """Capture, re-ranging a channel that clipped or wasted codes (bounded tries).
         Returns the ranges, the capture's measurement, the acquisitions made and the
-        capture's waveforms (as read, pin and output)."""
+        capture's waveforms (as read, pin and output) and their sample interval."""
         used = 0
         pin_ch, out_ch = self.bench.scope.pin, self.bench.scope.output
         pin_ranges, out_ranges = self._tip_ranges(pin_ch), self._tip_ranges(out_ch)
         while True:
             pins, outs, interval = self._acquire(plan, pin_range, out_range)
-            self._last_waveforms = (pins[-1], outs[-1], interval)
             used += 1
-            waves = (pins, outs)
+            waves = (pins, outs, interval)
             result = analysis.measure_point(
                 np.vstack([w.volts() for w in pins]),
                 np.vstack([w.volts() for w in outs]),

@@ -48,7 +48,7 @@ def test_pool_is_the_weighted_mean_of_its_records_exactly() -> None:
     ]
     weights, volts = [], []
     for waves, averages in batches_in:
-        pool.add(waves, waves, averages, 0.1, 1e-6)
+        pool.add(waves, waves, 1e-6, averages, 0.1)
         for w in waves:
             weights.append(averages)
             volts.append(w.volts())
@@ -69,8 +69,8 @@ def test_pool_across_ranges_is_close_not_exact() -> None:
     rng = np.random.default_rng(5)
     pool = batches.Pool()
     a, b = _waves(rng, 1, 8, 0.08), _waves(rng, 1, 8, 0.2)
-    pool.add(a, a, 1, 0.1, 1e-6)
-    pool.add(b, b, 1, 0.1, 1e-6)
+    pool.add(a, a, 1e-6, 1, 0.1)
+    pool.add(b, b, 1e-6, 1, 0.1)
     expected = (a[0].volts() + b[0].volts()) / 2
     pin, _ = pool.mean()
     assert not pool.exact
@@ -82,10 +82,10 @@ def test_pool_refuses_another_record_length() -> None:
     rng = np.random.default_rng(6)
     pool = batches.Pool()
     a = _waves(rng, 1, 8, 0.08)
-    pool.add(a, a, 1, 0.1, 1e-6)
+    pool.add(a, a, 1e-6, 1, 0.1)
     short = [Wave(a[0].codes[:100], a[0].volts_per_code)]
     with pytest.raises(ValueError, match="record length"):
-        pool.add(short, short, 1, 0.1, 1e-6)
+        pool.add(short, short, 1e-6, 1, 0.1)
 
 
 def _result(pin: float, pin_sigma: float, out: float, floor: float, bound: bool = False):
@@ -167,7 +167,7 @@ def test_pooled_top_ups_do_not_bias_the_rejection() -> None:
             step = 1e-6
             pins = [Wave(np.rint(p / step).astype(np.int32), step, probe=1.0) for p, _ in waves]
             outs = [Wave(np.rint(o / step).astype(np.int32), step, probe=1.0) for _, o in waves]
-            pool.add(pins, outs, 1, records * 0.002, 1 / fs)
+            pool.add(pins, outs, 1 / fs, 1, records * 0.002)
             pin, out = pool.mean()
             result = analysis.measure_point(pin, out, 1 / fs, f, refine=False)
             more = batches.top_up(

@@ -56,6 +56,7 @@ class PointMeasurement:
     output_codes: CodeCheck | None
     calibrated: bool
     flags: tuple[str, ...]
+    calibration_uncertainty: float = 0.0  # relative, of the channel match divided out
 
     def to_row(self) -> dict[str, Any]:
         """Plain values for a results table (complex phasors, floats, a space-separated flag string)."""
@@ -213,4 +214,5 @@ def measure_point(
         output_codes=out_check,
         calibrated=calibrated,
         flags=tuple(dict.fromkeys(flags)),
+        calibration_uncertainty=cal_u,
     )
