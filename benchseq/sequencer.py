@@ -162,7 +162,7 @@ class Sequencer:
                 bench_time_left=self.planned_bench_time * len(todo) / max(total, 1),
             )
         )
-        left = set(todo)
+        self._eta.begin(todo)
         try:
             if todo:
                 self._with_recoveries("power-up", lambda: self._power_up(todo[0]))
@@ -180,7 +180,6 @@ class Sequencer:
                     carry = Carry.from_row(row)
                 if int(row["point_id"]) in self._has_repeats:
                     self._rows[int(row["point_id"])] = row
-                left.discard(i)
                 self._eta.learn(i, float(row["bench_time"]))
                 counts["measured"] += 1
                 counts["bounds"] += int(bool(row["is_bound"]))
@@ -192,7 +191,7 @@ class Sequencer:
                         row=row,
                         done=len(stored) + position + 1,
                         total=total,
-                        bench_time_left=self._eta.left(left),
+                        bench_time_left=self._eta.left(),
                     )
                 )
                 self._check_stop_rules(row)
@@ -908,23 +907,35 @@ class BenchTimeLeft:
         captures, _ = capture_seconds(np.asarray(sweep.frequency), plan)
         settle = plan.settle.fixed_s + plan.settle.time_constants * slowest_time_constant_s
         self.estimate = np.asarray(captures, dtype=float) + settle
-        self.frequency = np.asarray(sweep.frequency, dtype=float)
-        self._seen: dict[float, float] = {}
+        keys, self._key = np.unique(
+            np.round(np.asarray(sweep.frequency, dtype=float), 6), return_inverse=True
+        )
+        self._seen = np.full(keys.size, np.nan)  # s the last point at each frequency took
+        self._todo = np.zeros(self.estimate.size, dtype=bool)
         self._estimated = 0.0
         self._measured = 0.0
 
+    def begin(self, todo: list[int]) -> None:
+        """The points this session will measure (by position in the sweep)."""
+        self._todo[:] = False
+        self._todo[np.asarray(todo, dtype=np.int64)] = True
+
     def learn(self, i: int, bench_time: float) -> None:
-        self._seen[round(float(self.frequency[i]), 6)] = bench_time
+        self._seen[self._key[i]] = bench_time
+        self._todo[i] = False
         self._estimated += float(self.estimate[i])
         self._measured += bench_time
 
-    def left(self, remaining: set[int]) -> float:
+    def left(self, remaining: set[int] | None = None) -> float:
+        """Bench time (s) of ``remaining`` (positions; default: the points not yet learnt
+        of those begun). Vectorised: one pass over the points, whatever their number."""
+        if remaining is None:
+            index = np.flatnonzero(self._todo)
+        else:
+            index = np.fromiter(remaining, dtype=np.int64, count=len(remaining))
         ratio = self._measured / self._estimated if self._estimated > 0 else 1.0
-        total = 0.0
-        for i in remaining:
-            seen = self._seen.get(round(float(self.frequency[i]), 6))
-            total += seen if seen is not None else float(self.estimate[i]) * ratio
-        return total
+        seen = self._seen[self._key[index]]
+        return float(np.where(np.isnan(seen), self.estimate[index] * ratio, seen).sum())
 
 
 class _StopRun(Exception):
