@@ -402,7 +402,7 @@ class ScopeSettings:
 class Scope(ScpiInstrument):
     """A four-channel 8-bit digitiser; its capabilities are the profile's [capabilities]."""
 
-    identity = "benchseq,SIM-SCOPE,DS0001,0.1"
+    identity = "benchseq,SIM-SCOPE,SC0001,0.1"
     channel_count = 4
 
     def __init__(self, bench: SimulatedBench, capabilities: dict) -> None:

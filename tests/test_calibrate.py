@@ -289,7 +289,7 @@ def test_condition_mismatches_names_each_difference(lab: dict[str, Any]) -> None
         == []
     )
     # a firmware update alone is not a different scope; another serial number is
-    same_unit = "benchseq,SIM-SCOPE,DS0001,9.9"
+    same_unit = "benchseq,SIM-SCOPE,SC0001,9.9"
     assert cal.condition_mismatches(loaded, bench, {"scope": same_unit}) == []
     other = cal.condition_mismatches(loaded, bench, {"scope": "benchseq,SIM-SCOPE,DS0777,0.1"})
     assert len(other) == 1 and other[0].startswith("scope:")

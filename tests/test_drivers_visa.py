@@ -35,7 +35,7 @@ from benchseq.drivers.profile import load_profile  # noqa: E402
 from benchseq.drivers.session import scan  # noqa: E402
 from benchseq.drivers.visa import VisaTransport  # noqa: E402
 
-IDN = "Fernhollow Test Works,TCP-1,0001,1.0"
+IDN = "Fernhollow validation lab,TCP-1,0001,1.0"
 TIMEOUT = 0.3  # s, client timeout in these tests
 
 
