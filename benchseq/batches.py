@@ -273,7 +273,7 @@ def top_up(
     """More records for a pooled capture that misses the target, from what it shows.
 
     Detected: the noise part of the uncertainty, u_n² = (20/ln 10)²·[(σ_c/A_out)² +
-    (σ_pin/A_pin)²], falls as 1/T (MEASUREMENT.md), so the pool needs T·u_n²/(u_t² − u_cal²).
+    (σ_pin/A_pin)²], falls as 1/T (Kay, Estimation Theory, ch. 3), so the pool needs T·u_n²/(u_t² − u_cal²).
     Not detected: enough to see an output at max(expected_ratio·A_pin, 4σ_c) with σ_A/A of
     1 dB. Records are whole; the pool's bench time stays within max_time_s."""
     rej = result.rejection

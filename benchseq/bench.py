@@ -101,7 +101,7 @@ class OpAmp:
 
 @dataclass(frozen=True)
 class InjectorValues:
-    """Component values of the op-amp injector (names as in DESIGN.md's physics section)."""
+    """Component values of the op-amp injector (names as in the contributor guide's injector section)."""
 
     input_resistor: float  # Ω, Rin
     coupling_capacitor: float  # F, Cc

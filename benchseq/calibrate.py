@@ -162,8 +162,8 @@ def table_from_rows(
     √((σ_pin/A_pin)² + (σ_out/A_out)²) — the channels' noise taken as uncorrelated, which is
     conservative since both probes share the pin's own noise — combined with each channel's
     quantiser bound (``quantiser_bound``) taken as a rectangular distribution (bound/√3).
-    Uncertainty of arg H: the fits' figure in radians (σ_θ = σ_A/A for a sine fit,
-    MEASUREMENT.md). When the points scatter about their neighbours more than these allow
+    Uncertainty of arg H: the fits' figure in radians (σ_θ = σ_A/A for a sine fit; Kay,
+    Estimation Theory, ch. 3). When the points scatter about their neighbours more than these allow
     (coloured noise, say), each part is multiplied by its Birge ratio (``birge_ratio``).
     """
     rows = sorted(rows, key=lambda r: float(r["frequency_fitted"]))

@@ -22,7 +22,7 @@ Exact closed form (s = j·2π·f, Rg = Rs + Rin, Zin = Rg + 1/(s·Cc)):
     loop gain L = A·beta / (1 + Ro·(Ypin + y_fb))
 
 Writing D = (1 + A·beta + Ro·y_fb)·(1 + Zout·Ypin) shows V_pin = V_thevenin·Zpin/(Zpin + Zout);
-dropping Ro·y_fb against 1 + A·beta and Ro/Rf against A gives DESIGN.md's approximation
+dropping Ro·y_fb against 1 + A·beta and Ro/Rf against A gives the textbook approximation
 (Zout = Ro/(1+T), H_ac = −(Rf/Zin)·T/(1+T) with T = A·beta, followed by the pin divider).
 """
 

@@ -1,7 +1,7 @@
 """What every role class shares: settings that are checked and remembered, queries that
 are retried, and recovery that restores the instrument's whole known state.
 
-Rules (FIELD.md, "pitfalls of unattended sweeps", and the planning experiments):
+Rules (common practice for unattended sweeps, and the planning experiments):
 - after each configuration step the error queue is drained (SYST:ERR? until code 0); an
   entry raises InstrumentReportedError naming the instrument, the command and the error;
 - an entry of the passing kind (SCPI -3xx device-specific and -4xx query errors, e.g.

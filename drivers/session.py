@@ -28,7 +28,7 @@ from benchseq.drivers.scope import Scope
 from benchseq.drivers.supply import Supply
 from benchseq.drivers.transport import Transport
 
-SAFE_ORDER = ("generator", "load", "supply")  # FIELD.md: generator, then load, then supply
+SAFE_ORDER = ("generator", "load", "supply")  # common practice: generator, then load, then supply
 
 
 class MonotonicClock:

@@ -145,7 +145,7 @@ class Regulator:
 @dataclass(frozen=True)
 class Amplifier:
     """An amplifier whose rejection is referred to its input: output ripple = pin ripple /
-    PSRR_in(f) × noise gain (FIELD.md: "Definitions"). PSRR_in(f) = P0/(1 + jf/f_p); the
+    PSRR_in(f) × noise gain (input-referred rejection, common practice). PSRR_in(f) = P0/(1 + jf/f_p); the
     closed-loop gain rolls off at GBW/noise gain. Below its minimum supply it stops rejecting.
     """
 

@@ -19,7 +19,7 @@ which the tests use as the reference). Outside the stored span the end values ar
 * Noise: ``output_floor`` is the per-quadrature floor σ_c a fit at f saw. With T = record
   length × sample interval × averages (one read record assumed: rows do not store how
   many averaged waveforms were read), S = σ_c²·T is the one-sided density at f after
-  aliasing (σ_c = √(S/T), MEASUREMENT.md). The simulated scope's own front-end and
+  aliasing (σ_c = √(S/T)). The simulated scope's own front-end and
   quantisation noise at the stored range is subtracted (never below 1 % of S), and the rest
   is taken as broadband device noise folded by the sampling as the simulator folds it
   (sim/synth.py: density e, bandwidth set by the scope, effective e²·max(1, π·B·Δt)).

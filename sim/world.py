@@ -225,7 +225,7 @@ class SimulatedBench:
 
     def setpoint(self, at: float | None = None) -> float:
         """Voltage on the op-amp's + input (V): the supply's level seen through the bias
-        filter, settling as exp(−t/(Rb·Cb)) after each change (FIELD.md "Settling")."""
+        filter, settling as exp(−t/(Rb·Cb)) after each change (first-order settling)."""
         if not self.scenario.bias_settling:
             return self.supply_output().voltage
         at = self.clock.now() if at is None else at

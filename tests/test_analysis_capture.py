@@ -1,5 +1,5 @@
-"""Capture planning against the worked examples of MEASUREMENT.md ("Capture length, per
-point", figures marked (exp) from planning) and the GUM/Cramér–Rao formula behind them:
+"""Capture planning against worked examples from the project's own planning experiments
+(pin 100 mV, noise 100 µV, target 0.1 dB, 10 cycles minimum) and the GUM/Cramér–Rao formula behind them:
 N ≈ 150.9·σ²/(A²·u_dB²), σ_A² ≈ S/T, coherence f' = J/T with a shift ≤ 1/(2J) (IEEE Std 1241).
 
 The examples' noise, 100 µV, is taken as white over the 20 MHz bandwidth limit of the
@@ -44,7 +44,7 @@ def _plan(scope: ScopeTimebase, f: float, rejection_db: float, **kw: float):
 
 
 def test_low_frequency_is_cycle_bound(scope: ScopeTimebase) -> None:
-    """10 Hz: 10 cycles take 1 s (MEASUREMENT.md (exp); the example gives no rejection at
+    """10 Hz: 10 cycles take 1 s (the planning example; it gives no rejection at
     10 Hz, 60 dB taken here)."""
     plan = _plan(scope, 10.0, 60.0)
     assert plan.limited_by == "cycles" and plan.meets_target
@@ -53,7 +53,7 @@ def test_low_frequency_is_cycle_bound(scope: ScopeTimebase) -> None:
 
 
 def test_mid_frequency_with_80_db_is_noise_bound(scope: ScopeTimebase) -> None:
-    """1 kHz, 80 dB: noise-bound, ≈ 38 ms of record (MEASUREMENT.md (exp)); the offered
+    """1 kHz, 80 dB: noise-bound, ≈ 38 ms of record (the planning example); the offered
     1-2-5 timebases and 1 M-sample memory give 2 × 20 ms."""
     plan = _plan(scope, 1e3, 80.0)
     assert plan.limited_by == "noise" and plan.meets_target
@@ -64,7 +64,7 @@ def test_mid_frequency_with_80_db_is_noise_bound(scope: ScopeTimebase) -> None:
 
 
 def test_high_frequency_with_40_db_is_cycle_bound(scope: ScopeTimebase) -> None:
-    """100 kHz, 40 dB: 10 cycles, 0.1 ms (MEASUREMENT.md (exp))."""
+    """100 kHz, 40 dB: 10 cycles, 0.1 ms (the planning example)."""
     plan = _plan(scope, 1e5, 40.0)
     assert plan.limited_by == "cycles" and plan.meets_target
     assert plan.capture_time == pytest.approx(1e-4)
@@ -72,7 +72,7 @@ def test_high_frequency_with_40_db_is_cycle_bound(scope: ScopeTimebase) -> None:
 
 def test_white_per_sample_noise_follows_the_sample_count_formula() -> None:
     """Per-sample white noise (no bandwidth given): N ≥ 150.9·σ²/(A²u²) samples
-    (MEASUREMENT.md, from var(A) = 2σ²/N and 20/ln 10 = 8.6859)."""
+    (from var(A) = 2σ²/N, Kay, Estimation Theory, ch. 3, and 20/ln 10 = 8.6859)."""
     scope = ScopeTimebase([1e-6], [1000 * k for k in range(1, 2001)], 1, 0.0)
     plan = plan_capture(scope, 1e3, 1.0, 1e-2, 0.1, min_cycles=1, noise_sigma=1e-3)
     need = 150.9 * (1e-3**2) * (1 / 1e-2**2 + 1 / 1.0**2) / 0.1**2
@@ -144,7 +144,7 @@ def test_bad_planning_input() -> None:
 
 def test_coloured_density_adds_to_the_white_part(scope: ScopeTimebase) -> None:
     """σ_A² ≈ S/T with S = 2σ²Δt (white per sample) + S_c (a rate-independent part at f):
-    the plan's expected uncertainty follows the formula with both (MEASUREMENT.md)."""
+    the plan's expected uncertainty follows the formula with both (Kay, Estimation Theory, ch. 3; from memory)."""
     coloured = 4e-13  # V²/Hz
     plan = plan_capture(
         scope, 50.0, 0.05, 5e-6, 0.1, min_cycles=10, noise_sigma=1e-4, density_at_f=coloured

@@ -1,8 +1,8 @@
 """measure_point end to end on synthetic two-channel records with a known truth.
 
 Sources: the GUM standard uncertainty (JCGM 100 §5.1.2) should describe the spread of the
-result (about 68 % within ±u, normalised errors of unit spread); bound semantics as in
-MEASUREMENT.md ("Bound when not detected").
+result (about 68 % within ±u, normalised errors of unit spread); a lower bound built with
+the one-sided normal quantile z = 1.645 (any statistics table) covers ≥ 95 %.
 """
 
 from __future__ import annotations

@@ -1,7 +1,7 @@
 """Rejection arithmetic, value/bound typing and channel calibration.
 
 Sources: GUM, JCGM 100:2008 §5.1.2 (law of propagation of uncertainty) for the dB
-uncertainty; rejection = 20·log10(V_pin/V_out) (FIELD.md definition); a single-pole
+uncertainty; rejection = 20·log10(V_pin/V_out) (common practice: positive when the device attenuates); a single-pole
 low-pass |H| = 1/√(1 + (f/f_c)²), phase −atan(f/f_c) (standard circuit result).
 """
 
@@ -98,7 +98,7 @@ def _single_pole(f: np.ndarray, fc: float) -> np.ndarray:
 
 def test_calibration_interpolates_a_single_pole_residue() -> None:
     """A 20 MHz single-pole bandwidth limit calibrated at 20 points per decade: at f_c/20 the
-    lookup gives −0.011 dB and −2.86° (1/√(1 + 0.05²), −atan(0.05); MEASUREMENT.md)."""
+    lookup gives −0.011 dB and −2.86° (1/√(1 + 0.05²), −atan(0.05); single-pole RC response)."""
     fc = 20e6
     freqs = np.logspace(1, 7, 121)
     cal = ChannelCalibration.from_sweep(freqs, _single_pole(freqs, fc), 0.002)

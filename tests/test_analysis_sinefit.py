@@ -196,7 +196,7 @@ def test_refinement_refuses_a_channel_at_its_floor() -> None:
 
 
 def test_refinement_converges_within_half_a_bin_and_fails_beyond_a_bin() -> None:
-    """Convergence region of the four-parameter fit (MEASUREMENT.md (exp): all at 0.5 bin,
+    """Convergence region of the four-parameter fit (the project's own planning experiment: all at 0.5 bin,
     none at 1 bin)."""
     fs, n, f = 1e4, 5000, 333.3
     y = np.cos(2 * np.pi * f * np.arange(n) / fs + 2.0)

@@ -64,7 +64,7 @@ def test_noise_only_amplitude_is_rayleigh() -> None:
 
 def test_lower_bound_covers_every_true_amplitude() -> None:
     """Lower limit 20·log10(A_pin/(A_out + 1.645·σ_c)) holds in ≥ 95 % of trials for true
-    output amplitudes 0…10 σ_c (one-sided normal quantile; MEASUREMENT.md (exp) 0.951–1.000).
+    output amplitudes 0…10 σ_c (one-sided normal quantile; the project's own experiment gave 0.951–1.000).
     Each trial goes through rejection(), whether it reports a value or a bound."""
     rng = np.random.default_rng(7)
     n, f = 500, 0.0417
@@ -86,7 +86,7 @@ def test_lower_bound_covers_every_true_amplitude() -> None:
             if rej.is_bound:
                 assert math.isnan(rej.rejection_db) and rej.bound_db == rej.lower_db
         assert covered / TRIALS >= 0.95, (k, covered / TRIALS)
-    # using the detection threshold itself as the bound is not valid (MEASUREMENT.md (exp):
+    # using the detection threshold itself as the bound is not valid (the project's own experiment:
     # coverage 52–79 %): at a true 4 σ_c, "A_out ≤ 3.5 σ_c" is claimed, and wrong, whenever
     # the point is not detected
     true = 4.0 * sigma_c
@@ -129,7 +129,7 @@ def test_widened_quantile_matches_student_t(dof: int) -> None:
 def test_neighbour_floor_is_unbiased_in_white_noise_and_ignores_spurs() -> None:
     """White noise: mean of σ_floor² over records equals σ_c² = 2σ²/N. With harmonics and a
     mains-like spur added, the residual-based σ_c grows but the neighbour floor does not —
-    given a coherent record (f = J/T, as the capture planner sets it: MEASUREMENT.md)."""
+    given a coherent record (f = J/T, as the capture planner sets it: IEEE Std 1241)."""
     rng = np.random.default_rng(4)
     fs, n, f = 10e3, 2000, 255.0  # T = 0.2 s, J = 51
     t = np.arange(n) / fs

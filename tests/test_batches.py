@@ -1,8 +1,8 @@
 """Pooled captures (benchseq.batches): exact pooling of converter codes, top-up sizing and
 the absence of a pooling bias.
 
-Sources: the uncertainty of a fitted amplitude σ_A² ≈ S/T (MEASUREMENT.md "Capture length,
-per point"; GUM JCGM 100 §5.1.2 for adding the channels in quadrature); a weighted mean
+Sources: the uncertainty of a fitted amplitude σ_A² ≈ S/T (Kay, Fundamentals of Statistical
+Signal Processing: Estimation Theory, ch. 3, for white noise; GUM JCGM 100 §5.1.2 for adding the channels in quadrature); a weighted mean
 of records computed directly with numpy as the reference for the pool; the truth of
 synthetic sines for the bias check (an unbiased estimator's mean error is 0 within its
 standard error, and GUM standard uncertainties give normalised errors of unit spread).

@@ -1,6 +1,6 @@
 """IEEE 488.2 definite-length blocks (§8.7.9): our parser against pyvisa's own binary
-reader (pyvisa.util.from_ieee_block, the reference library), the worked example of
-MEASUREMENT.md, and property tests on random bytes: the parser either returns exactly the
+reader (pyvisa.util.from_ieee_block, the reference library), a hand-built example
+following IEEE 488.2 §8.7.9, and property tests on random bytes: the parser either returns exactly the
 declared payload or raises TruncatedBlock, never anything else."""
 
 from __future__ import annotations
@@ -25,7 +25,7 @@ from benchseq.drivers.errors import TruncatedBlock
 
 def test_measurement_md_example():
     """23 31 35 80 FF 00 7F 81 0A = '#15' + five bytes + newline -> int8
-    [-128, -1, 0, 127, -127] (IEEE 488.2 §8.7.9; MEASUREMENT.md)."""
+    [-128, -1, 0, 127, -127] (IEEE 488.2 §8.7.9)."""
     raw = bytes.fromhex("233135 80FF007F81 0A".replace(" ", ""))
     payload = parse_block(raw)
     assert decode_samples(payload, "int8").tolist() == [-128, -1, 0, 127, -127]

@@ -60,7 +60,7 @@ def test_too_much_ripple_at_high_frequency_is_refused() -> None:
 
 
 def test_device_limits_come_from_the_plan() -> None:
-    """DC + ripple above the plan's absolute maximum (6 V) is refused (DESIGN.md)."""
+    """DC + ripple above the plan's absolute maximum (6 V) is refused (common practice: stay inside the device's absolute maximum)."""
     plan = plan_with(dc=["5.98 V"], ripple=["100 mVpp"], frequency={"at": ["1 kHz"]})
     report = check_plan(plan, load_bench(None))
     assert {g.code for g in report.groups if g.severity == "refused"} == {"device-absolute-max"}
@@ -68,7 +68,7 @@ def test_device_limits_come_from_the_plan() -> None:
 
 def test_bench_time_estimate() -> None:
     """Settling per point = settle.wait + time_constants x slowest τ (Rb·Cb = 0.1 s on the
-    demo board, FIELD.md's 5-7 τ rule); a 10 Hz capture of 10 cycles takes 1 s (FIELD.md)."""
+    demo board, the common-practice 5-7 τ rule); a 10 Hz capture of 10 cycles takes 1 s (computed)."""
     plan = plan_with(frequency={"at": ["10 Hz", "20 Hz"]})
     report = check_plan(plan, load_bench(None))
     n = report.point_count
@@ -83,7 +83,7 @@ def test_bench_time_estimate() -> None:
 
 def test_injector_report_spot_table_and_generator_setting() -> None:
     """Spot table at 10 Hz ... 10 MHz; 100 mVpp at the pin needs 100/1.905 = 52.5 mVpp
-    displayed in 50 Ω mode at 1 kHz (FIELD.md's factor, computed)."""
+    displayed in 50 Ω mode at 1 kHz (the 50 Ω-mode factor, computed)."""
     bench = load_bench(None)
     report = injector_report(bench, parse_amplitude("100 mVpp"))
     assert [r.frequency for r in report.rows] == [10, 100, 1e3, 10e3, 100e3, 1e6, 10e6]

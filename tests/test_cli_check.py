@@ -61,7 +61,7 @@ def test_check_missing_bench_file_exits_2(capsys: pytest.CaptureFixture[str]) ->
 
 
 def test_injector_json_and_plot(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    """Passband gain −Rf/(Rs+Rin) = −0.952 for the demo board (FIELD.md worked example,
+    """Passband gain −Rf/(Rs+Rin) = −0.952 for the demo board (computed by hand,
     computed); the 50 Ω-mode generator setting for 100 mVpp is about 100/1.905 mVpp."""
     png = tmp_path / "bode.png"
     assert main(["injector", "--ripple", "100mVpp", "--plot", str(png), "--json"]) == 0

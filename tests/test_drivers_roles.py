@@ -294,7 +294,7 @@ def test_scope_timebase_averaging_and_acquire_with_a_scaled_timeout():
 
 def test_scope_reads_the_ieee_block_of_measurement_md():
     """Bytes 23 31 35 80 FF 00 7F 81 (+ 0A) are '#15' and int8 [-128, -1, 0, 127, -127]
-    (IEEE 488.2 §8.7.9, example in MEASUREMENT.md); volts = code·0.01 V·probe 10."""
+    (IEEE 488.2 §8.7.9; an example built by hand); volts = code·0.01 V·probe 10."""
     scope, t = _scope(
         [
             ("TRAC:PRE? CH1", "0.01,0,0,1e-6,5,INT8"),
@@ -392,7 +392,7 @@ def test_a_restore_gives_up_after_its_fault_budget():
 
 
 def test_restore_puts_limits_and_levels_before_any_output_turns_on():
-    """FIELD.md cautions: set limits before any output turns on. The supply was switched on
+    """Common practice: set limits before any output turns on. The supply was switched on
     and then moved to 5 V; after a lost connection the 5 V level (and the limit) go back
     before OUTP ON, and the generator's OFF goes first."""
     sup, t, _ = on_replay(

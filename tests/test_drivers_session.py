@@ -1,6 +1,6 @@
 """Bench sessions on recorded conversations: opening (identify, clear status, nothing
 switched on), the safe state on fresh connections in the order generator, load, supply
-(FIELD.md, "cautions": generator off, then electronic load, then DC supply (practice)),
+(common practice: generator off, then electronic load, then DC supply),
 and recovery that keeps the safe state."""
 
 from __future__ import annotations

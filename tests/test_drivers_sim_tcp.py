@@ -61,7 +61,7 @@ def _power_up(session, frequency: float = 1000.0) -> float:
     scope.trigger_external()
     actual = gen.set_frequency(frequency)
     # Settle: ~10 bias-filter time constants (Rb·Cb) of capture, which also advances the
-    # simulator's clock (the truth is the settled state; FIELD.md: wait 5-7 time constants).
+    # simulator's clock (the truth is the settled state; common practice: wait 5-7 time constants, e^-5 = 0.7 %).
     settle = 10.0 * bench.injector.bias_resistor * bench.injector.bias_capacitor
     scope.set_timebase(1e-5, round(settle / 1e-5))
     scope.acquire(settle)

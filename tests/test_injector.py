@@ -1,4 +1,4 @@
-"""The injector model against handbook formulas, FIELD.md's worked example and scipy."""
+"""The injector model against handbook formulas, a worked example computed by hand and scipy."""
 
 from __future__ import annotations
 
@@ -23,9 +23,9 @@ def model_of(case: tuple) -> InjectorModel:
     return InjectorModel(*case)
 
 
-# -- FIELD.md's worked example ("(computed)" values there, from its own formulas) ------------
+# -- a worked example (invented values; corners computed by hand from the formulas) --------
 def test_field_example_corners() -> None:
-    """FIELD.md worked example: passband −0.952 (−0.42 dB), high-pass 15.2 Hz (τ 10.5 ms),
+    """Worked example (computed by hand): passband −0.952 (−0.42 dB), high-pass 15.2 Hz (τ 10.5 ms),
     bias low-pass 1.59 Hz, noise gain 1.95, −3 dB near 5.1 MHz (= GBW/noise gain, the
     standard op-amp result)."""
     corners = model_of(field_example()).corners()
@@ -41,14 +41,15 @@ def test_field_example_corners() -> None:
 
 
 def test_field_example_model_gain_in_passband() -> None:
-    """FIELD.md: passband gain −Rf/(Rs+Rin) = −0.952 (ideal limit of DESIGN.md)."""
+    """Passband gain −Rf/(Rs+Rin) = −0.952: the ideal inverting amplifier (Horowitz & Hill,
+    The Art of Electronics, 3rd ed., ch. 4; from memory)."""
     h = model_of(field_example()).ac_gain(MIDBAND)
     assert abs(h) == pytest.approx(1e3 / 1050, rel=1e-3)
     assert abs(np.angle(h, deg=True)) == pytest.approx(180.0, abs=0.5)
 
 
 def test_generator_load_mode_factors() -> None:
-    """FIELD.md: pin ripple per displayed volt is 1.905 in "50 ohm" mode (EMF = 2x displayed,
+    """Computed by hand: pin ripple per displayed volt is 1.905 in "50 ohm" mode (EMF = 2x displayed,
     common practice) and 0.952 in high-Z mode, for Rs = 50 Ω into Rin = Rf = 1 kΩ."""
     values, gen, pin = field_example()
     fifty = InjectorModel(values, gen, pin)
@@ -59,21 +60,21 @@ def test_generator_load_mode_factors() -> None:
 
 def test_full_power_bandwidth() -> None:
     """Horowitz & Hill, The Art of Electronics, 3rd ed.: FPBW = SR/(2π·Vpk);
-    10 V/µs at 0.5 Vpk -> 3.18 MHz (FIELD.md, computed)."""
+    10 V/µs at 0.5 Vpk -> 3.18 MHz (computed)."""
     assert round(model_of(field_example()).full_power_bandwidth(0.5) / 1e6, 2) == 3.18
 
 
 def test_current_into_pin_capacitance() -> None:
-    """FIELD.md (computed from i = 2π·f·C·Vpk): 50 mVpk into 10 µF takes 0.31 A at 100 kHz."""
+    """Computed from i = 2π·f·C·Vpk: 50 mVpk into 10 µF takes 0.31 A at 100 kHz."""
     values, gen, _ = field_example()
     pin = PinLoad(capacitance=10e-6)
     ripple = model_of((values, gen, pin)).output_current_per_pin(100e3) * 0.05
     assert round(abs(complex(ripple)), 2) == 0.31
 
 
-# -- ideal limits and DESIGN.md's approximate form -----------------------------------------
+# -- ideal limits and the textbook closed-loop form ----------------------------------------
 def test_ideal_limits() -> None:
-    """DESIGN.md ideal limits: H_ac -> −Rf/(Rs+Rin) in the passband and 0 at DC;
+    """Ideal inverting/non-inverting amplifier limits (Horowitz & Hill, ch. 4): H_ac -> −Rf/(Rs+Rin) in the passband and 0 at DC;
     H_dc -> 1 at DC and 0 at high frequency (A0 -> large, GBW -> large, Ro = 0)."""
     values, gen, pin = field_example()
     ideal = dataclasses.replace(values, opamp=opamp(open_loop_gain=1e9, gain_bandwidth=1e15))
@@ -86,7 +87,7 @@ def test_ideal_limits() -> None:
 
 
 def _design_form(model: InjectorModel, f: np.ndarray) -> np.ndarray:
-    """DESIGN.md's written form: −(Rf/Zin)·T/(1+T), then Zpin/(Zpin + Ro/(1+T))."""
+    """The textbook closed-loop form (gain·T/(1+T), output resistance Ro/(1+T)): −(Rf/Zin)·T/(1+T), then Zpin/(Zpin + Ro/(1+T))."""
     v = model.values
     s = 2j * np.pi * f
     zin = model.generator.source_resistance + v.input_resistor + 1 / (s * v.coupling_capacitor)
@@ -98,7 +99,7 @@ def _design_form(model: InjectorModel, f: np.ndarray) -> np.ndarray:
 
 
 def test_exact_form_reduces_to_design_form() -> None:
-    """With Ro = 0 the exact form equals DESIGN.md's; with Ro = 2 Ω the dropped terms
+    """With Ro = 0 the exact form equals the textbook form; with Ro = 2 Ω the dropped terms
     (Ro/(Zin+Rf) against 1+T, Ro/Rf against A) stay below 0.05 dB up to 10 MHz."""
     f = np.logspace(0, 7, 200)
     exact = model_of(field_example())
@@ -164,7 +165,7 @@ def test_rational_form_any_values(rin, rf, cc, ro, cpin, esr, a0_db, gbw, load) 
 
 
 def test_slowest_time_constant_is_the_bias_filter() -> None:
-    """From the network's poles: the slowest is Rb·Cb = 0.1 s for FIELD.md's example."""
+    """From the network's poles: the slowest is Rb·Cb = 0.1 s for the worked example."""
     corners = model_of(field_example()).corners()
     assert corners.slowest_time_constant_s == pytest.approx(0.1, rel=1e-3)
 
@@ -227,7 +228,7 @@ def test_slew_limit_at_full_power_bandwidth() -> None:
 
 def test_device_limits_and_output_swing() -> None:
     """Vdc + Vpk above the absolute maximum, Vdc − Vpk below the minimum operating level,
-    and DC ± ripple outside the op-amp's swing are refused (DESIGN.md feasibility list)."""
+    and DC ± ripple outside the op-amp's swing are refused (common practice)."""
     model = demo_model()
     result = model.feasibility(1e3, [0.1, 0.1, 0.1], [5.95, 3.65, 5.0], device=DEVICE)
     assert result.refused_bits[0] & REASON_BIT["device-absolute-max"]
@@ -268,7 +269,7 @@ def test_usable_band_flags_are_marginal() -> None:
 
 
 def test_capacitive_load_peaking_is_reported() -> None:
-    """Ro·Cpin inside the loop (FIELD.md, capacitive loads) costs phase margin: 2 Ω into
+    """Ro·Cpin inside the loop (a capacitive load inside an op-amp loop, common practice) costs phase margin: 2 Ω into
     1 µF with a low-ESR capacitor puts a pole near 80 kHz in a 5 MHz loop; peaking shows
     in the corners. The demo board's 0.5 Ω ESR adds a zero that restores the margin."""
 
@@ -296,7 +297,7 @@ def test_invalid_points_and_vectors() -> None:
 
 
 def test_supply_overvoltage_protection() -> None:
-    """A DC set-point at the supply's over-voltage protection would trip it (FIELD.md:
+    """A DC set-point at the supply's over-voltage protection would trip it (common practice:
     set over-voltage limits before any output turns on): refused when checked."""
     model = demo_model()
     result = model.feasibility(1e3, 0.05, [6.6, 5.0], supply_protection_v=6.5)

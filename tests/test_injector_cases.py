@@ -30,7 +30,8 @@ def opamp(**changes: float) -> OpAmp:
 
 
 def field_example(output_resistance: float = 0.0) -> tuple[InjectorValues, GeneratorSetup, PinLoad]:
-    """FIELD.md's worked injector example: Rin = Rf = 1 kΩ, Cc = 10 µF, Rs = 50 Ω,
+    """A worked injector example (values invented here; corners computed by hand from the
+    inverting-amplifier and RC formulas): Rin = Rf = 1 kΩ, Cc = 10 µF, Rs = 50 Ω,
     Rb = 10 kΩ, Cb = 10 µF, GBW 10 MHz, SR 10 V/µs (A0 = 100 dB, our choice)."""
     values = InjectorValues(
         input_resistor=1e3,

@@ -97,7 +97,7 @@ def test_overnight_plan_counts_and_order() -> None:
 
 
 def test_every_point_of_the_examples_is_inside_the_device_limits() -> None:
-    """Vdc + Vpk <= absolute max and Vdc - Vpk >= minimum operating (FIELD.md, headroom)."""
+    """Vdc + Vpk <= absolute max and Vdc - Vpk >= minimum operating (common practice: a device's absolute maximum and minimum operating level bound the ripple's peaks)."""
     for name in ("demo.toml", "overnight.toml"):
         plan = load_plan(PLANS / name)
         sweep = plan.expand()

@@ -50,7 +50,7 @@ def _outputs(session: Any) -> list[tuple[str, bool]]:
 
 
 def _ends_safe(session: Any) -> None:
-    """FIELD.md cautions (common practice): generator off, then load, then supply; and the
+    """Common practice: generator off, then load, then supply; and the
     simulator's own state says so afterwards."""
     assert _outputs(session)[-2:] == [("generator", False), ("supply", False)]
     truth = session.simulator.truth()

@@ -1,6 +1,6 @@
 """Stopping a run: Ctrl-C (SIGINT), SIGTERM and SIGHUP sent to a real `benchseq run`
 process, a second Ctrl-C, and an exception during a point. Every time the instruments end
-in the safe state in the order of FIELD.md's cautions (common practice): generator output
+in the safe state in the common-practice order: generator output
 off, then the electronic load's input off, then the supply to its safe level (0 V, off).
 
 The bench is `benchseq sim serve --scenario amplifier` (it has an electronic load) in its own

@@ -132,7 +132,7 @@ def test_bounds_are_never_values(demo_run: tuple[Path, Keeper]) -> None:
 
 
 def test_safe_state_order(demo_run: tuple[Path, Keeper]) -> None:
-    """On ending: generator off, then load, then supply (FIELD.md cautions, common practice)."""
+    """On ending: generator off, then load, then supply (common practice)."""
     log = demo_run[1].sessions[0].simulator.log
     outputs = [(c.role, c.value) for c in log if c.what == "output"]
     assert outputs[-2:] == [("generator", False), ("supply", False)]

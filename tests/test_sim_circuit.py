@@ -21,7 +21,7 @@ from benchseq.sim.devices import Amplifier, OperatingPoint, PinImpedance, Regula
 
 FREQS = np.logspace(0, 8, 8 * 6 + 1)  # 1 Hz .. 100 MHz, 6 per decade
 
-# FIELD.md's worked example values (Rin = Rf = 1 kΩ, Cc = 10 µF, Rs = 50 Ω, Rb = 10 kΩ,
+# The worked example's values (invented) (Rin = Rf = 1 kΩ, Cc = 10 µF, Rs = 50 Ω, Rb = 10 kΩ,
 # Cb = 10 µF, GBW 10 MHz), Ro = 0.2 Ω into 1 µF with 0.5 Ω ESR.
 FIELD = InjectorCircuit(
     source_resistance=50.0, input_resistor=1e3, coupling_capacitor=10e-6,
@@ -134,7 +134,7 @@ def test_dc_swing_and_current_limits() -> None:
 
 
 def test_injector_passband_gain_is_field_example() -> None:
-    """FIELD.md (computed): passband gain −Rf/(Rs+Rin) = −0.952 (−0.42 dB) at 1 kHz."""
+    """Computed by hand (ideal inverting amplifier): passband gain −Rf/(Rs+Rin) = −0.952 (−0.42 dB) at 1 kHz."""
     ours = solve_ac(FIELD, np.array([1e3]))
     assert abs(ours.pin_per_emf[0]) == pytest.approx(1000 / 1050, rel=1e-3)
     assert np.degrees(np.angle(ours.pin_per_emf[0])) == pytest.approx(180.0, abs=1.5) or (
@@ -143,7 +143,7 @@ def test_injector_passband_gain_is_field_example() -> None:
 
 
 def test_regulator_rejection_has_the_trade_shape() -> None:
-    """FIELD.md "Typical regulator curve" (practice): high at low frequency, ~20 dB/decade
+    """A typical regulator curve (common practice): high at low frequency, ~20 dB/decade
     fall past the error amplifier's bandwidth, a minimum near 100 kHz–1 MHz, then a rise."""
     device = Regulator()
     op = OperatingPoint(5.0, 0.05)
@@ -155,7 +155,7 @@ def test_regulator_rejection_has_the_trade_shape() -> None:
     curve = rejection_db(device, f, op)
     assert 100e3 <= f[np.argmin(curve)] <= 2e6
     assert curve[np.argmin(np.abs(f - 5e6))] > curve.min() + 10.0
-    # headroom and load lower the rejection (FIELD.md "Headroom and operating point")
+    # headroom and load lower the rejection (common practice)
     at = np.array([1e3])
     ample = rejection_db(device, at, op)[0]
     assert rejection_db(device, at, OperatingPoint(3.65, 0.05))[0] < ample - 2.0
@@ -163,7 +163,7 @@ def test_regulator_rejection_has_the_trade_shape() -> None:
 
 
 def test_amplifier_rejection_is_referred_to_input() -> None:
-    """FIELD.md "Definitions": output ripple = supply ripple / rejection × noise gain, so
+    """Input-referred rejection (common practice for amplifiers): output ripple = supply ripple / rejection × noise gain, so
     110 dB referred to the input at a gain of 10 (20 dB) rejects 90 dB at the output."""
     device = Amplifier(input_rejection_db=110.0, noise_gain=10.0, headroom_knee=1e-9)
     value = rejection_db(device, np.array([0.1]), OperatingPoint(12.0, 0.0))[0]

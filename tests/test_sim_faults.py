@@ -165,7 +165,7 @@ def test_pyvisa_py_reads_a_block_over_tcp() -> None:
 
 
 def test_simulator_never_imports_the_model_it_checks() -> None:
-    """DESIGN.md: sim solves the circuit on its own (no benchseq.injector / analysis)."""
+    """The project's architecture rule: sim solves the circuit on its own (no benchseq.injector / analysis)."""
     code = (
         "import sys, benchseq.sim.world, benchseq.sim.server;"
         "bad=[m for m in sys.modules if m.startswith(('benchseq.injector','benchseq.analysis'))];"

@@ -67,14 +67,15 @@ def capture(
 
 
 def ideal_sim(**scenario_changes) -> SimulatedBench:
-    """The demo bench with its true values equal to the nominal ones (FIELD.md's example)."""
+    """The demo bench with its true values equal to the nominal ones (the worked injector values of tests/test_injector_cases.py)."""
     scenario = replace(load_scenario("demo"), circuit_overrides={}, **scenario_changes)
     return SimulatedBench(load_bench("sim:demo"), scenario, seed=1)
 
 
 def test_captured_amplitude_matches_truth_times_channel_response() -> None:
     """Pin channel: |truth| / probe × |single-pole AC coupling| × |analog bandwidth pole|,
-    within 4 standard deviations of the fit's noise (σ_A ≈ √(2/N)·σ, MEASUREMENT.md)."""
+    within 4 standard deviations of the fit's noise (σ_A ≈ √(2/N)·σ: Kay, Fundamentals of Statistical Signal Processing:
+    Estimation Theory, 1993, ch. 3, sinusoid example; from memory)."""
     sim = SimulatedBench.from_scenario("demo", seed=2)
     f = 1e3
     powered(sim, f, 0.1)
@@ -96,7 +97,7 @@ def test_captured_amplitude_matches_truth_times_channel_response() -> None:
 
 
 def test_over_range_clips_at_the_extreme_codes() -> None:
-    """MEASUREMENT.md "Clipping": a clipped sine's fitted fundamental is below its peak."""
+    """A clipped sine's fundamental is below its peak (Fourier series of a clipped sine)."""
     sim = SimulatedBench.from_scenario("demo", seed=2)
     powered(sim, 1e3, 1.0)  # ~0.95 V peak at the pin: 0.19 Vpp at the input of a 10x probe
     volts, interval, rails = capture(sim, 1, 0.08, 1e-6, 10000)
@@ -123,9 +124,10 @@ def test_ac_coupling_corner_is_minus_3_db() -> None:
 
 
 def test_fifty_ohm_mode_factor_of_field_example() -> None:
-    """FIELD.md (computed): in "50 Ω" mode the injector's output is 1.905x the displayed
+    """Common practice, computed here: in "50 Ω" mode the injector's output is 1.905x the displayed
     amplitude (EMF = 2x displayed, divided by Rs + Rin = 1050 Ω, times Rf = 1 kΩ); the pin
-    gets that × Zpin/(Zpin + Zout), Zout = Ro/(1 + T) (DESIGN.md closed form)."""
+    gets that × Zpin/(Zpin + Zout), Zout = Ro/(1 + T) (closed-loop output resistance of a feedback amplifier, Horowitz & Hill, The Art
+    of Electronics, 3rd ed., ch. 4; from memory)."""
     sim = ideal_sim(scope=replace(load_scenario("demo").scope, probe_attenuation={}))
     f, displayed_pp = 1e3, 0.1
     powered(sim, f, displayed_pp)
@@ -187,7 +189,7 @@ def test_two_channels_of_a_million_samples_are_fast() -> None:
 
 
 def test_pin_dc_settles_through_the_bias_filter() -> None:
-    """After a set-point step the pin follows 1 − e^(−t/τ), τ = Rb·Cb (FIELD.md "Settling":
+    """After a set-point step the pin follows 1 − e^(−t/τ), τ = Rb·Cb (first-order step response;
     e^−5 leaves 0.7 %, e^−7 0.09 %); a scenario switch, off on the demo bench."""
     sim = ideal_sim(bias_settling=True)
     tau = 10e3 * 10e-6

@@ -1,7 +1,7 @@
 """Capture planning: timebase, record length and averaging for a target uncertainty.
 
 Per channel the fitted amplitude's relative variance is S(f)/(T·A²), S the one-sided noise
-density at f after aliasing and T the total recorded time (MEASUREMENT.md: σ_A² ≈ S/T,
+density at f after aliasing and T the total recorded time (Kay, Estimation Theory, ch. 3: σ_A² ≈ S/T,
 equivalently N ≥ 2(σ/A)²/u_rel² white samples). The rejection's uncertainty adds both
 channels and the calibration in quadrature (GUM, JCGM 100 §5.1.2):
 

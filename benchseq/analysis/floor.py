@@ -4,7 +4,7 @@ The residual of a fit holds harmonics, mains pickup and spurs as well as noise, 
 misstate the noise at f. Like a spectrum analyser's noise marker, fit f_k = f ± k/T
 (k = 2…K, T the record duration) jointly with f itself (so the tone at f cannot leak in),
 skip neighbours near harmonics of f, DC and Nyquist, and read the noise per quadrature
-from their amplitudes: with no signal E[A_k²] = 2σ_c² (Rayleigh; MEASUREMENT.md).
+from their amplitudes: with no signal E[A_k²] = 2σ_c² (Rayleigh).
 """
 
 from __future__ import annotations

@@ -3,7 +3,7 @@
 Gauss–Newton on y ≈ a·cos θ + b·sin θ + c with θ_n = φ + 2π x n: each step fits (a, b, c)
 at the present x, then solves the linearised system with the extra column
 u_n·(−a·sin θ_n + b·cos θ_n), u = n/N, for the frequency step. It converges when started
-within about ±0.5 bin (1/T) of the truth (MEASUREMENT.md), so it is meant for the strong
+within about ±0.5 bin (1/T) of the truth (the project's own experiment), so it is meant for the strong
 pin channel only; the weak output channel is then fitted at the refined frequency.
 """
 
