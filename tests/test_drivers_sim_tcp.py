@@ -19,10 +19,9 @@ from fakebench import first_opened, time_bound
 from benchseq.bench import parse_bench
 from benchseq.drivers.errors import InstrumentError
 from benchseq.drivers.session import open_session
+from benchseq.sim import faults as faults_module
+from benchseq.sim import server as server_module
 from benchseq.tomlfile import parse_toml_text
-
-server_module = pytest.importorskip("benchseq.sim.server")
-faults_module = pytest.importorskip("benchseq.sim.faults")
 
 bounded = time_bound(30)  # no test here may take longer, whatever the transport does
 

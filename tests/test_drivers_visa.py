@@ -17,23 +17,22 @@ from collections.abc import Iterator
 
 import numpy as np
 import pytest
+import pyvisa
 from fakebench import time_bound
 
-pyvisa = pytest.importorskip("pyvisa")
-
-from benchseq.bench import InstrumentSpec  # noqa: E402
-from benchseq.drivers.blocks import format_block  # noqa: E402
-from benchseq.drivers.errors import (  # noqa: E402
+from benchseq.bench import InstrumentSpec
+from benchseq.drivers.blocks import format_block
+from benchseq.drivers.errors import (
     ConnectionLost,
     GarbledReply,
     InstrumentReportedError,
     InstrumentTimeout,
     TruncatedBlock,
 )
-from benchseq.drivers.generator import Generator  # noqa: E402
-from benchseq.drivers.profile import load_profile  # noqa: E402
-from benchseq.drivers.session import scan  # noqa: E402
-from benchseq.drivers.visa import VisaTransport  # noqa: E402
+from benchseq.drivers.generator import Generator
+from benchseq.drivers.profile import load_profile
+from benchseq.drivers.session import scan
+from benchseq.drivers.visa import VisaTransport
 
 IDN = "Fernhollow validation lab,TCP-1,0001,1.0"
 TIMEOUT = 0.3  # s, client timeout in these tests

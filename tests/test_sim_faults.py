@@ -146,7 +146,8 @@ def test_tcp_server_drops_connection_on_injected_disconnect() -> None:
 
 
 def test_pyvisa_py_reads_a_block_over_tcp() -> None:
-    pyvisa = pytest.importorskip("pyvisa")
+    import pyvisa
+
     with serve("demo", pace=False) as server:
         rm = pyvisa.ResourceManager("@py")
         try:
