@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from nodal_ref import injector_gains
 from scipy import signal
 from test_injector_cases import CASES, demo_like, field_example, generator, opamp
 
@@ -121,17 +122,28 @@ def test_output_impedance_limits() -> None:
     assert abs(complex(model_of(field_example()).output_impedance(1e3))) == 0.0
 
 
-# -- scipy.signal.freqs on the rational form -------------------------------------------------
+# -- against an independent nodal analysis of the netlist -----------------------------------
+def _nodal(case: tuple, f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    pairs = [injector_gains(*case, float(x)) for x in f]
+    return np.array([p[0] for p in pairs]), np.array([p[1] for p in pairs])
+
+
 @pytest.mark.parametrize("name", sorted(CASES))
-def test_rational_form_matches_scipy_freqs(name: str) -> None:
-    """scipy.signal.freqs evaluates the multiplied-out polynomials; it must agree."""
-    model = model_of(CASES[name])
-    f = np.logspace(0, 8, 161)
+def test_closed_form_and_polynomials_match_nodal_analysis(name: str) -> None:
+    """The closed form, and scipy.signal.freqs on the multiplied-out polynomials, against a
+    modified nodal analysis of the same netlist written in tests/nodal_ref.py (Ho, Ruehli
+    and Brennan, IEEE Trans. CAS-22(6), 1975), 1 Hz to 100 MHz."""
+    case = CASES[name]
+    model = model_of(case)
+    f = np.logspace(0, 8, 81)
+    ac_ref, dc_ref = _nodal(case, f)
+    assert np.allclose(model.ac_gain(f), ac_ref, rtol=1e-9, atol=0)
+    assert np.allclose(model.dc_gain(f), dc_ref, rtol=1e-9, atol=0)
     polys = model.transfer_polynomials()
     _, h_ac = signal.freqs(*polys["ac"], worN=2 * np.pi * f)
     _, h_dc = signal.freqs(*polys["dc"], worN=2 * np.pi * f)
-    assert np.allclose(h_ac, model.ac_gain(f), rtol=1e-9, atol=0)
-    assert np.allclose(h_dc, model.dc_gain(f), rtol=1e-9, atol=0)
+    assert np.allclose(h_ac, ac_ref, rtol=1e-9, atol=0)
+    assert np.allclose(h_dc, dc_ref, rtol=1e-9, atol=0)
 
 
 @settings(max_examples=40, deadline=None)
@@ -147,7 +159,8 @@ def test_rational_form_matches_scipy_freqs(name: str) -> None:
     load=st.one_of(st.none(), st.floats(1, 1e4)),
 )
 def test_rational_form_any_values(rin, rf, cc, ro, cpin, esr, a0_db, gbw, load) -> None:
-    """Property: scipy.signal.freqs of the polynomial form = the closed form, any values."""
+    """Property: the closed form and scipy.signal.freqs of the polynomial form agree with
+    the nodal analysis of tests/nodal_ref.py for any component values."""
     values = InjectorValues(
         input_resistor=rin,
         coupling_capacitor=cc,
@@ -158,10 +171,12 @@ def test_rational_form_any_values(rin, rf, cc, ro, cpin, esr, a0_db, gbw, load) 
     )
     pin = PinLoad(capacitance=cpin, capacitor_esr=esr, load_resistance=load)
     model = InjectorModel(values, generator(), pin)
-    f = np.logspace(0, 8, 33)
+    f = np.logspace(0, 8, 17)
+    ac_ref, _ = _nodal((values, generator(), pin), f)
     num, den = model.transfer_polynomials()["ac"]
     _, h = signal.freqs(num, den, worN=2 * np.pi * f)
-    assert np.allclose(h, model.ac_gain(f), rtol=1e-7, atol=0)
+    assert np.allclose(h, ac_ref, rtol=1e-7, atol=0)
+    assert np.allclose(model.ac_gain(f), ac_ref, rtol=1e-7, atol=0)
 
 
 def test_slowest_time_constant_is_the_bias_filter() -> None:
@@ -171,12 +186,15 @@ def test_slowest_time_constant_is_the_bias_filter() -> None:
 
 
 # -- set-points --------------------------------------------------------------------------------
-def test_generator_setting_round_trip() -> None:
-    """Displayed Vpp/2 x |pin per displayed volt| = the target pin ripple (peak)."""
-    model = model_of(demo_like())
-    f = np.logspace(1, 6, 50)
+def test_generator_setting_puts_the_target_on_the_pin() -> None:
+    """In "50 ohm" mode the EMF is twice the displayed amplitude (common practice): the
+    displayed Vpp/2 × 2 × |V_pin/V_emf| from the nodal analysis is the target (peak)."""
+    case = demo_like()
+    model = model_of(case)
+    f = np.logspace(1, 6, 21)
     setting = model.generator_setting_pp(f, 0.05)
-    assert np.allclose(setting / 2 * np.abs(model.pin_per_displayed(f)), 0.05, rtol=1e-12)
+    ac_ref, _ = _nodal(case, f)
+    assert np.allclose(setting / 2 * 2.0 * np.abs(ac_ref), 0.05, rtol=1e-9)
     assert isinstance(float(model.generator_setting_pp(1e3, 0.05)), float)
 
 
