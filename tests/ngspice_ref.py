@@ -5,14 +5,26 @@
 16 significant digits, so comparisons are not limited by ngspice's print precision.
 ``injector_netlist(...)`` builds the op-amp injector's netlist from a bench's values, with
 the op-amp as a single-pole macro-model (a transconductance into R = A0 ∥ C = 1/(2π·GBW),
-buffered, then the open-loop output resistance). ``require_ngspice()`` skips a test when
-ngspice is missing, or fails it when the CI environment variable is set.
+buffered, then the open-loop output resistance).
+
+``ac_reference`` and ``op_reference`` are what the tests call. ngspice's answers are stored
+in tests/ngspice_data/ (one JSON file per deck, keyed by the deck's sha256, with the ngspice
+version that wrote it), so the comparisons run on every machine:
+- ngspice installed: it runs live, and its answer must agree with the stored one (a new
+  ngspice release or a changed deck shows up as a failure naming both versions); a deck
+  with no stored answer yet gets one written (commit it);
+- ngspice missing: the stored answer is used; with the CI environment variable set, a
+  missing ngspice is a failure (CI installs it), never a skip;
+- no stored answer and no ngspice: a failure that says how to make one.
 """
 
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 import os
+import re
 import shutil
 import subprocess
 import tempfile
@@ -22,6 +34,8 @@ from pathlib import Path
 import numpy as np
 
 NGSPICE_TIMEOUT_S = 120.0
+STORE = Path(__file__).parent / "ngspice_data"
+AGREEMENT = 1e-9  # relative: live ngspice against its stored answer
 
 
 class NgspiceFailed(RuntimeError):
@@ -145,3 +159,113 @@ def injector_netlist(values, generator, pin, *, emf_ac: float = 1.0, dc_ac: floa
     if pin.load_resistance is not None:
         lines.append(f"Rload p 0 {pin.load_resistance!r}")
     return "\n".join(lines) + "\n"
+
+
+# -- stored answers --------------------------------------------------------------------------
+def ngspice_version() -> str:
+    """ngspice's own version line, e.g. "ngspice-39"."""
+    path = ngspice_path()
+    if path is None:
+        raise NgspiceFailed("ngspice is not on PATH")
+    run = subprocess.run([path, "--version"], capture_output=True, text=True, timeout=30)
+    found = re.search(r"ngspice-\S+", run.stdout)
+    return found.group(0) if found else run.stdout.strip().splitlines()[0]
+
+
+def _stored(kind: str, deck: str) -> tuple[Path, dict | None]:
+    key = hashlib.sha256(f"{kind}\n{deck}".encode()).hexdigest()
+    path = STORE / f"{kind}-{key[:20]}.json"
+    if path.exists():
+        return path, json.loads(path.read_text(encoding="utf-8"))
+    return path, None
+
+
+def _live_or_stored(kind: str, deck: str, live) -> tuple[dict, str]:
+    """(answer, version): live when ngspice is here (checked against the stored answer),
+    else the stored answer. Fails (never skips) when neither can be had, or in CI without
+    ngspice."""
+    import pytest
+
+    path, stored = _stored(kind, deck)
+    if ngspice_path() is None:
+        if os.environ.get("CI"):
+            pytest.fail(
+                "ngspice is not on PATH; CI is set, so the live circuit reference is required"
+            )
+        if stored is None:
+            pytest.fail(
+                f"no stored ngspice answer {path.name} and no ngspice here: install ngspice "
+                "(apt-get install -y ngspice) and run the test once to store it"
+            )
+        return stored, stored["ngspice"]
+    answer = live()
+    version = ngspice_version()
+    if stored is None:
+        STORE.mkdir(exist_ok=True)
+        path.write_text(
+            json.dumps({"ngspice": version, "deck": deck, **answer}, indent=1) + "\n",
+            encoding="utf-8",
+        )
+        return answer, version
+    for name, value in answer.items():
+        ours, theirs = np.asarray(value, dtype=float), np.asarray(stored[name], dtype=float)
+        if ours.shape != theirs.shape or not np.allclose(ours, theirs, rtol=AGREEMENT, atol=0):
+            pytest.fail(
+                f"{version} disagrees with the answer {stored['ngspice']} stored in "
+                f"{path.name} ({name}); delete the file to store the new one if that is right"
+            )
+    return answer, version
+
+
+def ac_reference(
+    netlist_text: str, nodes: Sequence[str], freqs: Iterable[float]
+) -> dict[str, np.ndarray]:
+    """``ac_analysis`` through the stored answers (see the module docstring)."""
+    frequencies = [float(f) for f in freqs]
+    deck = f"{netlist_text}\nnodes {' '.join(nodes)}\nfreqs {frequencies!r}"
+
+    def live() -> dict:
+        result = ac_analysis(netlist_text, nodes, frequencies)
+        return {
+            f"{node}_{part}": getattr(result[node], part).tolist()
+            for node in nodes
+            for part in ("real", "imag")
+        }
+
+    answer, _ = _live_or_stored("ac", deck, live)
+    return {
+        node: np.asarray(answer[f"{node}_real"]) + 1j * np.asarray(answer[f"{node}_imag"])
+        for node in nodes
+    }
+
+
+def op_reference(netlist_text: str, node: str) -> float:
+    """The DC operating-point voltage of ``node`` from ngspice ``op`` (12 printed digits),
+    through the stored answers."""
+
+    def live() -> dict:
+        path = ngspice_path()
+        assert path is not None
+        deck = (
+            netlist_text.rstrip()
+            + f"\n.control\nset numdgt=12\nop\nprint v({node})\nquit\n.endc\n.end\n"
+        )
+        with tempfile.TemporaryDirectory(prefix="benchseq-ngspice-") as tmp:
+            file = Path(tmp) / "op.cir"
+            file.write_text(deck, encoding="ascii")
+            run = subprocess.run(
+                [path, "-b", str(file)],
+                capture_output=True,
+                text=True,
+                timeout=NGSPICE_TIMEOUT_S,
+                check=False,
+            )
+        line = next(
+            (x for x in run.stdout.splitlines() if x.strip().startswith(f"v({node})")), None
+        )
+        if line is None:
+            raise NgspiceFailed(f"ngspice printed no v({node}):\n{run.stdout[-2000:]}")
+        return {"value": [float(line.split("=")[1])]}
+
+    answer, _ = _live_or_stored("op", f"{netlist_text}\nnode {node}", live)
+    return float(answer["value"][0])

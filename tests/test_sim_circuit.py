@@ -7,14 +7,11 @@ single-pole macro-model; agreement required 0.001 dB and 0.01° from 1 Hz to 100
 from __future__ import annotations
 
 import math
-import subprocess
-import tempfile
 from dataclasses import replace
-from pathlib import Path
 
 import numpy as np
 import pytest
-from ngspice_ref import ac_analysis, require_ngspice
+from ngspice_ref import ac_reference, op_reference
 
 from benchseq.sim.circuit import InjectorCircuit, solve_ac, solve_dc
 from benchseq.sim.devices import Amplifier, OperatingPoint, PinImpedance, Regulator, rejection_db
@@ -89,11 +86,10 @@ def _worst(model: np.ndarray, spice: np.ndarray) -> tuple[float, float]:
 @pytest.mark.parametrize("name", sorted(CASES))
 def test_nodal_solution_matches_ngspice(name: str) -> None:
     """Pin and op-amp output per volt of EMF, and pin per volt of set-point, = ngspice AC."""
-    require_ngspice()
     circuit, pin = CASES[name]
     ours = solve_ac(circuit, FREQS, pin.admittance)
-    by_emf = ac_analysis(netlist(circuit, pin, 1.0, 0.0), ["p", "o"], FREQS)
-    by_dc = ac_analysis(netlist(circuit, pin, 0.0, 1.0), ["p"], FREQS)
+    by_emf = ac_reference(netlist(circuit, pin, 1.0, 0.0), ["p", "o"], FREQS)
+    by_dc = ac_reference(netlist(circuit, pin, 0.0, 1.0), ["p"], FREQS)
     for model, spice in (
         (ours.pin_per_emf, by_emf["p"]),
         (ours.opamp_per_emf, by_emf["o"]),
@@ -105,20 +101,11 @@ def test_nodal_solution_matches_ngspice(name: str) -> None:
 
 def test_dc_operating_point_matches_ngspice() -> None:
     """Pin DC with a 50 mA current load = ngspice .op (the AC-open current source loads DC)."""
-    path = require_ngspice()
     circuit = FIELD
     text = netlist(circuit, PinImpedance(math.inf, 0.0, 0.0), 0.0, 0.0).replace(
         "Vdc d 0 DC 0", "Vdc d 0 DC 5"
     )
-    text += "Iload p 0 DC 0.05\n.control\nset numdgt=12\nop\nprint v(p)\nquit\n.endc\n.end\n"
-    with tempfile.TemporaryDirectory() as tmp:
-        deck = Path(tmp) / "op.cir"
-        deck.write_text(text)
-        run = subprocess.run(
-            [path, "-b", str(deck)], capture_output=True, text=True, timeout=60, check=False
-        )
-    line = next(x for x in run.stdout.splitlines() if x.strip().startswith("v(p)"))
-    spice = float(line.split("=")[1])
+    spice = op_reference(text + "Iload p 0 DC 0.05\n", "p")
     ours = solve_dc(circuit, 5.0, lambda v: 0.05)
     assert ours.pin == pytest.approx(spice, abs=2e-6)  # ngspice prints ~7 digits
     # the closed form of the brief: set-point × A0/(1+A0) − I·Ro/(1+A0)
