@@ -1,3 +1,34 @@
-"""benchseq: unattended supply-ripple rejection sweeps on SCPI instruments or a simulated bench."""
+"""benchseq: unattended supply-ripple rejection sweeps on SCPI instruments or a simulated bench.
+
+The Python interface (``benchseq.load_plan``, ``check``, ``run``, ``resume``,
+``read_results`` …) is in ``benchseq.api``; its names are importable from here and load on
+first use, so ``import benchseq`` stays light."""
+
+from __future__ import annotations
+
+from typing import Any
 
 __version__ = "0.1.0"
+
+_API = (
+    "RunResult",
+    "check",
+    "load_bench",
+    "load_plan",
+    "read_meta",
+    "read_results",
+    "read_truth",
+    "read_waveforms",
+    "resume",
+    "run",
+)
+
+__all__ = ["__version__", *_API]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _API:
+        from benchseq import api
+
+        return getattr(api, name)
+    raise AttributeError(f"module 'benchseq' has no attribute {name!r}")

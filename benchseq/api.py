@@ -1,0 +1,102 @@
+"""benchseq from Python (a notebook, a script): load the two files, check, run, read.
+
+    import benchseq
+    plan = benchseq.load_plan("plans/demo.toml")
+    print(benchseq.check(plan).point_count)
+    result = benchseq.run(plan, out="results/demo.h5", force=True)
+    points = benchseq.read_results(result.path)     # a pandas DataFrame, one row per point
+
+Every function takes a file path or an object already loaded; ``bench=None`` is the embedded
+simulated bench. Errors are the command line's: ``BadInput`` (a file or an option),
+``MeasurementFailure`` (the bench); both are ``BenchseqError``. Nothing here prints.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from benchseq.bench import Bench, load_bench
+from benchseq.plan import Plan, load_plan
+from benchseq.results import read_meta, read_results, read_truth, read_waveforms
+
+__all__ = [
+    "RunResult",
+    "check",
+    "load_bench",
+    "load_plan",
+    "read_meta",
+    "read_results",
+    "read_truth",
+    "read_waveforms",
+    "resume",
+    "run",
+]
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """How a run ended (``outcome``: status, reason, counts, safe-state steps) and its file."""
+
+    outcome: Any
+    path: Path
+
+    @property
+    def status(self) -> str:
+        return str(self.outcome.status)
+
+
+def _plan(plan: Plan | str | Path) -> Plan:
+    return plan if isinstance(plan, Plan) else load_plan(str(plan))
+
+
+def _bench(bench: Bench | str | Path | None) -> Bench:
+    return bench if isinstance(bench, Bench) else load_bench(None if bench is None else str(bench))
+
+
+def check(plan: Plan | str | Path, bench: Bench | str | Path | None = None) -> Any:
+    """The feasibility check of every planned point (what `benchseq check` prints): a report
+    with ``point_count``, ``refused_count``, ``estimated_time_s`` and ``to_dict()``."""
+    from benchseq.check import check_plan
+
+    return check_plan(_plan(plan), _bench(bench))
+
+
+def run(
+    plan: Plan | str | Path,
+    bench: Bench | str | Path | None = None,
+    out: str | Path | None = None,
+    *,
+    seed: int = 0,
+    keep_waveforms: bool = False,
+    force: bool = False,
+    on_event: Callable[[Any], None] | None = None,
+) -> RunResult:
+    """Run the sweep as `benchseq run` does (limits first, safe state on every ending) and
+    return how it ended with the result file's path. ``on_event`` receives progress events
+    (``kind``, ``message``, ``done``, ``total``, ``row``). Signals are not intercepted here:
+    a KeyboardInterrupt still ends in the safe state."""
+    from benchseq.runner import default_output, run_prepared
+
+    loaded = _plan(plan)
+    path = Path(out) if out is not None else default_output(loaded)
+    outcome, written = run_prepared(
+        loaded,
+        _bench(bench),
+        path,
+        force=force,
+        keep_waveforms=keep_waveforms,
+        seed=seed,
+        emit=on_event,
+    )
+    return RunResult(outcome, written)
+
+
+def resume(path: str | Path, *, on_event: Callable[[Any], None] | None = None) -> RunResult:
+    """Continue an interrupted run from the plan and bench stored in its file."""
+    from benchseq.runner import resume_run
+
+    outcome, written = resume_run(str(path), emit=on_event)
+    return RunResult(outcome, written)
