@@ -9,6 +9,7 @@ Layout (plain h5py, no pickles)::
     /meta/<key>       long text items (plan_text, bench_text) and nested items (JSON text)
     /points/<column>  one resizable 1-D dataset per column; attrs unit, description, kind;
                       the group's "columns" attr lists the order; point_id is a column
+/points/row_crc32 CRC-32 of each row's canonical journal JSON (not a column: a check)
     /truth/<column>   the simulator's truth per point, same layout (simulated benches)
     /waveforms/<ch>/  samples: every point's record of channel <ch> end to end (chunked,
                       gzip); point_id, start, length, scale, offset, sample_interval: one
@@ -34,7 +35,7 @@ from typing import Any
 
 import numpy as np
 
-from benchseq.rowcodec import _DTYPES, BadResultFile, Column, _decode
+from benchseq.rowcodec import _DTYPES, BadResultFile, Column, _decode, row_checksum
 
 os.environ.setdefault("HDF5_USE_FILE_LOCKING", "FALSE")
 import h5py  # after the locking switch, which older HDF5 builds read at open
@@ -44,6 +45,11 @@ FORMAT_VERSION = 1
 JOURNAL_SUFFIX = ".journal"
 COMPLEX_LAYOUT = "complex128: HDF5 compound of float64 fields r (real) and i (imaginary)"
 _RESERVED_ATTRS = {"format", "format_version", "point_rows", "journal_id", "journal_offset"}
+CHECKSUM_NAME = "row_crc32"
+CHECKSUM_MEANING = (
+    "CRC-32 (zlib) of each row's canonical JSON as in the journal: keys sorted, separators "
+    "',' and ':', complex as [real, imag], NaN as NaN; readers recompute and compare"
+)
 _ATTR_TEXT_LIMIT = 2048  # longer strings go to /meta datasets (attributes stay small)
 
 
@@ -76,12 +82,22 @@ def _column_group(h5: h5py.File, name: str, columns: Sequence[Column]) -> h5py.G
             ds.attrs["unit"] = column.unit
             ds.attrs["description"] = column.description
             ds.attrs["kind"] = column.kind
+        crc = group.create_dataset(
+            CHECKSUM_NAME, shape=(0,), maxshape=(None,), chunks=(256,), dtype="u4"
+        )
+        crc.attrs["description"] = CHECKSUM_MEANING
     return group
 
 
 def _append_rows(group: h5py.Group, columns: Sequence[Column], rows: list[dict]) -> None:
+    """Append journal-encoded ``rows``, with their checksums when the group keeps them."""
     if not rows:
         return
+    if CHECKSUM_NAME in group:
+        crc = group[CHECKSUM_NAME]
+        n = crc.shape[0]
+        crc.resize((n + len(rows),))
+        crc[n:] = np.array([row_checksum(row) for row in rows], dtype=np.uint32)
     for column in columns:
         values = [_decode(column.kind, row[column.name]) for row in rows]
         array = np.array(values, dtype=_DTYPES[column.kind])
