@@ -44,7 +44,12 @@ FORMAT = "benchseq-result"
 FORMAT_VERSION = 1
 JOURNAL_SUFFIX = ".journal"
 COMPLEX_LAYOUT = "complex128: HDF5 compound of float64 fields r (real) and i (imaginary)"
-_RESERVED_ATTRS = {"format", "format_version", "point_rows", "journal_id", "journal_offset"}
+DAMAGE_COUNT = "journal_records_unreadable"  # damaged journal records met by the updates
+DAMAGE_RANGES = "journal_damaged_ranges"  # their byte ranges, JSON [[start, end], ...]
+_RESERVED_ATTRS = {
+    "format", "format_version", "point_rows", "journal_id", "journal_offset",
+    DAMAGE_COUNT, DAMAGE_RANGES,
+}  # fmt: skip
 CHECKSUM_NAME = "row_crc32"
 CHECKSUM_MEANING = (
     "CRC-32 (zlib) of each row's canonical JSON as in the journal: keys sorted, separators "
@@ -178,6 +183,7 @@ class _H5State:
     columns: list[Column]
     truth_columns: list[Column] | None
     ids: set[int]
+    journal_damage: tuple[int, list[list[int]]] | None = None  # (records, byte ranges)
 
 
 def _group_columns(group: h5py.Group, where: str) -> list[Column]:
@@ -210,9 +216,12 @@ def _read_h5_state(path: Path) -> _H5State | None:
             columns = _group_columns(h5["points"], f"{path} /points")
             truth = _group_columns(h5["truth"], f"{path} /truth") if "truth" in h5 else None
             ids = {int(i) for i in h5["points/point_id"][:]}
+            damage = None
+            if int(h5.attrs.get(DAMAGE_COUNT, 0)):
+                damage = (int(h5.attrs[DAMAGE_COUNT]), json.loads(h5.attrs[DAMAGE_RANGES]))
             return _H5State(
                 str(h5.attrs["run_id"]), str(h5.attrs["journal_id"]),
-                int(h5.attrs["journal_offset"]), meta, columns, truth, ids,
+                int(h5.attrs["journal_offset"]), meta, columns, truth, ids, damage,
             )  # fmt: skip
         except (KeyError, ValueError, OSError) as exc:
             raise _Unreadable(f"{path}: damaged benchseq result ({exc})") from None

@@ -121,7 +121,7 @@ def _sources(path: str | Path) -> _Sources:
         scan = jr.scan(jpath, start)
         if same and scan.damaged and scan.damaged[0][0] == start:  # offset off a boundary
             scan = jr.scan(jpath)
-        notices += _damage_notices(jpath, scan)
+        notices += _damage_notices(jpath, scan, h5)
         known = h5.ids if h5 is not None else set()
         seen: set[int] = set()
         for record in scan.records:
@@ -137,21 +137,28 @@ def _sources(path: str | Path) -> _Sources:
     return _Sources(path, h5, header, records, notices)
 
 
-def _damage_notices(jpath: Path, scan: jr.ScanResult) -> list[str]:
-    """'n records unreadable' for the damaged ranges of a scan (a torn tail included)."""
-    if not scan.damaged:
-        return []
-    unreadable = 0
-    with open(jpath, "rb") as handle:
-        for start, end in scan.damaged:
-            handle.seek(start)
-            unreadable += max(1, handle.read(end - start).count(jr.RECORD_MAGIC))
-    where = ", ".join(f"bytes {a}-{b}" for a, b in scan.damaged[:5])
-    more = " ..." if len(scan.damaged) > 5 else ""
-    return [
-        f"{jpath}: {unreadable} journal record(s) unreadable (damaged or cut short at "
-        f"{where}{more}); the points in them are not shown"
-    ]
+def _damage_notices(jpath: Path, scan: jr.ScanResult, h5: _H5State | None) -> list[str]:
+    """'n records unreadable' for the damaged ranges of a scan (a torn tail included) and
+    for those the HDF5 updates met earlier (recorded in the file)."""
+    notices = []
+    if h5 is not None and h5.journal_damage:
+        count, ranges = h5.journal_damage
+        notices.append(
+            f"{jpath}: {count} journal record(s) unreadable (damaged at {_ranges_text(ranges)}, "
+            "found when the HDF5 file was updated); the points in them are not in the result"
+        )
+    if scan.damaged:
+        unreadable = jr.unreadable_records(jpath, scan.damaged)
+        notices.append(
+            f"{jpath}: {unreadable} journal record(s) unreadable (damaged or cut short at "
+            f"{_ranges_text(scan.damaged)}); the points in them are not shown"
+        )
+    return notices
+
+
+def _ranges_text(ranges: Sequence[Sequence[int]]) -> str:
+    text = ", ".join(f"bytes {a}-{b}" for a, b in list(ranges)[:5])
+    return text + (" ..." if len(ranges) > 5 else "")
 
 
 def _warn(notices: Iterable[str]) -> list[str]:

@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import errno
+import json
 import math
 import os
 import shutil
@@ -36,6 +37,8 @@ from typing import TYPE_CHECKING, Any
 from benchseq import journal as jr
 from benchseq.h5layout import (
     COMPLEX_LAYOUT,
+    DAMAGE_COUNT,
+    DAMAGE_RANGES,
     FORMAT,
     FORMAT_VERSION,
     JOURNAL_SUFFIX,
@@ -575,6 +578,8 @@ class RunWriter:
         offset = scan.valid_end if scan else None
         h5.attrs["journal_offset"] = offset if offset is not None else len(jr.FILE_MAGIC)
         h5.attrs["point_rows"] = points["point_id"].shape[0]
+        if scan is not None:
+            _record_damage(h5, self.journal_file, scan, fresh)
         h5.attrs["complex_layout"] = COMPLEX_LAYOUT
         if fresh or self._h5_meta_revision != self._meta_revision:
             _write_meta(h5, self.meta)
@@ -734,3 +739,16 @@ def repair_mirror(path: str | Path) -> RepairOutcome:
         return RepairOutcome(lagging, True, removed, False)
     finally:
         lock.release()
+
+
+def _record_damage(h5: h5py.File, jpath: Path, scan: jr.ScanResult, fresh: bool) -> None:
+    """Keep in the file the damaged journal records an update met (a torn tail excepted:
+    resume cuts it), so readers report them after the journal has moved on."""
+    inside = [(a, b) for a, b in scan.damaged if b < scan.size]
+    count = 0 if fresh else int(h5.attrs.get(DAMAGE_COUNT, 0))
+    ranges = [] if fresh or not count else json.loads(h5.attrs[DAMAGE_RANGES])
+    if inside:
+        count += jr.unreadable_records(jpath, inside)
+        ranges += [[a, b] for a, b in inside]
+    h5.attrs[DAMAGE_COUNT] = count
+    h5.attrs[DAMAGE_RANGES] = json.dumps(ranges)
