@@ -719,16 +719,17 @@ def repair_mirror(path: str | Path) -> RepairOutcome:
     path = _result_path(path)
     for existing_path in (path, journal_path(path)):
         refuse_non_regular(existing_path)
-    lagging = mirror_lag(path)
+    if not path.exists() and not journal_path(path).exists():
+        return RepairOutcome([], False, 0, False)  # nothing to repair; readers say it is missing
     try:
         lock = WriteLock.acquire(path, patience_s=0.2)
     except ResultBusy:
         return RepairOutcome([], False, 0, True)
     except OSError as exc:  # e.g. a read-only folder: the lock file cannot be made
-        return RepairOutcome(lagging, False, 0, False, exc.strerror or str(exc))
+        return RepairOutcome(mirror_lag(path), False, 0, False, exc.strerror or str(exc))
     try:
         removed = len(remove_stale_temporaries(path))
-        lagging = mirror_lag(path)  # again, now that no writer can change it
+        lagging = mirror_lag(path)  # now that no writer can change it
         if not lagging:
             return RepairOutcome([], False, removed, False)
         try:
