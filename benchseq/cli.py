@@ -1,5 +1,5 @@
 """The `benchseq` command: parse, call, print. Exit codes: 0 ok, 1 measurement or
-instrument failure (or refused points), 2 bad input."""
+instrument failure (or refused points, or a run stopped before it finished), 2 bad input."""
 
 from __future__ import annotations
 
@@ -411,7 +411,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="benchseq",
         description="Supply-ripple rejection (PSRR) sweeps on SCPI instruments or a simulated bench.",
-        epilog="Exit codes: 0 ok, 1 measurement/instrument failure or refused points, 2 bad input.",
+        epilog="Exit codes: 0 ok, 1 measurement/instrument failure, refused points or a run "
+        "stopped before it finished, 2 bad input.",
     )
     parser.add_argument("--version", action="version", version=f"benchseq {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
