@@ -1,12 +1,14 @@
 """The `benchseq` command: parse, call, print. Exit codes: 0 ok, 1 measurement or
-instrument failure (or refused points), 2 bad input."""
+instrument failure (or refused points, or a run stopped before it finished), 2 bad input."""
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import sys
-from collections.abc import Sequence
+import warnings
+from collections.abc import Iterator, Sequence
 from typing import Any
 
 from benchseq import __version__
@@ -41,6 +43,48 @@ def _json_default(value: Any) -> Any:
     if isinstance(value, complex):
         return {"re": value.real, "im": value.imag}
     raise TypeError(f"not JSON-serialisable: {type(value).__name__}")
+
+
+@contextlib.contextmanager
+def _result_notices() -> Iterator[None]:
+    """Print what reading or repairing a result file noticed (damage, repairs) as notices."""
+    from benchseq.store import ResultWarning
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ResultWarning)
+        try:
+            yield
+        finally:
+            said = dict.fromkeys(str(w.message) for w in caught if w.category is ResultWarning)
+            for notice in said:
+                _console(stderr=True).print(f"[bold yellow]notice:[/] {_escape(notice)}")
+            for w in caught:
+                if w.category is not ResultWarning:
+                    warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+
+
+def _repair_for_reading(path: str) -> None:
+    """Repair a result's HDF5 file from its journal before reading (notices say so)."""
+    from benchseq.store import ResultWarning, repair_mirror
+
+    for notice in repair_mirror(path).notices(path):
+        warnings.warn(notice, ResultWarning, stacklevel=2)
+
+
+def _refuse_same_file(source: str, out: str | None, what: str) -> None:
+    """BadInput when ``out`` is ``source`` or its journal (never overwrite the input)."""
+    import os
+    from pathlib import Path
+
+    if not out:
+        return
+    for target in (Path(out), Path(out + ".journal")):
+        try:
+            same = os.path.samefile(source, target) or Path(source).resolve() == target.resolve()
+        except OSError:
+            same = Path(source).resolve() == target.resolve()
+        if same:
+            raise BadInput(f"{what} {out} is the input {source}; give another output file")
 
 
 # -- commands --------------------------------------------------------------------------
@@ -103,6 +147,12 @@ class _LiveDisplay:
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from benchseq.writelock import refuse_non_regular
+
+    refuse_non_regular(Path(args.result))
+    _refuse_same_file(args.result, args.out, "the output file")
     if args.reanalyse:
         from benchseq.reanalyse import reanalyse, render_reanalysis
 
@@ -143,7 +193,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     else:
         console.print(render_comparison(outcome))
         console.print(f"replay results: [bold]{_escape(outcome.path)}[/]")
-    return EXIT_OK if outcome.run.status in ("complete", "stopped") else EXIT_FAILURE
+    return EXIT_OK if outcome.run.status == "complete" else EXIT_FAILURE
 
 
 def cmd_calibrate(args: argparse.Namespace) -> int:
@@ -193,7 +243,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     stop = StopControl()
     emit = _LiveDisplay(console)
 
-    with stop.installed():
+    with stop.installed(), _result_notices():
         try:
             if args.resume:
                 outcome, path = resume_run(args.resume, args.plan, args.bench, emit=emit, stop=stop)
@@ -238,7 +288,8 @@ def cmd_run(args: argparse.Namespace) -> int:
         console.print("safe state: " + _escape("; ".join(outcome.safe_state)))
         from benchseq.store import read_meta, read_results
 
-        verdict = _verdict(read_meta(path), read_results(path), str(path))
+        with _result_notices():
+            verdict = _verdict(read_meta(path), read_results(path), str(path))
         if verdict is not None and verdict.status != "no mask":
             console.print(_verdict_markup(verdict))
         console.print(f"results: [bold]{_escape(path)}[/]")
@@ -246,7 +297,7 @@ def cmd_run(args: argparse.Namespace) -> int:
             console.print(f"continue with: benchseq run --resume {_escape(path)}")
         console.print(f"summary: benchseq show {_escape(path)}")
         console.print(f"lab report: benchseq report {_escape(path)}")
-    return EXIT_OK if outcome.status in ("complete", "stopped") else EXIT_FAILURE
+    return EXIT_OK if outcome.status == "complete" else EXIT_FAILURE  # stopped early: 1
 
 
 def _verdict(meta: dict[str, Any], frame: Any, path: str) -> Any:
@@ -260,7 +311,8 @@ def _verdict(meta: dict[str, Any], frame: Any, path: str) -> Any:
         plan = parse_plan(data, str(meta.get("plan_source", path)), text)
     except BenchseqError:
         return None
-    return mask_verdict(plan.mask, frame)
+    count = meta.get("point_count")
+    return mask_verdict(plan.mask, frame, planned=count if isinstance(count, int) else None)
 
 
 def _verdict_markup(verdict: Any) -> str:
@@ -272,8 +324,10 @@ def cmd_show(args: argparse.Namespace) -> int:
     from benchseq.display import points_table
     from benchseq.store import read_meta, read_results
 
-    meta = read_meta(args.result)
-    frame = read_results(args.result)
+    with _result_notices():
+        _repair_for_reading(args.result)
+        meta = read_meta(args.result)
+        frame = read_results(args.result)
     verdict = _verdict(meta, frame, args.result)
     if args.json:
         _print_json(
@@ -290,6 +344,12 @@ def cmd_show(args: argparse.Namespace) -> int:
         f"status {_escape(meta.get('status'))}; started {_escape(meta.get('started'))}; "
         f"{len(frame)} of {meta.get('point_count', '?')} points stored; bench {_escape(meta.get('bench_name', ''))}"
     )
+    if meta.get("status") == "interrupted":
+        when = (meta.get("interrupted") or {}).get("last_point_at") or "never"
+        console.print(
+            f"[bold yellow]interrupted:[/] its process ended without finishing; last point "
+            f"stored {_escape(when)}; continue with: benchseq run --resume {_escape(args.result)}"
+        )
     rows = frame.sort_values("point_id").to_dict(orient="records")
     console.print(points_table(rows, title="points"))
     if verdict is not None:
@@ -301,7 +361,12 @@ def cmd_report(args: argparse.Namespace) -> int:
     from benchseq.report import format_name, write_report
 
     fmt = format_name(args.format, args.out)
-    written = write_report(args.results, fmt, args.out)
+    for result in args.results:
+        _refuse_same_file(result, args.out, "the report file")
+    with _result_notices():
+        for result in args.results:
+            _repair_for_reading(result)
+        written = write_report(args.results, fmt, args.out)
     if args.json:
         _print_json({"format": fmt, "files": [str(p) for p in written]})
         return EXIT_OK
@@ -346,7 +411,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="benchseq",
         description="Supply-ripple rejection (PSRR) sweeps on SCPI instruments or a simulated bench.",
-        epilog="Exit codes: 0 ok, 1 measurement/instrument failure or refused points, 2 bad input.",
+        epilog="Exit codes: 0 ok, 1 measurement/instrument failure, refused points or a run "
+        "stopped before it finished, 2 bad input.",
     )
     parser.add_argument("--version", action="version", version=f"benchseq {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")

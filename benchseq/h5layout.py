@@ -9,6 +9,7 @@ Layout (plain h5py, no pickles)::
     /meta/<key>       long text items (plan_text, bench_text) and nested items (JSON text)
     /points/<column>  one resizable 1-D dataset per column; attrs unit, description, kind;
                       the group's "columns" attr lists the order; point_id is a column
+/points/row_crc32 CRC-32 of each row's canonical journal JSON (not a column: a check)
     /truth/<column>   the simulator's truth per point, same layout (simulated benches)
     /waveforms/<ch>/  samples: every point's record of channel <ch> end to end (chunked,
                       gzip); point_id, start, length, scale, offset, sample_interval: one
@@ -34,7 +35,7 @@ from typing import Any
 
 import numpy as np
 
-from benchseq.rowcodec import _DTYPES, BadResultFile, Column, _decode
+from benchseq.rowcodec import _DTYPES, BadResultFile, Column, _decode, row_checksum
 
 os.environ.setdefault("HDF5_USE_FILE_LOCKING", "FALSE")
 import h5py  # after the locking switch, which older HDF5 builds read at open
@@ -43,7 +44,17 @@ FORMAT = "benchseq-result"
 FORMAT_VERSION = 1
 JOURNAL_SUFFIX = ".journal"
 COMPLEX_LAYOUT = "complex128: HDF5 compound of float64 fields r (real) and i (imaginary)"
-_RESERVED_ATTRS = {"format", "format_version", "point_rows", "journal_id", "journal_offset"}
+DAMAGE_COUNT = "journal_records_unreadable"  # damaged journal records met by the updates
+DAMAGE_RANGES = "journal_damaged_ranges"  # their byte ranges, JSON [[start, end], ...]
+_RESERVED_ATTRS = {
+    "format", "format_version", "point_rows", "journal_id", "journal_offset",
+    DAMAGE_COUNT, DAMAGE_RANGES,
+}  # fmt: skip
+CHECKSUM_NAME = "row_crc32"
+CHECKSUM_MEANING = (
+    "CRC-32 (zlib) of each row's canonical JSON as in the journal: keys sorted, separators "
+    "',' and ':', complex as [real, imag], NaN as NaN; readers recompute and compare"
+)
 _ATTR_TEXT_LIMIT = 2048  # longer strings go to /meta datasets (attributes stay small)
 
 
@@ -76,12 +87,22 @@ def _column_group(h5: h5py.File, name: str, columns: Sequence[Column]) -> h5py.G
             ds.attrs["unit"] = column.unit
             ds.attrs["description"] = column.description
             ds.attrs["kind"] = column.kind
+        crc = group.create_dataset(
+            CHECKSUM_NAME, shape=(0,), maxshape=(None,), chunks=(256,), dtype="u4"
+        )
+        crc.attrs["description"] = CHECKSUM_MEANING
     return group
 
 
 def _append_rows(group: h5py.Group, columns: Sequence[Column], rows: list[dict]) -> None:
+    """Append journal-encoded ``rows``, with their checksums when the group keeps them."""
     if not rows:
         return
+    if CHECKSUM_NAME in group:
+        crc = group[CHECKSUM_NAME]
+        n = crc.shape[0]
+        crc.resize((n + len(rows),))
+        crc[n:] = np.array([row_checksum(row) for row in rows], dtype=np.uint32)
     for column in columns:
         values = [_decode(column.kind, row[column.name]) for row in rows]
         array = np.array(values, dtype=_DTYPES[column.kind])
@@ -162,6 +183,7 @@ class _H5State:
     columns: list[Column]
     truth_columns: list[Column] | None
     ids: set[int]
+    journal_damage: tuple[int, list[list[int]]] | None = None  # (records, byte ranges)
 
 
 def _group_columns(group: h5py.Group, where: str) -> list[Column]:
@@ -194,9 +216,12 @@ def _read_h5_state(path: Path) -> _H5State | None:
             columns = _group_columns(h5["points"], f"{path} /points")
             truth = _group_columns(h5["truth"], f"{path} /truth") if "truth" in h5 else None
             ids = {int(i) for i in h5["points/point_id"][:]}
+            damage = None
+            if int(h5.attrs.get(DAMAGE_COUNT, 0)):
+                damage = (int(h5.attrs[DAMAGE_COUNT]), json.loads(h5.attrs[DAMAGE_RANGES]))
             return _H5State(
                 str(h5.attrs["run_id"]), str(h5.attrs["journal_id"]),
-                int(h5.attrs["journal_offset"]), meta, columns, truth, ids,
+                int(h5.attrs["journal_offset"]), meta, columns, truth, ids, damage,
             )  # fmt: skip
         except (KeyError, ValueError, OSError) as exc:
             raise _Unreadable(f"{path}: damaged benchseq result ({exc})") from None

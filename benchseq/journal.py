@@ -267,3 +267,14 @@ def first_record(path: str | Path) -> Record | None:
             if data[: len(FILE_MAGIC)] != FILE_MAGIC:
                 return None
             return _record_at(data, len(FILE_MAGIC), size)
+
+
+def unreadable_records(path: str | Path, ranges: list[tuple[int, int]]) -> int:
+    """How many records the damaged byte ``ranges`` of a journal held (markers found in
+    them, at least one per range)."""
+    count = 0
+    with open(path, "rb") as handle:
+        for start, end in ranges:
+            handle.seek(start)
+            count += max(1, handle.read(end - start).count(RECORD_MAGIC))
+    return count

@@ -1,12 +1,22 @@
 """Reading results back: the table of points, the truth, the metadata and the raw records
 of a point, from the HDF5 file merged with the journal points it does not hold yet (so a
 partial run loads in full). Its public names are importable from benchseq.store.
+
+What a reader notices is said, never skipped silently: damaged journal records, a journal
+header that cannot be read, an HDF5 row whose checksum fails (the journal's copy is used
+when the journal holds it; without it the read fails naming the points), each as a
+``ResultWarning``. A "running" file whose writer is gone (its lock is free) reads as
+"interrupted", with when its last point was stored and how many points it holds.
 """
 
 from __future__ import annotations
 
+import datetime as dt
+import math
+import os
+import warnings
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -15,6 +25,7 @@ import pandas as pd
 
 from benchseq import journal as jr
 from benchseq.h5layout import (
+    CHECKSUM_NAME,
     _column_arrays,
     _H5State,
     _open_h5,
@@ -31,8 +42,16 @@ from benchseq.rowcodec import (
     StoredWaveform,
     _columns_from_json,
     _decode,
+    _decode_row,
     _header_of,
+    encoded_rows,
+    row_checksum,
 )
+from benchseq.writelock import refuse_non_regular, writer_alive
+
+
+class ResultWarning(UserWarning):
+    """Something a reader of a result file must be told (damage found, a value replaced)."""
 
 
 @dataclass
@@ -43,6 +62,7 @@ class _Sources:
     h5: _H5State | None
     header: dict[str, Any] | None
     records: list[jr.Record]  # journal records newer than the HDF5 file (points: not in it)
+    notices: list[str] = field(default_factory=list)
 
     @property
     def columns(self) -> list[Column]:
@@ -68,16 +88,29 @@ class _Sources:
 def _sources(path: str | Path) -> _Sources:
     path = _result_path(path)
     jpath = journal_path(path)
+    refuse_non_regular(path)
+    refuse_non_regular(jpath, "journal")
     try:
         h5 = _read_h5_state(path)
     except _Unreadable:
         if not jpath.is_file():
             raise
         h5 = None
-    header = _header_of(jr.first_record(jpath)) if jpath.is_file() else None
+    first = jr.first_record(jpath) if jpath.is_file() else None
+    header = _header_of(first)
+    notices: list[str] = []
+    if header is None and jpath.is_file() and jpath.stat().st_size > len(jr.FILE_MAGIC):
+        lost = sum(1 for r in jr.scan(jpath).records if r.body.get("kind") == "point")
+        notices.append(
+            f"{jpath}: the journal's header record is damaged; its {lost} point record(s) "
+            "cannot be matched to this run and are left out"
+        )
     if header is None and h5 is None:
         if jpath.is_file():
-            raise BadResultFile(f"{jpath} is not a usable benchseq journal and {path} is missing")
+            raise BadResultFile(
+                f"{jpath} is not a usable benchseq journal and {path} is missing"
+                + (f" ({notices[0]})" if notices else "")
+            )
         raise BadResultFile(f"{path}: no such result file")
     if h5 is not None and header is not None and header.get("run_id") != h5.run_id:
         header = None  # a journal left from another run: the HDF5 file is the result
@@ -88,6 +121,7 @@ def _sources(path: str | Path) -> _Sources:
         scan = jr.scan(jpath, start)
         if same and scan.damaged and scan.damaged[0][0] == start:  # offset off a boundary
             scan = jr.scan(jpath)
+        notices += _damage_notices(jpath, scan, h5)
         known = h5.ids if h5 is not None else set()
         seen: set[int] = set()
         for record in scan.records:
@@ -100,15 +134,99 @@ def _sources(path: str | Path) -> _Sources:
             elif same and body.get("kind") == "meta" and record.start < (start or 0):
                 continue
             records.append(record)
-    return _Sources(path, h5, header, records)
+    return _Sources(path, h5, header, records, notices)
+
+
+def _damage_notices(jpath: Path, scan: jr.ScanResult, h5: _H5State | None) -> list[str]:
+    """'n records unreadable' for the damaged ranges of a scan (a torn tail included) and
+    for those the HDF5 updates met earlier (recorded in the file)."""
+    notices = []
+    if h5 is not None and h5.journal_damage:
+        count, ranges = h5.journal_damage
+        notices.append(
+            f"{jpath}: {count} journal record(s) unreadable (damaged at {_ranges_text(ranges)}, "
+            "found when the HDF5 file was updated); the points in them are not in the result"
+        )
+    if scan.damaged:
+        unreadable = jr.unreadable_records(jpath, scan.damaged)
+        notices.append(
+            f"{jpath}: {unreadable} journal record(s) unreadable (damaged or cut short at "
+            f"{_ranges_text(scan.damaged)}); the points in them are not shown"
+        )
+    return notices
+
+
+def _ranges_text(ranges: Sequence[Sequence[int]]) -> str:
+    text = ", ".join(f"bytes {a}-{b}" for a, b in list(ranges)[:5])
+    return text + (" ..." if len(ranges) > 5 else "")
+
+
+def _warn(notices: Iterable[str]) -> list[str]:
+    said = list(dict.fromkeys(notices))
+    for notice in said:
+        warnings.warn(notice, ResultWarning, stacklevel=3)
+    return said
+
+
+def _journal_rows(sources: _Sources, key: str) -> dict[int, dict[str, Any]]:
+    """Every point's ``key`` ("row" or "truth") in the journal, by id (damage skipped)."""
+    jpath = journal_path(sources.path)
+    if sources.header is None or not jpath.is_file():
+        return {}
+    found: dict[int, dict[str, Any]] = {}
+    for record in jr.scan(jpath).records:
+        body = record.body
+        if body.get("kind") == "point" and body.get(key) is not None:
+            found.setdefault(int(body["id"]), body[key])
+    return found
+
+
+def _verified(
+    sources: _Sources, group: Any, columns: Sequence[Column], key: str, arrays: dict
+) -> tuple[dict, list[str]]:
+    """The HDF5 rows checked against their stored checksums; a failing row is replaced by
+    the journal's copy (with a notice) or, without one, raises BadResultFile."""
+    if CHECKSUM_NAME not in group:
+        return arrays, []  # written before rows were checksummed
+    stored = group[CHECKSUM_NAME][:]
+    rows = encoded_rows(columns, arrays)
+    if len(stored) != len(rows):
+        return arrays, [f"{sources.path} /{group.name.strip('/')}: checksum table length differs"]
+    bad = [i for i, row in enumerate(rows) if row_checksum(row) != int(stored[i])]
+    if not bad:
+        return arrays, []
+    journal = _journal_rows(sources, key)
+    ids = [int(arrays["point_id"][i]) if "point_id" in arrays else i for i in bad]
+    missing = [pid for i, pid in zip(bad, ids, strict=True)
+               if pid not in journal or row_checksum(journal[pid]) != int(stored[i])]  # fmt: skip
+    where = f"{sources.path} /{group.name.strip('/')}"
+    if missing:
+        raise BadResultFile(
+            f"{where}: the row(s) of point(s) {', '.join(map(str, missing))} fail their checksum "
+            "(the file is damaged) and the journal holds no good copy; restore the file from a "
+            "backup"
+        )
+    for i, pid in zip(bad, ids, strict=True):
+        good = _decode_row(columns, journal[pid])
+        for c in columns:
+            arrays[c.name] = np.array(arrays[c.name], copy=True)
+            arrays[c.name][i] = good[c.name]
+    return arrays, [
+        f"{where}: the row(s) of point(s) {', '.join(map(str, ids))} fail their checksum (the "
+        "HDF5 file is damaged there); the journal's copy is shown"
+    ]
 
 
 def _frame(sources: _Sources, group: str, columns: Sequence[Column], key: str) -> pd.DataFrame:
     arrays: dict[str, list[np.ndarray]] = {c.name: [] for c in columns}
+    notices = list(sources.notices)
     if sources.h5 is not None:
         with _open_h5(sources.path, "r") as h5:
             if group in h5:
-                for name, values in _column_arrays(h5[group], columns, slice(None)).items():
+                found = _column_arrays(h5[group], columns, slice(None))
+                found, damaged = _verified(sources, h5[group], columns, key, found)
+                notices += damaged
+                for name, values in found.items():
                     arrays[name].append(values)
     rows = [r.body[key] for r in sources.points() if r.body.get(key) is not None]
     for c in columns:
@@ -120,6 +238,7 @@ def _frame(sources: _Sources, group: str, columns: Sequence[Column], key: str) -
     frame = pd.DataFrame(data, columns=[c.name for c in columns])
     frame.attrs["units"] = {c.name: c.unit for c in columns}
     frame.attrs["descriptions"] = {c.name: c.description for c in columns}
+    frame.attrs["notices"] = _warn(notices)
     return frame
 
 
@@ -148,7 +267,87 @@ def read_meta(path: str | Path) -> dict[str, Any]:
     for record in sources.records:
         if record.body.get("kind") == "meta":
             meta.update(record.body["items"])
+    if meta.get("status") == "running" and writer_alive(sources.path) is False:
+        _mark_interrupted(meta, sources)
     return meta
+
+
+def _mark_interrupted(meta: dict[str, Any], sources: _Sources) -> None:
+    """A "running" file nobody writes: say it was interrupted, when, and with how much."""
+    count = len(sources.h5.ids if sources.h5 is not None else ()) + sum(1 for _ in sources.points())
+    when = _last_point_time(sources)
+    meta["status"] = "interrupted"
+    meta["interrupted"] = {"last_point_at": when, "points_stored": count}
+    if not meta.get("reason"):
+        meta["reason"] = (
+            "the run's process ended without recording an ending (killed, crashed or power "
+            f"lost); last point stored {when or 'never'}; resume to continue"
+        )
+    sessions = [dict(s) for s in meta.get("sessions") or [] if isinstance(s, dict)]
+    if sessions and "ended" not in sessions[-1]:
+        sessions[-1].update(ended=when or "unknown", status="interrupted", points_at_end=count)
+        meta["sessions"] = sessions
+
+
+def _iso(unix_time: float) -> str:
+    return dt.datetime.fromtimestamp(unix_time, dt.UTC).isoformat(timespec="seconds")
+
+
+def _last_point_time(sources: _Sources) -> str | None:
+    """When the last point was stored: the latest ``stored_at`` column value, else the time
+    the journal was last written; None without points."""
+    times: list[float] = []
+    names = [c.name for c in sources.columns]
+    if sources.h5 is not None and sources.h5.ids and "stored_at" in names:
+        with _open_h5(sources.path, "r") as h5:
+            times.append(float(np.nanmax(h5["points/stored_at"][:])))
+    times += [float(r.body["row"].get("stored_at", math.nan)) for r in sources.points()]
+    times = [t for t in times if math.isfinite(t)]
+    if times:
+        return _iso(max(times))
+    has_points = bool(sources.h5 and sources.h5.ids) or any(True for _ in sources.points())
+    jpath = journal_path(sources.path)
+    if has_points and jpath.is_file():
+        return _iso(os.stat(jpath).st_mtime)
+    return None
+
+
+def last_point_time(path: str | Path) -> str | None:
+    """When the last point of ``path`` was stored (ISO 8601, UTC), None without points."""
+    return _last_point_time(_sources(path))
+
+
+def mirror_lag(path: str | Path) -> list[str]:
+    """How the HDF5 file differs from the journal ([] when it holds everything the journal
+    does): missing or unreadable, points it lacks, metadata (the status) it lacks."""
+    path = _result_path(path)
+    jpath = journal_path(path)
+    if not jpath.is_file() or _header_of(jr.first_record(jpath)) is None:
+        return []
+    try:
+        h5_exists = _read_h5_state(path) is not None
+    except _Unreadable:
+        return ["the HDF5 file is unreadable"]
+    if not h5_exists:
+        return ["the HDF5 file is missing"]
+    sources = _sources(path)
+    if sources.header is None:
+        return []  # the journal belongs to another run: the HDF5 file is the result
+    lag: list[str] = []
+    points = sum(1 for _ in sources.points())
+    if points:
+        lag.append(f"{points} point(s) only in the journal")
+    assert sources.h5 is not None
+    merged = dict(sources.h5.meta)
+    for record in sources.records:
+        if record.body.get("kind") == "meta":
+            merged.update(record.body["items"])
+    if merged.get("status") != sources.h5.meta.get("status"):
+        lag.append(f"status {sources.h5.meta.get('status')!r} where the journal says "
+                   f"{merged.get('status')!r}")  # fmt: skip
+    elif merged != sources.h5.meta:
+        lag.append("metadata behind the journal")
+    return lag
 
 
 def read_waveforms(path: str | Path, point_id: int) -> dict[str, StoredWaveform]:

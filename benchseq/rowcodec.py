@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import zlib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -258,3 +259,32 @@ def _header_of(record: jr.Record | None) -> dict[str, Any] | None:
     if record is None or record.body.get("kind") != "header":
         return None
     return record.body
+
+
+def row_checksum(encoded_row: Mapping[str, Any]) -> int:
+    """CRC-32 of a row's canonical journal JSON (sorted keys, no spaces, NaN as ``NaN``).
+
+    The HDF5 file keeps it per row (``/points/row_crc32``): a reader re-encodes the row it
+    read and compares, so a flipped bit in any column is caught."""
+    text = json.dumps(dict(encoded_row), sort_keys=True, separators=(",", ":"), allow_nan=True)
+    return zlib.crc32(text.encode("utf-8"))
+
+
+def _canonical(kind: str, value: Any) -> Any:
+    if kind == "c16":
+        number = complex(value)
+        return [number.real, number.imag]
+    if kind == "f8":
+        return float(value)
+    if kind == "i8":
+        return int(value)
+    if kind == "bool":
+        return bool(value)
+    return value
+
+
+def encoded_rows(columns: Sequence[Column], arrays: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """Rows read from HDF5 column arrays, encoded as the journal encodes them."""
+    lists = {c.name: list(arrays[c.name].tolist()) for c in columns}
+    n = len(next(iter(lists.values()))) if lists else 0
+    return [{c.name: _canonical(c.kind, lists[c.name][i]) for c in columns} for i in range(n)]

@@ -7,6 +7,7 @@ import dataclasses
 import datetime as dt
 import platform
 import uuid
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -260,7 +261,34 @@ def _run_on_bench(
     keep_waveforms: bool,
     record_identities: bool,
 ) -> RunOutcome:
-    """Open the bench, note what the file must know of it, run the sequencer, close."""
+    """Open the bench, note what the file must know of it, run the sequencer, close.
+
+    The writer (and with it the result's write lock) is closed on every way out."""
+    try:
+        return _sequence_on_bench(
+            plan, bench, writer, open_session, calibration, planned_bench_time,
+            seed=seed, faults=faults, emit=emit, stop=stop, keep_waveforms=keep_waveforms,
+            record_identities=record_identities,
+        )  # fmt: skip
+    finally:
+        writer.close()
+
+
+def _sequence_on_bench(
+    plan: Plan,
+    bench: Bench,
+    writer: Any,
+    open_session: Any,
+    calibration: Any,
+    planned_bench_time: float,
+    *,
+    seed: int,
+    faults: Any,
+    emit: EventSink | None,
+    stop: StopControl | None,
+    keep_waveforms: bool,
+    record_identities: bool,
+) -> RunOutcome:
     try:
         session = open_session(bench, seed=seed, faults=faults)
     except BaseException as exc:  # the file must not go on saying "running"
@@ -300,13 +328,23 @@ def resume_run(
     faults: Any = None,
     session_factory: Any = None,
 ) -> tuple[RunOutcome | None, Path]:
-    """Continue an interrupted run from the plan and bench stored in its file."""
+    """Continue an interrupted run from the plan and bench stored in its file.
+
+    First the HDF5 file is repaired from the journal where it lags (a kill or a full disk
+    during an update); a complete run then returns (None, path). Notices of what was
+    repaired are issued as ``ResultWarning``. Another process writing the file: ResultBusy."""
     from benchseq.drivers.session import open_session
-    from benchseq.store import RunWriter, read_meta
+    from benchseq.store import ResultBusy, ResultWarning, RunWriter, read_meta, repair_mirror
+    from benchseq.writelock import busy_message
 
     open_session = session_factory or open_session
 
     path = Path(result_path)
+    repaired = repair_mirror(path)
+    if repaired.writer_active:
+        raise ResultBusy(busy_message(path))
+    for notice in repaired.notices(path):
+        warnings.warn(notice, ResultWarning, stacklevel=2)
     meta = read_meta(path)
     if meta.get("status") == "complete":
         return None, path

@@ -19,19 +19,26 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import errno
+import json
 import math
 import os
 import shutil
+import signal
+import socket
 import time
 import uuid
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from glob import escape as glob_escape
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from benchseq import journal as jr
 from benchseq.h5layout import (
     COMPLEX_LAYOUT,
+    DAMAGE_COUNT,
+    DAMAGE_RANGES,
     FORMAT,
     FORMAT_VERSION,
     JOURNAL_SUFFIX,
@@ -48,7 +55,14 @@ from benchseq.h5layout import (
     _write_meta,
     journal_path,
 )
-from benchseq.results import read_meta, read_results, read_truth, read_waveforms
+from benchseq.results import (
+    ResultWarning,
+    mirror_lag,
+    read_meta,
+    read_results,
+    read_truth,
+    read_waveforms,
+)
 from benchseq.rowcodec import _DTYPES as _DTYPES  # the tests read the column dtypes here
 from benchseq.rowcodec import (
     BadResultFile,
@@ -72,6 +86,7 @@ from benchseq.rowcodec import (
     _waveform_parts,
     _with_point_id,
 )
+from benchseq.writelock import ResultBusy, WriteLock, refuse_non_regular
 
 if TYPE_CHECKING:
     import h5py
@@ -88,7 +103,10 @@ __all__ = [
     "Kind",
     "MissingPoint",
     "OutputExists",
+    "RepairOutcome",
+    "ResultBusy",
     "ResultPathError",
+    "ResultWarning",
     "RowError",
     "RunWriter",
     "StoreError",
@@ -99,9 +117,15 @@ __all__ = [
     "read_results",
     "read_truth",
     "read_waveforms",
+    "repair_mirror",
 ]
 
 _FINISH_STATES = ("complete", "stopped", "aborted")
+_TMP_SUFFIX = ".tmp"
+# Test hook: "ACTION:STAGE[,STAGE...]" makes the HDF5 update at STAGE (create, update, final;
+# "-written" appended: after the temporary copy is complete, before it is renamed) either
+# kill this process (ACTION "kill", SIGKILL) or fail as a full disk would ("enospc").
+FAULT_ENV = "BENCHSEQ_STORE_FAULT"
 
 
 @dataclass(frozen=True)
@@ -157,6 +181,7 @@ class RunWriter:
         self._last_update_end = -math.inf
         self._last_update_s = 0.0
         self._finished = False
+        self._lock: WriteLock | None = None
 
     # -- opening ------------------------------------------------------------------------
     @classmethod
@@ -174,6 +199,7 @@ class RunWriter:
         path = Path(path)
         jpath = journal_path(path)
         meta_items = _jsonable(meta, "run metadata")
+        meta_items.setdefault("sessions", [_session_entry(0)])
         header = {
             "kind": "header",
             "format": FORMAT,
@@ -189,12 +215,6 @@ class RunWriter:
         }
         if path.is_dir():
             raise ResultPathError(f"{path} is a folder; give a result file name such as run.h5")
-        existing = [p for p in (path, jpath) if p.exists()]
-        if existing and not force:
-            raise OutputExists(
-                f"{existing[0]} already exists; choose another result file or overwrite it "
-                "with --force (force=True)"
-            )
         try:
             path.parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
@@ -202,6 +222,33 @@ class RunWriter:
                 f"cannot create results at {path}: the folder {path.parent} cannot be made "
                 f"({exc.strerror or exc})"
             ) from None
+        for existing_path in (path, jpath):
+            refuse_non_regular(existing_path)
+        lock = _acquire_lock(path)
+        try:
+            writer = cls._create_locked(path, jpath, header, force, policy)
+        except BaseException:
+            lock.release()
+            raise
+        writer._lock = lock
+        return writer
+
+    @classmethod
+    def _create_locked(
+        cls,
+        path: Path,
+        jpath: Path,
+        header: dict[str, Any],
+        force: bool,
+        policy: Consolidation | None,
+    ) -> RunWriter:
+        existing = [p for p in (path, jpath) if p.exists()]
+        if existing and not force:
+            raise OutputExists(
+                f"{existing[0]} already exists; choose another result file or overwrite it "
+                "with --force (force=True)"
+            )
+        remove_stale_temporaries(path)
         try:
             journal = _new_journal(jpath, header, replace=force)
         except FileExistsError:
@@ -214,7 +261,7 @@ class RunWriter:
         writer = cls(path, header, policy or Consolidation())
         writer._journal = journal
         try:
-            writer._consolidate()
+            writer._consolidate("create")
         except StoreWriteError as exc:
             journal.close()
             with contextlib.suppress(OSError):
@@ -224,8 +271,28 @@ class RunWriter:
 
     @classmethod
     def resume(cls, path: str | Path, *, policy: Consolidation | None = None) -> RunWriter:
-        """Reopen an interrupted run: cut a torn journal tail, bring the HDF5 file up to date."""
+        """Reopen an interrupted run: cut a torn journal tail, bring the HDF5 file up to date.
+
+        Takes the result's write lock first (ResultBusy while another process writes it)
+        and records the new session in the file's ``sessions`` list."""
         path = _result_path(path)
+        for existing_path in (path, journal_path(path)):
+            refuse_non_regular(existing_path)
+        lock = _acquire_lock(path)
+        try:
+            remove_stale_temporaries(path)
+            writer = cls._open_existing(path, policy, append=True)
+            writer._lock = lock
+            writer._start_session()
+        except BaseException:
+            lock.release()
+            raise
+        return writer
+
+    @classmethod
+    def _open_existing(cls, path: Path, policy: Consolidation | None, *, append: bool) -> RunWriter:
+        """The writer of an existing result, its HDF5 file brought up to date from the journal
+        (``append``: the journal reopened for new records, a torn tail cut off)."""
         jpath = journal_path(path)
         try:
             h5 = _read_h5_state(path)
@@ -247,28 +314,46 @@ class RunWriter:
         writer = cls(path, header, policy or Consolidation())
         records = scan.records if scan else []
         writer._load_history(h5, records)
+        usable_journal = scan is not None and _header_of(scan.records[0] if scan.records else None)
         try:
-            if scan is not None and _header_of(scan.records[0] if scan.records else None):
-                writer._journal = jr.JournalWriter.reopen(jpath, scan.valid_end)
-            else:
-                writer._journal = None
+            if usable_journal and append:
+                writer._journal = jr.JournalWriter.reopen(jpath, scan.valid_end)  # type: ignore[union-attr]
             if h5 is not None:
                 writer._h5_valid = True
                 writer._h5_ids = set(h5.ids)
                 boundaries = {len(jr.FILE_MAGIC)} | {r.end for r in records}
                 same = h5.journal_id == header["journal_id"] and h5.journal_offset in boundaries
                 writer._h5_offset = h5.journal_offset if same else None
-            if scan is not None:
+            if usable_journal:
                 writer._consolidate()
-            if writer._journal is None:  # no usable journal: start a new one from the file
+            if append and writer._journal is None:  # no usable journal: a new one from the file
                 header = _header_from_h5(_read_h5_state(path))  # type: ignore[arg-type]
                 writer.journal_id = header["journal_id"]
                 writer._journal = _new_journal(jpath, header, replace=True)
                 writer._h5_offset = None
                 writer._consolidate()
         except OSError as exc:
+            writer.close()
             raise StoreWriteError(f"cannot resume {path}: {exc.strerror or exc}") from None
+        except BaseException:
+            writer.close()
+            raise
         return writer
+
+    def _start_session(self) -> None:
+        """Close the record of an earlier session that ended without saying so (killed, power
+        cut) and open this one, both in the ``sessions`` metadata list."""
+        sessions = [dict(s) for s in self.meta.get("sessions") or [] if isinstance(s, dict)]
+        if sessions and "ended" not in sessions[-1]:
+            from benchseq.results import last_point_time
+
+            sessions[-1].update(
+                ended=last_point_time(self.path) or "unknown",
+                status="interrupted",
+                points_at_end=len(self._stored),
+            )
+        sessions.append(_session_entry(len(self._stored)))
+        self.update_meta(sessions=sessions)
 
     def _load_history(self, h5: _H5State | None, records: list[jr.Record]) -> None:
         if h5 is not None:
@@ -365,6 +450,12 @@ class RunWriter:
                 f"finish status must be one of {', '.join(_FINISH_STATES)}, not {status!r}"
             )
         final = {"status": status, "ended": _utc_now(), **items}
+        sessions = [dict(x) for x in self.meta.get("sessions") or [] if isinstance(x, dict)]
+        if sessions:
+            sessions[-1].update(
+                ended=final["ended"], status=status, points_at_end=len(self._stored)
+            )
+            final["sessions"] = sessions
         if traceback is not None:
             final["traceback"] = traceback
         if reason is not None:
@@ -386,20 +477,19 @@ class RunWriter:
         self.meta.update(clean)
         self._meta_revision += 1
         try:
-            self._consolidate()
-        finally:  # the ending is in the journal either way; readers merge it
-            self.close()
+            self._consolidate("final")
+        finally:  # the ending is in the journal either way; readers merge it and a resume,
+            self.close()  # `show` or `report` repairs the HDF5 file from it
         self._finished = True
-        if status == "complete":
-            with contextlib.suppress(FileNotFoundError):
-                self.journal_file.unlink()
-            jr.fsync_directory(self.path.parent)
 
     def close(self) -> None:
-        """Release the journal without finishing (the run stays resumable)."""
+        """Release the journal and the write lock without finishing (the run stays resumable)."""
         if self._journal is not None:
             self._journal.close()
             self._journal = None
+        if self._lock is not None:
+            self._lock.release()
+            self._lock = None
 
     def _check_open(self) -> None:
         if self._finished or self._journal is None:
@@ -426,17 +516,19 @@ class RunWriter:
             except StoreWriteError as exc:  # the point is durable; readers use the journal
                 self.consolidation_error = str(exc)
 
-    def _consolidate(self) -> None:
+    def _consolidate(self, stage: str = "update") -> None:
         """Bring the HDF5 file up to date from the journal: copy, append, fsync, rename."""
         started = time.monotonic()
-        tmp = self.path.with_name(f".{self.path.name}.{uuid.uuid4().hex[:8]}.tmp")
+        tmp = self.path.with_name(f".{self.path.name}.{uuid.uuid4().hex[:8]}{_TMP_SUFFIX}")
         try:
+            _fault_hook(stage)
             if self._h5_valid:
                 shutil.copyfile(self.path, tmp)
             with _open_h5(tmp, "r+" if self._h5_valid else "w") as h5:
                 new_ids, offset = self._bring_up_to_date(h5, fresh=not self._h5_valid)
                 h5.flush()
             _fsync_file(tmp)
+            _fault_hook(f"{stage}-written")
             os.replace(tmp, self.path)
             jr.fsync_directory(self.path.parent)
         except (OSError, RuntimeError) as exc:
@@ -486,6 +578,8 @@ class RunWriter:
         offset = scan.valid_end if scan else None
         h5.attrs["journal_offset"] = offset if offset is not None else len(jr.FILE_MAGIC)
         h5.attrs["point_rows"] = points["point_id"].shape[0]
+        if scan is not None:
+            _record_damage(h5, self.journal_file, scan, fresh)
         h5.attrs["complex_layout"] = COMPLEX_LAYOUT
         if fresh or self._h5_meta_revision != self._meta_revision:
             _write_meta(h5, self.meta)
@@ -531,3 +625,131 @@ def _header_from_h5(h5: _H5State) -> dict[str, Any]:
         "columns": _columns_to_json(h5.columns),
         "truth_columns": _columns_to_json(h5.truth_columns),
     }
+
+
+def _fault_hook(stage: str) -> None:
+    """The test hook named by FAULT_ENV (no-op unless that variable names ``stage``)."""
+    spec = os.environ.get(FAULT_ENV, "")
+    if not spec:
+        return
+    action, _, stages = spec.partition(":")
+    if stage not in stages.split(","):
+        return
+    if action == "kill":
+        os.kill(os.getpid(), signal.SIGKILL)
+    elif action == "enospc":
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+
+def _acquire_lock(path: Path) -> WriteLock:
+    try:
+        return WriteLock.acquire(path)
+    except OSError as exc:
+        raise ResultPathError(
+            f"cannot create results at {path}: its lock file cannot be made "
+            f"({exc.strerror or exc}; check the folder is writable and has free space)"
+        ) from None
+
+
+def _session_entry(points_at_start: int) -> dict[str, Any]:
+    return {
+        "started": _utc_now(),
+        "host": socket.gethostname(),
+        "pid": os.getpid(),
+        "points_at_start": points_at_start,
+    }
+
+
+def stale_temporaries(path: str | Path) -> list[Path]:
+    """Temporary copies an update of ``path`` (or of its journal) left behind when killed."""
+    path = Path(path)
+    found: list[Path] = []
+    for stem in (path.name, journal_path(path).name):
+        found += path.parent.glob(f".{glob_escape(stem)}.*{_TMP_SUFFIX}")
+    return sorted(p for p in found if p.is_file())
+
+
+def remove_stale_temporaries(path: str | Path) -> list[Path]:
+    """Remove them (call with the write lock held: no live writer is using one)."""
+    removed = []
+    for tmp in stale_temporaries(path):
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+            removed.append(tmp)
+    return removed
+
+
+@dataclass(frozen=True)
+class RepairOutcome:
+    """What ``repair_mirror`` found and did."""
+
+    lagging: list[str]  # how the HDF5 file differed from the journal ([] when it did not)
+    repaired: bool  # the HDF5 file was rebuilt from the journal
+    temporaries_removed: int
+    writer_active: bool  # another process holds the write lock: nothing was touched
+    problem: str = ""  # why a needed repair could not be made (read-only folder...)
+
+    def notices(self, path: str | Path) -> list[str]:
+        """Plain sentences for the user (empty when there was nothing to say)."""
+        out: list[str] = []
+        if self.lagging and self.repaired:
+            out.append(
+                f"{path}: the HDF5 file lagged its journal ({'; '.join(self.lagging)}); "
+                "repaired from the journal"
+            )
+        elif self.lagging:
+            out.append(
+                f"{path}: the HDF5 file is stale ({'; '.join(self.lagging)}) and could not be "
+                f"repaired ({self.problem}); what is shown is read from the journal"
+            )
+        if self.temporaries_removed:
+            out.append(
+                f"{path}: removed {self.temporaries_removed} temporary copy(ies) an interrupted "
+                "update left behind"
+            )
+        return out
+
+
+def repair_mirror(path: str | Path) -> RepairOutcome:
+    """Bring a result's HDF5 file in line with its journal when no writer is running.
+
+    Does nothing while another process holds the write lock (its run keeps the file up to
+    date). Otherwise removes stale temporaries and, when the HDF5 file misses points or
+    metadata (status included) the journal holds, rebuilds it from the journal."""
+    path = _result_path(path)
+    for existing_path in (path, journal_path(path)):
+        refuse_non_regular(existing_path)
+    if not path.exists() and not journal_path(path).exists():
+        return RepairOutcome([], False, 0, False)  # nothing to repair; readers say it is missing
+    try:
+        lock = WriteLock.acquire(path, patience_s=0.2)
+    except ResultBusy:
+        return RepairOutcome([], False, 0, True)
+    except OSError as exc:  # e.g. a read-only folder: the lock file cannot be made
+        return RepairOutcome(mirror_lag(path), False, 0, False, exc.strerror or str(exc))
+    try:
+        removed = len(remove_stale_temporaries(path))
+        lagging = mirror_lag(path)  # now that no writer can change it
+        if not lagging:
+            return RepairOutcome([], False, removed, False)
+        try:
+            writer = RunWriter._open_existing(path, None, append=False)
+        except StoreWriteError as exc:
+            return RepairOutcome(lagging, False, removed, False, str(exc))
+        writer.close()
+        return RepairOutcome(lagging, True, removed, False)
+    finally:
+        lock.release()
+
+
+def _record_damage(h5: h5py.File, jpath: Path, scan: jr.ScanResult, fresh: bool) -> None:
+    """Keep in the file the damaged journal records an update met (a torn tail excepted:
+    resume cuts it), so readers report them after the journal has moved on."""
+    inside = [(a, b) for a, b in scan.damaged if b < scan.size]
+    count = 0 if fresh else int(h5.attrs.get(DAMAGE_COUNT, 0))
+    ranges = [] if fresh or not count else json.loads(h5.attrs[DAMAGE_RANGES])
+    if inside:
+        count += jr.unreadable_records(jpath, inside)
+        ranges += [[a, b] for a, b in inside]
+    h5.attrs[DAMAGE_COUNT] = count
+    h5.attrs[DAMAGE_RANGES] = json.dumps(ranges)

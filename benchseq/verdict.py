@@ -15,6 +15,9 @@ The decision rule (common practice for a limit check on a measured value, often 
 - A point with neither a value nor a bound inside the span is "undetermined".
 - The run: "fail" if any point fails; else "undetermined" if any point is undetermined or
   no point lies inside the span; else "pass". Without a mask: "no mask".
+- A run that stored fewer points than planned (stopped, aborted, interrupted, or still
+  running) is judged on its stored points only and says so: "PASS so far (incomplete run:
+  1 of 16 planned points stored)". A fail stays a fail; a pass can still turn into a fail.
 
 The worst margin is the smallest ``value - limit`` among the points that decide (values, and
 bounds that pass; for a bound it is itself a lower bound of the true margin).
@@ -55,6 +58,24 @@ class MaskVerdict:
     worst_is_bound: bool
     points: pd.DataFrame = field(repr=False)
     coverage_factor: float = COVERAGE_FACTOR
+    planned: int | None = None  # points the plan has (None: unknown)
+
+    @property
+    def incomplete(self) -> bool:
+        """True when fewer points are stored than the plan has."""
+        return self.planned is not None and len(self.points) < self.planned
+
+    def _status_words(self) -> str:
+        words = self.status.upper()
+        if self.incomplete and self.status in ("pass", "undetermined"):
+            words += " so far"
+        return words
+
+    def progress(self) -> str:
+        """'incomplete run: 1 of 16 planned points stored' ('' when complete or unknown)."""
+        if not self.incomplete:
+            return ""
+        return f"incomplete run: {len(self.points)} of {self.planned} planned points stored"
 
     def count(self, outcome: str) -> int:
         """How many points have ``outcome`` (one of OUTCOMES)."""
@@ -76,7 +97,9 @@ class MaskVerdict:
         """'PASS, worst margin +11.79 dB at 1 MHz (point 15)' (a few words for a plot)."""
         if self.status == "no mask":
             return "no mask"
-        text = self.status.upper()
+        text = self._status_words()
+        if self.incomplete:
+            text += f" ({len(self.points)} of {self.planned} points)"
         if math.isfinite(self.worst_margin_db):
             bound = "≥ " if self.worst_is_bound else ""
             text += (
@@ -93,7 +116,9 @@ class MaskVerdict:
             return "no mask: the plan sets no pass/fail limit"
         name = f' "{self.mask_name}"' if self.mask_name else ""
         judged = len(self.points) - self.count("no limit")
-        parts = [f"{self.status.upper()} against mask{name}"]
+        parts = [f"{self._status_words()} against mask{name}"]
+        if self.incomplete:
+            parts.append(self.progress())
         if not len(self.points):
             parts.append("no points stored")
         elif judged == 0:
@@ -128,6 +153,9 @@ class MaskVerdict:
             "worst_point_id": self.worst_point_id,
             "worst_is_bound": self.worst_is_bound,
             "coverage_factor": self.coverage_factor,
+            "complete": not self.incomplete,
+            "points_stored": len(self.points),
+            "points_planned": self.planned,
             "counts": {o: self.count(o) for o in OUTCOMES},
             "straddling": self.straddling,
             "points": [
@@ -157,8 +185,12 @@ def _column(frame: pd.DataFrame, name: str, default: Any) -> np.ndarray:
     return np.full(len(frame), default)
 
 
-def mask_verdict(mask: Any, frame: pd.DataFrame, k: float = COVERAGE_FACTOR) -> MaskVerdict:
+def mask_verdict(
+    mask: Any, frame: pd.DataFrame, k: float = COVERAGE_FACTOR, planned: int | None = None
+) -> MaskVerdict:
     """Judge every row of ``frame`` (read_results columns) against ``mask`` (a plan Mask or None).
+
+    ``planned``: how many points the plan has; fewer rows make the verdict incomplete.
 
     Uses ``frequency`` (the frequency actually set; ``frequency_planned`` when absent),
     ``rejection_db``, ``uncertainty_db``, ``bound_db`` and ``is_bound``."""
@@ -209,7 +241,7 @@ def mask_verdict(mask: Any, frame: pd.DataFrame, k: float = COVERAGE_FACTOR) -> 
         columns=list(VERDICT_COLUMNS),
     )
     if mask is None:
-        return MaskVerdict("no mask", "", math.nan, None, False, points, k)
+        return MaskVerdict("no mask", "", math.nan, None, False, points, k, planned)
 
     deciding = (outcome == "pass") | (outcome == "fail")
     worst_margin, worst_id, worst_bound = math.nan, None, False
@@ -224,5 +256,12 @@ def mask_verdict(mask: Any, frame: pd.DataFrame, k: float = COVERAGE_FACTOR) -> 
     else:
         status = "pass"
     return MaskVerdict(
-        status, str(getattr(mask, "name", "") or ""), worst_margin, worst_id, worst_bound, points, k
+        status,
+        str(getattr(mask, "name", "") or ""),
+        worst_margin,
+        worst_id,
+        worst_bound,
+        points,
+        k,
+        planned,
     )

@@ -110,7 +110,7 @@ def write_result(
     columns: Sequence[Column] = POINT_COLUMNS,
     meta: Mapping[str, Any] | None = None,
 ) -> Path:
-    """Write a result file; ``status=None`` leaves it as an interrupted run ("running")."""
+    """Write a result file; ``status=None`` leaves it as an interrupted run ("running" with no writer: read as "interrupted")."""
     rows = list(rows)
     items: dict[str, Any] = {
         "run_id": str(uuid.uuid4()),

@@ -348,13 +348,13 @@ def test_overlay_of_two_files(demo_file: Path, edge_files: dict[str, Path], tmp_
 def test_partial_run_is_marked(edge_files: dict[str, Path], tmp_path: Path) -> None:
     report = gather([edge_files["partial"]])
     source = report.sources[0]
-    assert source.partial and source.status == "running" and source.stored == 3
+    assert source.partial and source.status == "interrupted" and source.stored == 3
     note = source.status_note()
-    assert note.startswith("PARTIAL RUN (running)") and "3 of 8 planned points stored" in note
+    assert note.startswith("PARTIAL RUN (interrupted)") and "3 of 8 planned points stored" in note
     html = write_report([edge_files["partial"]], "html", tmp_path / "p.html")[0].read_text()
-    assert '<p class="partial" role="alert">PARTIAL RUN (running)' in html
+    assert '<p class="partial" role="alert">PARTIAL RUN (interrupted)' in html
     md = write_report([edge_files["partial"]], "md", tmp_path / "p.md")[0].read_text()
-    assert "> **PARTIAL RUN (running)" in md
+    assert "> **PARTIAL RUN (interrupted)" in md
     stopped = gather([edge_files["stopped"]]).sources[0]
     assert stopped.partial and "stopped by the user" in stopped.status_note()
     assert "1 of 4 planned points stored" in stopped.status_note()

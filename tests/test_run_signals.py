@@ -255,7 +255,7 @@ def test_a_stop_signal_finishes_the_point_then_goes_to_the_safe_state(
         proc.wait(timeout=RUN_LIMIT_S)
     finally:
         _end(proc)
-    assert proc.returncode == 0, text.read_text(encoding="utf-8")
+    assert proc.returncode == 1, text.read_text(encoding="utf-8")  # stopped early: not 0
     outcome = _outcome(text)
     assert outcome["status"] == "stopped" and outcome["reason"] == f"{sig.name} received"
     meta = read_meta(out)
@@ -286,7 +286,7 @@ def test_a_second_ctrl_c_abandons_the_point_but_still_reaches_the_safe_state(
         took = time.monotonic() - second
     finally:
         _end(proc)
-    assert proc.returncode == 0, text.read_text(encoding="utf-8")
+    assert proc.returncode == 1, text.read_text(encoding="utf-8")  # stopped early: not 0
     outcome = _outcome(text)
     assert outcome["status"] == "stopped" and "abandoned" in outcome["reason"]
     assert "second stop request (SIGINT)" in outcome["reason"]

@@ -109,7 +109,9 @@ def test_round_trip_every_column_kind_and_meta(tmp_path):
     writer = write_run(path, 12)
     writer.update_meta(identities={"scope": "SIM,SCOPE,0,1", "supply": "SIM,SUPPLY,0,1"})
     writer.finish("complete")
-    assert not journal_path(path).exists(), "a complete run is self-contained"
+    assert journal_path(path).exists(), "the journal stays as the durable second record"
+    assert_same(read_results(path), range(12))
+    journal_path(path).rename(tmp_path / "aside.journal")  # the HDF5 file alone holds it all
     assert_same(read_results(path), range(12))
     meta = read_meta(path)
     assert meta["plan_text"] == META["plan_text"] and meta["injector"] == META["injector"]
@@ -138,7 +140,7 @@ def test_plain_h5py_reads_units_complex_and_meta(tmp_path):
         assert json.loads(h5["meta/injector"].asstr()[()]) == META["injector"]
         assert json.loads(h5["meta/json"].asstr()[()])["status"] == "stopped"
         assert h5["truth/rejection_db"].attrs["unit"] == "dB"
-        assert "groups per point" and len(h5["points"]) == len(COLUMNS)
+        assert "groups per point" and len(h5["points"]) == len(COLUMNS) + 1  # + row_crc32
 
 
 def test_waveforms_ragged_per_channel_with_scaling(tmp_path):

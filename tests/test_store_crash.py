@@ -15,11 +15,13 @@ import sys
 import textwrap
 import threading
 import time
+import warnings
 
 import numpy as np
 import pytest
 
 from benchseq import journal as jr
+from benchseq.results import ResultWarning, mirror_lag
 from benchseq.store import (
     Column,
     Consolidation,
@@ -173,7 +175,8 @@ def test_sigkill_at_random_moments_loses_no_acknowledged_point(tmp_path):
     assert final.proc.returncode == 0, final.stderr()
     assert "finished" in final.lines
     assert check_intact(path, reported | final.stored(), waveforms_of=10) == set(range(total))
-    assert not journal_path(path).exists()
+    assert journal_path(path).exists()  # kept after completion, the HDF5 file fully caught up
+    assert mirror_lag(path) == []
 
 
 # -- torn and damaged journal records ----------------------------------------------------------
@@ -197,16 +200,27 @@ def test_truncated_journal_loads_exactly_the_whole_records(lagging_run):
     rng = random.Random(5)
     offsets = [rng.randrange(first, len(pristine)) for _ in range(25)]
     offsets += [end for _, end in spans.values()][:3] + [end - 1 for _, end in spans.values()][:3]
+    ends = {end for _, end in spans.values()} | {first}
     for offset in offsets:
         journal_path(path).write_bytes(pristine[:offset])
         whole = {i for i, (_, end) in spans.items() if end <= offset}
-        assert check_intact(path, whole, waveforms_of=2) == whole, f"cut at byte {offset}"
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", ResultWarning)
+            assert check_intact(path, whole, waveforms_of=2) == whole, f"cut at byte {offset}"
+        said = {str(w.message) for w in caught if w.category is ResultWarning}
+        if offset in ends:
+            assert not said, f"cut at byte {offset}: a clean end reported as damage"
+        else:  # a torn last record is reported, never skipped silently
+            assert said and all("1 journal record(s) unreadable" in m for m in said), said
     # resume cuts the torn tail, then appends cleanly after the last whole record
     cut = spans[9][1] + 7
     journal_path(path).write_bytes(pristine[:cut])
     writer = RunWriter.resume(path)
     assert writer.stored_ids == set(range(10))
-    assert journal_path(path).stat().st_size == spans[9][1]
+    after_cut = [r for r in jr.scan(journal_path(path)).records if r.start >= spans[9][1]]
+    assert after_cut[0].start == spans[9][1], "the torn tail is cut off"
+    assert [r.body["kind"] for r in after_cut] == ["meta"]  # the resumed session, recorded
+    assert after_cut[0].body["items"]["sessions"][-1]["points_at_start"] == 10
     for i in range(10, 15):
         row = dict(zip(["frequency", "pin", "flags"], expected_row(i), strict=True))
         writer.append(i, row, waveforms={"pin": expected_samples(i)})
@@ -224,4 +238,8 @@ def test_flipped_byte_drops_only_the_damaged_record(lagging_run):
         damaged[position] ^= rng.randrange(1, 256)
         journal_path(path).write_bytes(bytes(damaged))
         hit = {i for i, (start, end) in spans.items() if start <= position < end}
-        assert check_intact(path, set(spans) - hit, waveforms_of=2) == set(spans) - hit
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", ResultWarning)
+            assert check_intact(path, set(spans) - hit, waveforms_of=2) == set(spans) - hit
+        said = {str(w.message) for w in caught if w.category is ResultWarning}
+        assert said and all("journal record(s) unreadable" in m for m in said), said

@@ -116,7 +116,29 @@ def _run_section(source: Source) -> Section:
         pairs.append(("plan notes", " ".join(source.plan.notes.split())))
     if meta.get("traceback"):
         pairs.append(("fault", str(meta.get("reason", "") or "see the stored traceback")))
+    pairs += _session_pairs(meta)
     return "Run", [(k, v) for k, v in pairs if v]
+
+
+def _session_pairs(meta: dict[str, Any]) -> list[tuple[str, str]]:
+    """One line per session of the run (the start and every resume): when, how it ended."""
+    sessions = [s for s in meta.get("sessions") or [] if isinstance(s, dict)]
+    pairs = []
+    for n, session in enumerate(sessions, start=1):
+        what = "started" if n == 1 else "resumed"
+        text = f"{what} {session.get('started', '?')}"
+        if session.get("host"):
+            text += f" on {session['host']} (pid {session.get('pid', '?')})"
+        text += f" with {session.get('points_at_start', '?')} points stored; "
+        if "ended" in session:
+            text += (
+                f"{session.get('status', '?')} {session['ended']} with "
+                f"{session.get('points_at_end', '?')} points stored"
+            )
+        else:
+            text += "still running"
+        pairs.append((f"session {n}", text))
+    return pairs
 
 
 def _plan_section(source: Source) -> Section:

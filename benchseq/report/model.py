@@ -137,7 +137,8 @@ class Source:
         why = {
             "stopped": "stopped by the user before the end",
             "aborted": "aborted by a fault",
-            "running": "still running, or ended without finishing (power cut, killed)",
+            "running": "still running (its writer holds the file)",
+            "interrupted": "its process ended without finishing (killed, crashed, power lost)",
         }.get(self.status, self.status)
         text = f"PARTIAL RUN ({self.status}): {why}; {stored}"
         if reason:
@@ -263,7 +264,9 @@ def load_source(path: str | Path, index: int = 0, first_curve: int = 0) -> Sourc
         frame = frame.sort_values("point_id", kind="stable").reset_index(drop=True)
     plan, problem = _stored_plan(meta, path)
     mask = plan.mask if plan is not None else None
-    verdict = mask_verdict(mask, frame, COVERAGE_FACTOR)
+    count = meta.get("point_count")
+    planned = int(count) if isinstance(count, int | float) and math.isfinite(count) else None
+    verdict = mask_verdict(mask, frame, COVERAGE_FACTOR, planned)
     source = Source(index, path, meta, frame, truth, mask, plan, problem, verdict)
     source.curves = _curves(index, frame, first_curve)
     return source
