@@ -261,6 +261,11 @@ def _run_on_bench(
     record_identities: bool,
 ) -> RunOutcome:
     """Open the bench, note what the file must know of it, run the sequencer, close."""
+    if not bench.is_simulated and emit is not None:
+        from benchseq.cautions import RUN_CAUTION
+        from benchseq.sequencer import Event
+
+        emit(Event("caution", "\n".join(RUN_CAUTION)))
     try:
         session = open_session(bench, seed=seed, faults=faults)
     except BaseException as exc:  # the file must not go on saying "running"
