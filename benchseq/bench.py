@@ -22,6 +22,7 @@ ROLES = ("generator", "supply", "scope", "load")
 LOAD_MODES = ("50 ohm", "high-z")
 COUPLINGS = ("AC", "DC")
 SIM_ADDRESS_PREFIX = "SIM::"
+MAX_OUTAGE_PATIENCE_S = 3600.0
 
 
 @dataclass(frozen=True)
@@ -189,6 +190,8 @@ def parse_bench(
     visa_library = lab.text("visa_library", default="@py")
     simulation = lab.text("simulation", default=None)
     outage_patience = lab.quantity("outage_patience", "s", default=300.0, positive=True)
+    if outage_patience > MAX_OUTAGE_PATIENCE_S:
+        raise lab.error("outage_patience", "at most 1 h: the bench may stay on while it lasts")
     lab.done()
 
     instruments: dict[str, InstrumentSpec] = {}

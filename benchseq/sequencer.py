@@ -384,13 +384,16 @@ class Sequencer:
         """Wait ``seconds`` on the session's clock; a stop request ends the wait (on a real
         clock at once, on a virtual one when the wait is over) and the run goes safe."""
         self._stop_check(where)
+        self._wait_unless_stopped(seconds)
+        self._stop_check(where)
+
+    def _wait_unless_stopped(self, seconds: float) -> None:
         clock = self.session.clock
         sleep_unless = getattr(clock, "sleep_unless", None)
         if callable(sleep_unless):
             sleep_unless(seconds, self.stop.requested)
         else:
             clock.sleep(seconds)
-        self._stop_check(where)
 
     def _check_pin_dc(self, dc: float) -> float:
         """Measure the pin's DC level with the pin channel briefly DC-coupled."""
@@ -514,11 +517,11 @@ class Sequencer:
                             f"up to {patience:g} s",
                         )
                     )
+                self._wait_unless_stopped(pause)
                 if self.stop.stop_requested:
                     raise _StopRun(
                         f"{self.stop.reason} while the instruments could not be reached"
                     ) from exc
-                clock.sleep(pause)
                 tries += 1
 
     def _measure_point(self, i: int, carry: Carry, done: int, total: int) -> dict[str, Any]:

@@ -303,7 +303,7 @@ def test_outage_patience_defaults_to_five_minutes_and_takes_a_time() -> None:
     assert bench_from(_replace("[lab]", '[lab]\noutage_patience = "1.5 s"')).outage_patience == 1.5
 
 
-@pytest.mark.parametrize("value", ['"0 s"', '"-1 min"', '"5 V"', "true"])
+@pytest.mark.parametrize("value", ['"0 s"', '"-1 min"', '"5 V"', "true", '"2 h"', '"1e9 s"'])
 def test_outage_patience_must_be_a_positive_time(value: str) -> None:
     error = error_of(_replace("[lab]", f"[lab]\noutage_patience = {value}"))
     assert error.key == "lab.outage_patience"
