@@ -457,15 +457,20 @@ def _in_process_safe(session: Any) -> None:
     assert not session.simulator.supply.settings.output
 
 
-def _run_with_outage(tmp_path: Path, patience: str, length: float, **kw: Any) -> Any:
+def _run_with_outage(
+    tmp_path: Path, patience: str, length: float, during_ramp: bool = False, **kw: Any
+) -> Any:
     """A run of PLAN on the simulated bench; an outage of ``length`` virtual seconds begins
-    just after the first point is stored."""
+    just after the first point is stored (or as the DC ramp of power-up begins)."""
     bench = _OutageBench(**kw)
     events: list[Any] = []
 
     def emit(event: Any) -> None:
         events.append(event)
-        if event.kind == "point_stored" and event.done == 1 and length > 0:
+        if length <= 0 or bench.outage.start < math.inf:
+            return
+        ramping = event.kind == "state" and event.message.startswith("ramping DC")
+        if (event.kind == "point_stored" and event.done == 1) or (during_ramp and ramping):
             bench.outage.begin(length)
 
     outcome, path = start_run(
@@ -487,6 +492,22 @@ def test_an_outage_shorter_than_the_patience_is_ridden_through_on_the_virtual_cl
     assert list(frame["point_id"]) == list(range(POINTS))
     assert list(frame["flags"].str.contains("instrument_retry")) == [False, True, False, False]
     assert any("instruments reachable again" in e.message for e in events)
+    _in_process_safe(bench.sessions[0])
+
+
+def test_an_outage_during_power_up_is_ridden_through_and_the_ramp_goes_on(
+    tmp_path: Path,
+) -> None:
+    """A 30 s outage as the DC ramp begins: power-up is recovered (the supply's state
+    restored, verified) and carried on from where the ramp was; every point is measured."""
+    outcome, path, bench, events = _run_with_outage(tmp_path, "5 min", 30.0, during_ramp=True)
+    assert outcome.status == "complete" and not outcome.not_safe
+    assert outcome.bench_time > 30.0
+    assert any("during power-up" in e.message for e in events if e.kind == "warning")
+    assert sorted(read_results(path)["point_id"]) == list(range(POINTS))
+    log = bench.sessions[0].simulator.log
+    volts = [float(c.value) for c in log if c.role == "supply" and c.what == "voltage"]
+    assert max(volts) == pytest.approx(5.0)  # never beyond the operating point
     _in_process_safe(bench.sessions[0])
 
 
