@@ -15,8 +15,8 @@ instruments. With the bench's outage patience P, an outage shorter than P must l
 bench energised; one longer than 2 P (riding through, then the safe state, each give up
 after P) cannot be helped and must be reported (exit 1, listed as not made safe).
 
-    python tests/perf/outage.py [--patience 20] [--runs 4,4,3,2] [--lengths 0.5,2,10,60]
-        [--seed 1]
+    python tests/perf/outage.py [--patience 20] [--lengths 0.5,2,10,30,60]
+        [--runs 4,4,3,2,2] [--seed 1]
 
 Bounded: every run has a time limit (its patience twice plus the plan's time plus a
 margin) and is ended by its pid; the 60 s outages make this take several minutes.
@@ -78,7 +78,7 @@ class Result:
     claimed_not_safe: list[str]
     energised: dict[str, bool]  # asked of the instruments after the run
     log_energised: dict[str, bool]  # the last switch state in the server's log
-    missed: bool  # the outage began after the run's last state change: it met nothing
+    missed: bool  # the outage began after the run had made the bench safe: it met nothing
     active_s: float  # from the supply switching on to the run's last state change
 
 
@@ -97,8 +97,13 @@ def ask(port: int, command: str) -> str:
 
 
 def last_switches(log: Path, after: int) -> dict[str, bool]:
+    return last_switches_of(read_state_log(log)[after:])
+
+
+def last_switches_of(entries: list[dict[str, Any]]) -> dict[str, bool]:
+    """Each output's last logged state (off when never switched)."""
     state = dict.fromkeys(SWITCHES, False)
-    for entry in read_state_log(log)[after:]:
+    for entry in entries:
         if entry["what"] in ("output", "input") and entry["role"] in state:
             state[entry["role"]] = bool(entry["value"])
     return state
@@ -160,6 +165,10 @@ def one_run(
         (e["wall"] for e in entries if e["role"] == "supply" and e["what"] == "output"), 0.0
     )
     last_change = max((e["wall"] for e in entries), default=0.0)
+    before = [e for e in entries if e["wall"] < fired_wall]
+    safe_before = any(e["what"] in ("output", "input") for e in before) and not any(
+        last_switches_of(before).values()
+    )
     output = text.read_text(encoding="utf-8", errors="replace")
     try:
         start = output.rindex('{\n  "status"')
@@ -176,7 +185,7 @@ def one_run(
         claimed_not_safe=list(outcome.get("not_safe", [])),
         energised=energised,
         log_energised=last_switches(log, mark),
-        missed=length > 0 and fired_wall > last_change,
+        missed=length > 0 and fired_wall > last_change and safe_before,
         active_s=max(0.0, last_change - supply_on),
     )
     for role, command in OFF.items():  # the operator switches off what was left on
@@ -187,8 +196,8 @@ def one_run(
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--patience", type=float, default=20.0, help="lab.outage_patience (s)")
-    parser.add_argument("--lengths", default="0.5,2,10,60", help="outage lengths (s)")
-    parser.add_argument("--runs", default="4,4,3,2", help="runs per outage length")
+    parser.add_argument("--lengths", default="0.5,2,10,30,60", help="outage lengths (s)")
+    parser.add_argument("--runs", default="4,4,3,2,2", help="runs per outage length")
     parser.add_argument("--seed", type=int, default=1)
     args = parser.parse_args()
     lengths = [float(x) for x in args.lengths.split(",")]
@@ -230,7 +239,7 @@ def main() -> int:
                     left = [role for role, on in r.energised.items() if on]
                     print(
                         f"  outage {length:>5g} s at +{at:5.2f} s"
-                        f"{' (after the run had finished)' if r.missed else ''}: exit {r.exit_code}, "
+                        f"{' (after the bench was safe)' if r.missed else ''}: exit {r.exit_code}, "
                         f"{r.status}; left on: {', '.join(left) or 'nothing'}; "
                         f"benchseq reported not safe: "
                         f"{', '.join(x.split(':')[0] for x in r.claimed_not_safe) or 'nothing'}"
@@ -260,8 +269,8 @@ def main() -> int:
                     f"{agreed:>14} {len(every) - len(mine):>14}"
                 )
             print(
-                "(runs: outages that met the run; 'outage missed': began after the run's "
-                "last state change, not counted)"
+                "(runs: outages that met the run; 'outage missed': began after the run had "
+                "made the bench safe, not counted)"
             )
             short = [r for r in results if r.length < args.patience]
             bad = sum(any(r.energised.values()) for r in short)
