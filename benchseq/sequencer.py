@@ -100,12 +100,8 @@ class RunOutcome:
     flagged: int
     bench_time: float
     safe_state: list[str] = field(default_factory=list)
-    not_safe: list[str] = field(default_factory=list)  # what the safe state could NOT make safe
-
-    @property
-    def left_unsafe(self) -> bool:
-        """True when the safe state failed for some instrument: never an exit status 0."""
-        return bool(self.not_safe)
+    # what the safe state could NOT make safe (the CLI never exits 0 when this is not empty)
+    not_safe: list[str] = field(default_factory=list)
 
 
 class Sequencer:
@@ -497,7 +493,7 @@ class Sequencer:
                         Event(
                             "warning",
                             f"instruments reachable again after {clock.now() - started:.1f} s; "
-                            f"state restored and verified, {what} measured again",
+                            f"their state restored and verified; {what} again",
                         )
                     )
                 return
@@ -981,11 +977,14 @@ class Sequencer:
             report = self.session.safe_state()
             steps = list(report)
             not_safe = list(getattr(report, "not_safe", []))
+            tried = (
+                f"{getattr(report, 'rounds', 1)} tries over {getattr(report, 'took_s', 0):.0f} s"
+            )
         except Exception as exc:  # never let the safe state itself raise past the run
             steps = [f"safe state incomplete: {exc}"]
-            not_safe = list(steps)
+            not_safe, tried = list(steps), "no retry"
         for line in not_safe:
-            self.emit(Event("warning", f"NOT MADE SAFE: {line}"))
+            self.emit(Event("warning", f"NOT MADE SAFE ({tried}): {line}"))
         return steps, not_safe
 
 
