@@ -315,14 +315,15 @@ def test_an_outage_that_ends_during_the_safe_state_still_makes_the_bench_safe(
     _check_safe(served, mark)
 
 
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
 def test_a_stop_signal_during_the_ramp_interrupts_power_up_over_the_cli(
-    served: Served, tmp_path: Path
+    served: Served, tmp_path: Path, sig: signal.Signals
 ) -> None:
-    """SIGINT while the supply ramps towards 5 V (seen in the server's log): the ramp ends
+    """SIGINT or SIGTERM while the supply ramps towards 5 V (seen in the server's log): the ramp ends
     where it is, the load and the generator are never switched on, the bench goes safe;
     the run says stopped with nothing measured (exit 0)."""
     bench = served.bench_file("direct", served.ports, "1 min")
-    out = tmp_path / "stop-ramp.h5"
+    out = tmp_path / f"stop-ramp-{sig.name}.h5"
     mark = len(served.entries())
     proc, text = _start(served, bench, out)
 
@@ -332,11 +333,12 @@ def test_a_stop_signal_during_the_ramp_interrupts_power_up_over_the_cli(
         return any(0.0 < float(v) < 5.0 for v in volts)
 
     _wait_for(ramping, proc, "the supply ramp started")
-    os.kill(proc.pid, signal.SIGINT)
+    os.kill(proc.pid, sig)
     output, outcome = _finish(proc, text)
     assert proc.returncode == 0, output
     assert outcome["status"] == "stopped" and outcome["measured"] == 0
-    assert outcome["reason"].startswith("SIGINT received during the DC ramp"), outcome["reason"]
+    assert outcome["reason"].startswith(f"{sig.name} received during the DC ramp"), outcome
+
     entries = served.entries()[mark:]
     volts = [float(e["value"]) for e in entries if e["role"] == "supply" and e["what"] == "voltage"]
     assert max(volts) < 5.0, volts  # the ramp never reached the operating point
@@ -533,6 +535,29 @@ def test_an_outage_ending_within_the_safe_state_patience_ends_safe(tmp_path: Pat
     assert outcome.status == "aborted" and not outcome.not_safe
     assert all("verified" in step for step in outcome.safe_state)
     _in_process_safe(bench.sessions[0])
+
+
+def test_a_stop_request_ends_the_wait_for_a_lost_link(tmp_path: Path) -> None:
+    """A stop requested while the run waits for the instruments to come back ends the wait
+    at once (not after the patience); the safe state then still tries for its patience
+    and, the link being down, says what it could not make safe."""
+    bench = _OutageBench()
+    stop = StopControl()
+
+    def emit(event: Any) -> None:
+        if event.kind == "point_stored" and event.done == 1:
+            bench.outage.begin(3600.0)
+        if event.kind == "warning" and "cannot reach the instruments" in event.message:
+            stop.request("test stop")
+
+    outcome, _ = start_run(
+        str(_plan_file(tmp_path)), str(_sim_bench_file(tmp_path, "5 min")),
+        str(tmp_path / "run.h5"), seed=4, emit=emit, stop=stop, session_factory=bench,
+    )  # fmt: skip
+    assert outcome.status == "stopped"
+    assert "test stop while the instruments could not be reached" in outcome.reason
+    assert [line.split(":")[0] for line in outcome.not_safe] == ["generator", "load", "supply"]
+    assert outcome.bench_time < 300.0 + 120.0  # the safe state's patience, not two of them
 
 
 def test_the_supply_goes_off_before_its_set_point_goes_to_the_safe_level(tmp_path: Path) -> None:
