@@ -10,8 +10,8 @@ benchseq) whether their outputs are on; the server's log gives the same answer.
 
 Prints, for each outage length: runs that rode through (exit 0, every point stored), runs
 that stopped safely (not complete, every output off), benches left energised (an output
-still on after the run ended), and whether benchseq's own report agreed with the
-instruments. With the bench's outage patience P, an outage shorter than P must leave no
+still on after the run ended), and runs where an output was left on that benchseq did not
+report (must be 0 for every length: benchseq may list more than is on, never less). With the bench's outage patience P, an outage shorter than P must leave no
 bench energised; one longer than 2 P (riding through, then the safe state, each give up
 after P) cannot be helped and must be reported (exit 1, listed as not made safe).
 
@@ -247,7 +247,7 @@ def main() -> int:
             print()
             header = (
                 f"{'outage':>8} {'runs':>5} {'rode through':>13} {'stopped safely':>15} "
-                f"{'left energised':>15} {'report agreed':>14} {'outage missed':>14}"
+                f"{'left energised':>15} {'left unreported':>17} {'outage missed':>14}"
             )
             print(header)
             for length in lengths:
@@ -257,19 +257,23 @@ def main() -> int:
                            for r in mine)  # fmt: skip
                 energised = sum(any(r.energised.values()) for r in mine)
                 stopped = sum(not r.complete and not any(r.energised.values()) for r in mine)
-                agreed = sum(
-                    {x.split(":")[0] for x in r.claimed_not_safe}
-                    == {role for role, on in r.energised.items() if on}
-                    and r.energised == r.log_energised
-                    and (r.exit_code != 0 or not any(r.energised.values()))
+                # an instrument left on that benchseq did not list as not made safe, or a
+                # bench left on with exit 0: a false claim of safety
+                unreported = sum(
+                    bool({role for role, on in r.energised.items() if on}
+                         - {x.split(":")[0] for x in r.claimed_not_safe})
+                    or (r.exit_code == 0 and any(r.energised.values()))
+                    or r.energised != r.log_energised
                     for r in mine
-                )
+                )  # fmt: skip
                 print(
                     f"{length:>7g}s {len(mine):>5} {rode:>13} {stopped:>15} {energised:>15} "
-                    f"{agreed:>14} {len(every) - len(mine):>14}"
+                    f"{unreported:>17} {len(every) - len(mine):>14}"
                 )
             print(
-                "(runs: outages that met the run; 'outage missed': began after the run had "
+                "(runs: outages that met the run; 'left unreported': an output on after the run "
+                "that benchseq did not list as not made safe, or on with exit 0, or the log "
+                "disagreeing with the instruments; 'outage missed': began after the run had "
                 "made the bench safe, not counted)"
             )
             short = [r for r in results if r.length < args.patience]
