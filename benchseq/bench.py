@@ -22,6 +22,7 @@ ROLES = ("generator", "supply", "scope", "load")
 LOAD_MODES = ("50 ohm", "high-z")
 COUPLINGS = ("AC", "DC")
 SIM_ADDRESS_PREFIX = "SIM::"
+MAX_OUTAGE_PATIENCE_S = 3600.0
 
 
 @dataclass(frozen=True)
@@ -144,6 +145,9 @@ class Bench:
     injector: InjectorValues
     pin: PinLoad
     simulation: str | None = None  # scenario name when this is the embedded simulated bench
+    # s: how long an unreachable instrument is waited for, to ride through an outage and
+    # again to make the bench safe (lab.outage_patience)
+    outage_patience: float = 300.0
     extra: dict[str, Any] = field(default_factory=dict)
 
     @property
@@ -185,6 +189,9 @@ def parse_bench(
     notes = lab.text("notes", default="")
     visa_library = lab.text("visa_library", default="@py")
     simulation = lab.text("simulation", default=None)
+    outage_patience = lab.quantity("outage_patience", "s", default=300.0, positive=True)
+    if outage_patience > MAX_OUTAGE_PATIENCE_S:
+        raise lab.error("outage_patience", "at most 1 h: the bench may stay on while it lasts")
     lab.done()
 
     instruments: dict[str, InstrumentSpec] = {}
@@ -310,6 +317,7 @@ def parse_bench(
         injector=injector,
         pin=pin,
         simulation=simulation,
+        outage_patience=outage_patience,
     )
 
 

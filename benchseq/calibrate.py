@@ -48,6 +48,7 @@ import numpy as np
 from benchseq import __version__
 from benchseq.analysis import DB_PER_NEPER, AnalysisError, ChannelCalibration
 from benchseq.bench import Bench, describe_band, load_bench
+from benchseq.cautions import PROBE_CAUTION
 from benchseq.coupling import high_pass
 from benchseq.errors import BadInput, MeasurementFailure
 from benchseq.journal import fsync_directory, fsync_fd
@@ -79,12 +80,6 @@ RANGE_NOTE = (
     "both probes were on the pin, so the output channel was calibrated on the pin ripple's "
     "range; a run uses smaller output ranges: range-dependent gain of the output channel is "
     "not covered by this calibration"
-)
-PROBE_CAUTION = (
-    "De-energise the bench (generator and supply outputs off, pin capacitors discharged) "
-    "before moving a probe. Probe ground leads are tied to the scope's protective earth: "
-    "clip them only to the circuit's ground, never to a live node. Follow your local "
-    "electrical-safety codes and qualified practice for work on live circuits."
 )
 
 
@@ -700,7 +695,7 @@ def run_calibration(
             simulator.connect_probe(bench.scope.output.channel, "output")
     finally:
         session.close()
-    if outcome.status != "complete":
+    if outcome.status != "complete" or outcome.not_safe:  # the reason names what is not safe
         raise MeasurementFailure(
             f"calibration {outcome.status} after {len(collector.rows)} of "
             f"{cal_plan.point_count} points: {outcome.reason}; nothing was written"

@@ -133,6 +133,9 @@ class _LiveDisplay:
 
         if self.quiet:
             return
+        if event.kind == "caution":  # before the bench opens: printed once, never asked
+            self.console.print(f"[bold yellow]caution:[/] {_escape(event.message)}")
+            return
         if self.display is None:
             self.display = RunDisplay(
                 self.console, event.total or 0, event.bench_time_left, event.done
@@ -193,7 +196,8 @@ def cmd_replay(args: argparse.Namespace) -> int:
     else:
         console.print(render_comparison(outcome))
         console.print(f"replay results: [bold]{_escape(outcome.path)}[/]")
-    return EXIT_OK if outcome.run.status == "complete" else EXIT_FAILURE
+    ok = outcome.run.status == "complete" and not outcome.run.not_safe
+    return EXIT_OK if ok else EXIT_FAILURE
 
 
 def cmd_calibrate(args: argparse.Namespace) -> int:
@@ -275,6 +279,8 @@ def cmd_run(args: argparse.Namespace) -> int:
                 "bounds": outcome.bounds,
                 "flagged": outcome.flagged,
                 "bench_time_s": outcome.bench_time,
+                "safe_state": list(outcome.safe_state),
+                "not_safe": list(outcome.not_safe),
             }
         )
     else:
@@ -297,7 +303,22 @@ def cmd_run(args: argparse.Namespace) -> int:
             console.print(f"continue with: benchseq run --resume {_escape(path)}")
         console.print(f"summary: benchseq show {_escape(path)}")
         console.print(f"lab report: benchseq report {_escape(path)}")
+    if outcome.not_safe:  # never exit 0 with a bench that may still be energised
+        _not_safe_alarm(outcome.not_safe, stderr=args.json)
+        return EXIT_FAILURE
     return EXIT_OK if outcome.status == "complete" else EXIT_FAILURE  # stopped early: 1
+
+
+def _not_safe_alarm(not_safe: list[str], stderr: bool) -> None:
+    """The loud ending of a run whose safe state failed: what to switch off by hand."""
+    console = _console(stderr=stderr)
+    console.print("[bold red]THE BENCH WAS NOT MADE SAFE.[/] Not made safe:")
+    for line in not_safe:
+        console.print(f"[bold red]  - {_escape(line)}[/]")
+    console.print(
+        "[bold red]Switch these off by hand now (generator, then load, then supply), "
+        "following your local safety codes.[/]"
+    )
 
 
 def _verdict(meta: dict[str, Any], frame: Any, path: str) -> Any:

@@ -264,6 +264,11 @@ def _run_on_bench(
     """Open the bench, note what the file must know of it, run the sequencer, close.
 
     The writer (and with it the result's write lock) is closed on every way out."""
+    if not bench.is_simulated and emit is not None:
+        from benchseq.cautions import RUN_CAUTION
+        from benchseq.sequencer import Event
+
+        emit(Event("caution", "\n".join(RUN_CAUTION)))
     try:
         return _sequence_on_bench(
             plan, bench, writer, open_session, calibration, planned_bench_time,

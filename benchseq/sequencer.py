@@ -28,6 +28,9 @@ PIN_TOLERANCE = 0.02  # relative: trim the generator when the pin ripple is furt
 MAX_TRIMS = 3
 MAX_RANGING = 5
 MAX_POINT_RETRIES = 2
+# pauses (s) between reconnection tries while the instruments cannot be reached; the last is
+# repeated until the bench's outage patience (lab.outage_patience) runs out
+OUTAGE_PAUSES_S = (0.25, 0.5, 1.0, 2.0, 5.0, 10.0)
 RANGE_FILL = 0.7  # aim the sine's peak-to-peak at this fraction of full scale
 INITIAL_REJECTION_GUESS_DB = 40.0
 CORNER_SEED_KEY = 2**40  # simulator noise key of the AC-corner measurement (points: id·16+try)
@@ -97,6 +100,8 @@ class RunOutcome:
     flagged: int
     bench_time: float
     safe_state: list[str] = field(default_factory=list)
+    # what the safe state could NOT make safe (the CLI never exits 0 when this is not empty)
+    not_safe: list[str] = field(default_factory=list)
 
 
 class Sequencer:
@@ -207,8 +212,10 @@ class Sequencer:
             self._last_traceback = traceback.format_exc()
         finally:
             with self.stop.shielded():
-                steps = self._safe_state()
+                steps, not_safe = self._safe_state()
         bench_time = self.session.clock.now() - bench_start
+        if not_safe:
+            reason = f"{reason}; NOT MADE SAFE: {'; '.join(not_safe)}"
         try:
             self.writer.finish(
                 status, traceback=getattr(self, "_last_traceback", None), reason=reason
@@ -225,6 +232,7 @@ class Sequencer:
             counts["flagged"],
             bench_time,
             steps,
+            not_safe,
         )
 
     def _carry_from_store(self, stored: set[int]) -> Carry:
@@ -237,6 +245,7 @@ class Sequencer:
     def _power_up(self, first: int) -> None:
         self.activity = "power-up"
         s = self.session
+        self._stop_check("power-up")
         self.emit(Event("state", "setting limits: generator off, supply limits and protection"))
         s.generator.output(False)
         self._generator_on = False
@@ -247,10 +256,12 @@ class Sequencer:
         s.supply.set_overvoltage_protection(self.bench.supply.overvoltage_protection)
         if self._dc_now is None:  # a retried power-up ramps on from where the supply is
             s.supply.set_voltage(0.0)
+            self._stop_check("power-up")
             s.supply.output(True)
             self._dc_now = 0.0
         s.scope.trigger_external()
         self._set_operating_point(first)
+        self._stop_check("power-up")
         self._measure_ac_corner(first)
 
     def _measure_ac_corner(self, first: int) -> None:
@@ -283,11 +294,13 @@ class Sequencer:
         setting = float(self.model.generator_setting_pp(low, target))
         s.generator.set_amplitude_pp(self._clamp_generator(setting))
         frequency = s.generator.set_frequency(low)
+        self._stop_check("power-up")
         s.generator.output(True)
         self._generator_on = True
-        s.clock.sleep(
+        self._pause(
             self.plan.settle.fixed_s
-            + self.plan.settle.time_constants * self.corners.slowest_time_constant_s
+            + self.plan.settle.time_constants * self.corners.slowest_time_constant_s,
+            "power-up",
         )
         plan = self._plan_capture(frequency, target, target * 1e-3, None, target_db=0.05)
         pin_range = self._range_for(pin, target)
@@ -325,12 +338,13 @@ class Sequencer:
             changed = True
         if math.isfinite(load) and s.load is not None and load != self._load_now:
             s.load.set_current(load)
+            self._stop_check("the operating point")
             s.load.input(True)
             self._load_now = load
             changed = True
         if changed:  # the plan's settle.after_operating_point: the device's own DC settling
             self.activity = "operating point"
-            s.clock.sleep(self.plan.settle.operating_point_s)
+            self._pause(self.plan.settle.operating_point_s, "the operating point")
         if self._pin_dc != self._pin_dc or abs(dc - (self._dc_checked_at or -1)) > 1e-9:
             self._pin_dc = self._check_pin_dc(dc)
 
@@ -344,12 +358,38 @@ class Sequencer:
         steps = max(1, math.ceil(abs(target - start) / (rate * 0.1)))
         self.emit(Event("state", f"ramping DC from {start:.3f} V to {target:.3f} V"))
         for k in range(1, steps + 1):
+            # a stop request ends the ramp between two steps, where the supply is
+            self._stop_check(f"the DC ramp (at {self._dc_now or 0.0:.3f} V)")
             s.supply.set_voltage(start + (target - start) * k / steps)
             self._dc_now = start + (target - start) * k / steps
             s.clock.sleep(abs(target - start) / rate / steps)
         self._dc_now = target
         # the bias filter follows with its own time constant
-        s.clock.sleep(7.0 * self.bench.injector.bias_resistor * self.bench.injector.bias_capacitor)
+        self._pause(
+            7.0 * self.bench.injector.bias_resistor * self.bench.injector.bias_capacitor,
+            "the DC ramp",
+        )
+
+    def _stop_check(self, where: str) -> None:
+        """A stop request while the bench is being powered up or moved to an operating
+        point ends it here: what is not yet on stays off and the run goes to the safe state."""
+        if self.stop.stop_requested:
+            raise _StopRun(f"{self.stop.reason} during {where}; what was not yet on stayed off")
+
+    def _pause(self, seconds: float, where: str) -> None:
+        """Wait ``seconds`` on the session's clock; a stop request ends the wait (on a real
+        clock at once, on a virtual one when the wait is over) and the run goes safe."""
+        self._stop_check(where)
+        self._wait_unless_stopped(seconds)
+        self._stop_check(where)
+
+    def _wait_unless_stopped(self, seconds: float) -> None:
+        clock = self.session.clock
+        sleep_unless = getattr(clock, "sleep_unless", None)
+        if callable(sleep_unless):
+            sleep_unless(seconds, self.stop.requested)
+        else:
+            clock.sleep(seconds)
 
     def _check_pin_dc(self, dc: float) -> float:
         """Measure the pin's DC level with the pin channel briefly DC-coupled."""
@@ -390,7 +430,7 @@ class Sequencer:
             try:
                 if recover:  # inside the try: a fault while recovering is one more attempt
                     recover = False
-                    self.session.recover()
+                    self._recover(f"point {int(self.sweep.index[i])}")
                     self._freq_now = None
                 simulator = getattr(self.session, "simulator", None)
                 if simulator is not None:
@@ -421,7 +461,7 @@ class Sequencer:
         while True:
             try:
                 if attempt:
-                    self.session.recover()
+                    self._recover(what)
                 action()
                 return
             except InstrumentError as exc:
@@ -432,6 +472,53 @@ class Sequencer:
                         f"recoveries: {exc}"
                     ) from exc
                 self.emit(Event("warning", f"instrument fault during {what}, recovering: {exc}"))
+
+    def _recover(self, what: str) -> None:
+        """Renew every connection and restore each instrument's known state, verified by
+        read-back. While an instrument cannot be reached (connection refused or lost, no
+        reply) this keeps trying, with growing pauses on the session's clock, for up to the
+        bench's outage patience; then OutageTooLong ends the run (through the safe state).
+        A stop request ends the wait."""
+        from benchseq.drivers.errors import ConnectionLost, InstrumentTimeout
+
+        clock = self.session.clock
+        patience = self.bench.outage_patience
+        started = clock.now()
+        tries = 0
+        while True:
+            try:
+                self.session.recover()
+                if tries:
+                    self.emit(
+                        Event(
+                            "warning",
+                            f"instruments reachable again after {clock.now() - started:.1f} s; "
+                            f"their state restored and verified; {what} again",
+                        )
+                    )
+                return
+            except (ConnectionLost, InstrumentTimeout) as exc:
+                waited = clock.now() - started
+                pause = OUTAGE_PAUSES_S[min(tries, len(OUTAGE_PAUSES_S) - 1)]
+                if waited + pause > patience:
+                    raise OutageTooLong(
+                        f"{what}: the instruments could not be reached again within the "
+                        f"outage patience ({patience:g} s, lab.outage_patience): {exc}"
+                    ) from exc
+                if tries == 0:
+                    self.emit(
+                        Event(
+                            "warning",
+                            f"{what}: cannot reach the instruments ({exc}); trying again for "
+                            f"up to {patience:g} s",
+                        )
+                    )
+                self._wait_unless_stopped(pause)
+                if self.stop.stop_requested:
+                    raise _StopRun(
+                        f"{self.stop.reason} while the instruments could not be reached"
+                    ) from exc
+                tries += 1
 
     def _measure_point(self, i: int, carry: Carry, done: int, total: int) -> dict[str, Any]:
         s = self.session
@@ -877,19 +964,28 @@ class Sequencer:
                 )
 
     # -- safe state ----------------------------------------------------------------------
-    def _safe_state(self) -> list[str]:
+    def _safe_state(self) -> tuple[list[str], list[str]]:
+        """(what was done, what could NOT be made safe); loud warnings for the latter."""
         self.emit(
             Event(
                 "state",
-                "going to the safe state: generator off, load off, supply to its safe level",
+                "going to the safe state: generator off, load off, supply off then to its "
+                "safe level",
             )
         )
         try:
-            steps = self.session.safe_state()
+            report = self.session.safe_state()
+            steps = list(report)
+            not_safe = list(getattr(report, "not_safe", []))
+            tried = (
+                f"{getattr(report, 'rounds', 1)} tries over {getattr(report, 'took_s', 0):.0f} s"
+            )
         except Exception as exc:  # never let the safe state itself raise past the run
             steps = [f"safe state incomplete: {exc}"]
-            self.emit(Event("warning", steps[0]))
-        return list(steps)
+            not_safe, tried = list(steps), "no retry"
+        for line in not_safe:
+            self.emit(Event("warning", f"NOT MADE SAFE ({tried}): {line}"))
+        return steps, not_safe
 
 
 class BenchTimeLeft:
@@ -939,7 +1035,11 @@ class BenchTimeLeft:
 
 
 class _StopRun(Exception):
-    """A watch rule asked the run to stop safely."""
+    """A watch rule or a stop request asked the run to stop safely."""
+
+
+class OutageTooLong(MeasurementFailure):
+    """The instruments could not be reached again within the bench's outage patience."""
 
 
 COLUMN_NAMES = tuple(c.name for c in POINT_COLUMNS)

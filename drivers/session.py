@@ -10,25 +10,58 @@ here: opening a session only identifies the instruments and clears their status.
 from __future__ import annotations
 
 import contextlib
+import math
 import threading
 import time
 import warnings
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 from benchseq.bench import Bench
-from benchseq.drivers.errors import ConnectionLost, InstrumentError
+from benchseq.drivers.errors import ConnectionLost, InstrumentError, InstrumentReportedError
 from benchseq.drivers.factory import build_instrument, profile_for
 from benchseq.drivers.generator import Generator
-from benchseq.drivers.instrument import AMBIGUOUS, Instrument
+from benchseq.drivers.instrument import AMBIGUOUS, Instrument, is_passing
 from benchseq.drivers.load import Load
 from benchseq.drivers.profile import Profile
 from benchseq.drivers.scope import Scope
 from benchseq.drivers.supply import Supply
 from benchseq.drivers.transport import Transport
 
-SAFE_ORDER = ("generator", "load", "supply")  # common practice: generator, then load, then supply
+SAFE_ORDER = ("generator", "load", "supply")  # common practice: generator, load, then supply
+# pauses (s) between rounds of the safe state while an instrument cannot be made safe; the
+# last is repeated until the bench's outage patience runs out
+SAFE_STATE_PAUSES_S = (0.25, 0.5, 1.0, 2.0, 5.0, 10.0)
+
+
+class SafeStepRefused(InstrumentError):
+    """An instrument refused a safe-state command (e.g. a set-point out of its range):
+    sending it again would not help, so the safe state does not."""
+
+
+@dataclass
+class SafeStateReport:
+    """What the safe state did: one line per instrument, and what it could NOT make safe
+    (empty when every instrument is safe, verified by read-back)."""
+
+    steps: list[str]
+    not_safe: list[str]
+    rounds: int = 1
+    took_s: float = 0.0
+
+    @property
+    def complete(self) -> bool:
+        return not self.not_safe
+
+    def __iter__(self) -> Iterator[str]:  # older callers read the steps as a list
+        return iter(self.steps)
+
+    def __getitem__(self, index: int) -> str:
+        return self.steps[index]
+
+    def __len__(self) -> int:
+        return len(self.steps)
 
 
 class MonotonicClock:
@@ -40,6 +73,16 @@ class MonotonicClock:
     def sleep(self, seconds: float) -> None:
         if seconds > 0:
             time.sleep(seconds)
+
+    def sleep_unless(self, seconds: float, event: threading.Event) -> None:
+        """Sleep ``seconds`` or until ``event`` is set (checked every 50 ms), whichever is
+        first (a stop request ends a long wait during power-up)."""
+        deadline = time.monotonic() + seconds
+        while not event.is_set():
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            time.sleep(min(left, 0.05))
 
 
 @dataclass
@@ -75,20 +118,50 @@ class BenchSession:
         for instrument in self.instruments().values():
             instrument.recover()
 
-    def safe_state(self) -> list[str]:
-        """Generator off, load off, supply to its safe level (off at 0 V), in that order,
-        each on a FRESH connection (an interrupted read may have left stale data on the old
-        one) and verified by read-back. Never raises; returns what was done or failed."""
-        steps: list[str] = []
-        for role in SAFE_ORDER:
-            main = self.instruments().get(role)
-            if main is None:
-                continue
-            try:
-                steps.append(self._safe_one(role, main))
-            except Exception as exc:  # the safe state goes on to the next instrument regardless
-                steps.append(f"{role}: FAILED to reach the safe state: {exc}")
-        return steps
+    def safe_state(self, patience_s: float | None = None) -> SafeStateReport:
+        """Generator output off, load input off, supply output off and then its set-point
+        to the safe level, in that order, each on a FRESH connection (an interrupted read
+        may have left stale data on the old one) and verified by read-back.
+
+        An instrument that cannot be reached (refused or lost connection, no reply) or
+        reads back wrong is tried again in later rounds, with growing pauses on the
+        session's clock, until it is safe or ``patience_s`` (default: the bench's
+        lab.outage_patience) has passed; a command the instrument refuses is not sent
+        again. Never raises: returns what was done and what could not be made safe."""
+        patience = self.bench.outage_patience if patience_s is None else patience_s
+        roles = [role for role in SAFE_ORDER if role in self.instruments()]
+        done: dict[str, str] = {}
+        failed: dict[str, str] = {}
+        refused: set[str] = set()
+        started = self.clock.now()
+        rounds = 0
+        while True:
+            rounds += 1
+            for role in roles:
+                if role in done or role in refused:
+                    continue
+                try:
+                    done[role] = self._safe_one(role, self.instruments()[role])
+                    failed.pop(role, None)
+                except SafeStepRefused as exc:  # the instrument answered no: final
+                    failed[role] = str(exc)
+                    refused.add(role)
+                except Exception as exc:  # the safe state goes on to the next instrument
+                    failed[role] = str(exc)
+            if all(role in done or role in refused for role in roles):
+                break
+            pause = SAFE_STATE_PAUSES_S[min(rounds - 1, len(SAFE_STATE_PAUSES_S) - 1)]
+            if self.clock.now() - started + pause > patience:
+                break
+            self.clock.sleep(pause)
+        steps = [
+            done[role]
+            if role in done
+            else f"{role}: FAILED to reach the safe state: {failed[role]}"
+            for role in roles
+        ]
+        not_safe = [f"{role}: {failed[role]}" for role in roles if role not in done]
+        return SafeStateReport(steps, not_safe, rounds, self.clock.now() - started)
 
     def _safe_one(self, role: str, main: Instrument) -> str:
         try:
@@ -105,8 +178,10 @@ class BenchSession:
                 profile=self.profiles[role],
                 sleep=self.clock.sleep,
             )
-            text = _make_safe(role, fresh, self.bench)
-            main.adopt(fresh.known_state_items())
+            try:
+                text = _make_safe(role, fresh, self.bench)
+            finally:  # what was switched off stays known, even when a later step failed
+                main.adopt(fresh.known_state_items())
         finally:
             if transport is not main.transport:
                 transport.close()
@@ -126,23 +201,47 @@ class BenchSession:
 
 def _make_safe(role: str, instrument: Any, bench: Bench) -> str:
     if role == "generator":
-        instrument.output(False)
+        _refused_is_final("switching the output off", lambda: instrument.output(False))
         if instrument.output_is_on():
             raise InstrumentError(instrument.resource, "", "output still reads on")
         return "generator: output off, verified"
     if role == "load":
-        instrument.input(False)
+        _refused_is_final("switching the input off", lambda: instrument.input(False))
         if instrument.input_is_on():
             raise InstrumentError(instrument.resource, "", "input still reads on")
         return "load: input off, verified"
+    # The supply: output off first (the supply never stays energised at a "safe level"),
+    # then its set-point to the safe level, so the next switch-on starts from there.
+    _refused_is_final("switching the output off", lambda: instrument.output(False))
+    if instrument.output_is_on():
+        raise InstrumentError(instrument.resource, "", "output still reads on")
     level = bench.supply.safe_level
-    instrument.set_voltage(level)
-    if level == 0.0:
-        instrument.output(False)
-        if instrument.output_is_on():
-            raise InstrumentError(instrument.resource, "", "output still reads on")
-        return "supply: set to 0 V and output off, verified"
-    return f"supply: set to its safe level {level:g} V, verified"
+    read_back = _refused_is_final(
+        f"output off, verified; but setting its set-point to the safe level {level:g} V",
+        lambda: instrument.configure("voltage", float(level), query_key="voltage_query"),
+    )
+    if read_back is not None and not math.isclose(read_back, level, rel_tol=1e-6, abs_tol=1e-9):
+        raise InstrumentError(
+            instrument.resource,
+            "",
+            f"set-point reads {read_back:g} V, not the safe level {level:g} V",
+        )
+    return f"supply: output off, verified; set-point at its safe level {level:g} V, verified"
+
+
+def _refused_is_final(what: str, action: Callable[[], Any]) -> Any:
+    """Run one safe-state command; the instrument refusing it (an error-queue entry that is
+    not of the passing kind) is SafeStepRefused: sending it again would not help."""
+    try:
+        return action()
+    except InstrumentReportedError as exc:
+        if is_passing(exc):
+            raise
+        raise SafeStepRefused(
+            exc.resource,
+            exc.command,
+            f"{what} was refused: instrument error {exc.code}, {exc.message!r}",
+        ) from exc
 
 
 def assemble_session(

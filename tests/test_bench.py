@@ -207,6 +207,7 @@ _KEYS = [
     "coupling_capacitor", "feedback_resistor", "bias_resistor", "bias_capacitor",
     "open_loop_gain", "gain_bandwidth", "slew_rate", "output_resistance", "output_low",
     "output_high", "capacitance", "capacitor_esr", "load_current", "load_resistance", "zzz",
+    "outage_patience",
 ]  # fmt: skip
 _TEXTS = [
     "50 ohm", "high-z", "AC", "DC", "off", "SIM::scope", "TCPIP::192.0.2.9::INSTR", "demo",
@@ -292,3 +293,17 @@ def test_a_missing_key_is_not_blamed_on_another_valid_one() -> None:
     assert str(error).endswith("missing (required)")
     renamed = error_of(_replace("load_mode =", "Load-Mode ="))
     assert renamed.key == "generator.load_mode" and '"Load-Mode" a misspelling' in str(renamed)
+
+
+# -- how long an unreachable instrument is waited for -----------------------------------------
+def test_outage_patience_defaults_to_five_minutes_and_takes_a_time() -> None:
+    assert bench_from(template_text()).outage_patience == 300.0
+    bench = bench_from(_replace("[lab]", '[lab]\noutage_patience = "2 min"'))
+    assert bench.outage_patience == 120.0
+    assert bench_from(_replace("[lab]", '[lab]\noutage_patience = "1.5 s"')).outage_patience == 1.5
+
+
+@pytest.mark.parametrize("value", ['"0 s"', '"-1 min"', '"5 V"', "true", '"2 h"', '"1e9 s"'])
+def test_outage_patience_must_be_a_positive_time(value: str) -> None:
+    error = error_of(_replace("[lab]", f"[lab]\noutage_patience = {value}"))
+    assert error.key == "lab.outage_patience"

@@ -47,12 +47,17 @@ def _switched_off(conv: Conversation, resource: str, off: str, query: str, reads
     conv.add(resource, [(off, None), OK, (query, "0"), (query, reads), (CLOSE, None)])
 
 
+def _supply_made_safe(conv: Conversation, resource: str, level: str = "0") -> None:
+    """The supply's output off (read back twice), then its set-point to the safe level."""
+    conv.add(resource, [("OUTP1 OFF", None), OK, ("OUTP1?", "0"), ("OUTP1?", "0")])
+    conv.add(resource, [(f"SOUR1:VOLT {level}", None), OK, ("SOUR1:VOLT?", level), (CLOSE, None)])
+
+
 def _made_safe(conv: Conversation, generator_reads: str = "0") -> None:
-    """Generator off, load input off, supply to its 0 V safe level and off, in that order."""
+    """Generator off, load input off, supply output off and then to its 0 V safe level."""
     _switched_off(conv, "generator#2", "OUTP1 OFF", "OUTP1?", generator_reads)
     _switched_off(conv, "load#2", "INP1 OFF", "INP1?")
-    conv.add("supply#2", [("SOUR1:VOLT 0", None), OK, ("SOUR1:VOLT?", "0")])
-    _switched_off(conv, "supply#2", "OUTP1 OFF", "OUTP1?")
+    _supply_made_safe(conv, "supply#2")
 
 
 def test_opening_identifies_and_clears_every_instrument_and_switches_nothing_on():
@@ -94,8 +99,10 @@ def test_safe_state_goes_on_when_one_instrument_fails_and_says_so():
     session = _open(conv, fail={"generator"}, safe_level=1.0)
     conv.add("generator#1", [(RECONNECT, ConnectionLost("generator#1", "", "refused"))])
     _switched_off(conv, "load#2", "INP1 OFF", "INP1?")
-    conv.add("supply#2", [("SOUR1:VOLT 1", None), OK, ("SOUR1:VOLT?", "1.0"), (CLOSE, None)])
-    steps = session.safe_state()
+    _supply_made_safe(conv, "supply#2", "1")
+    report = session.safe_state(patience_s=0.0)  # one round: no retries to script
+    steps = report.steps
+    assert report.not_safe and report.not_safe[0].startswith("generator:")
     assert steps[0].startswith("generator: FAILED")
     assert steps[1].startswith("load: input off")
     assert "safe level 1 V" in steps[2]
@@ -106,8 +113,9 @@ def test_safe_state_reports_an_output_that_stays_on():
     conv = Conversation()
     session = _open(conv)
     _made_safe(conv, generator_reads="1")
-    steps = session.safe_state()
+    steps = session.safe_state(patience_s=0.0)
     assert "FAILED" in steps[0] and "still reads on" in steps[0]
+    assert [line.split(":")[0] for line in steps.not_safe] == ["generator"]
     conv.assert_done()
 
 

@@ -1,7 +1,8 @@
 """Stopping a run: Ctrl-C (SIGINT), SIGTERM and SIGHUP sent to a real `benchseq run`
 process, a second Ctrl-C, and an exception during a point. Every time the instruments end
 in the safe state in the common-practice order: generator output
-off, then the electronic load's input off, then the supply to its safe level (0 V, off).
+off, then the electronic load's input off, then the supply's output off and its set-point
+to the safe level (0 V): the supply never stays energised at a "safe level".
 
 The bench is `benchseq sim serve --scenario amplifier` (it has an electronic load) in its own
 process on 127.0.0.1, reached over pyvisa-py TCP; the order comes from the state-change log
@@ -209,8 +210,8 @@ def _switches(entries: list[dict[str, Any]]) -> list[tuple[str, bool]]:
 
 def _check_safe(served: Served, after: int) -> None:
     """The state changes since entry ``after``: outputs go off in the safe order and
-    nothing goes on after the generator went off; the supply reaches 0 V before its output
-    goes off; and the instruments say so when asked."""
+    nothing goes on after the generator went off; the supply's output goes off before its
+    set-point goes to 0 V; and the instruments say so when asked."""
     entries = served.entries()[after:]
     switches = _switches(entries)
     assert switches[-3:] == SAFE, switches
@@ -219,7 +220,7 @@ def _check_safe(served: Served, after: int) -> None:
     later = entries[generator_off:]
     assert not any(e["value"] is True for e in later if e["what"] in ("output", "input"))
     supply = [(e["what"], e["value"]) for e in later if e["role"] == "supply"]
-    assert supply[-2:] == [("voltage", 0.0), ("output", False)], supply
+    assert supply[-2:] == [("output", False), ("voltage", 0.0)], supply
     assert served.ask("generator", "OUTP1?") == "0"
     assert served.ask("load", "INP1?") == "0"
     assert served.ask("supply", "OUTP1?") == "0"
@@ -336,7 +337,7 @@ def _in_process_safe(session: Any) -> None:
     switches = [(c.role, bool(c.value)) for c in log if c.what in ("output", "input")]
     assert switches[-3:] == SAFE, switches
     supply = [(c.what, c.value) for c in log if c.role == "supply"]
-    assert supply[-2:] == [("voltage", 0.0), ("output", False)]
+    assert supply[-2:] == [("output", False), ("voltage", 0.0)]
     truth = session.simulator.truth()
     assert not truth.generator_on
     assert not session.simulator.load.settings.input

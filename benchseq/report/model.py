@@ -13,24 +13,12 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from benchseq.cautions import SAFETY_CAUTIONS as SAFETY_CAUTIONS  # the renderers import it here
 from benchseq.errors import BadInput, BenchseqError
 from benchseq.units import format_si
 from benchseq.verdict import MaskVerdict, mask_verdict
 
 COVERAGE_FACTOR = 2.0  # uncertainty bars and the table's U are k = 2 expanded uncertainties
-
-SAFETY_CAUTIONS: tuple[str, ...] = (
-    "The generator, supply and oscilloscope are mains-powered and their grounds are tied to "
-    "protective earth: a ground clip on a node that is not ground is a short circuit. Never "
-    "defeat the earth connection.",
-    "Pass devices, injector op-amps and electronic loads run hot; let them cool before touching.",
-    "Capacitors on the pin and in the injector hold charge after the outputs turn off; "
-    "discharge them before handling the boards.",
-    "Keep DC plus ripple peak within the device's limits; set over-voltage and current limits "
-    "before any output turns on.",
-    "These notes do not replace local electrical-safety codes and qualified practice, which "
-    "come first.",
-)
 
 
 @dataclass(frozen=True)
