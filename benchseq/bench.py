@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import re
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
@@ -23,6 +24,8 @@ ROLES = ("generator", "supply", "scope", "load")
 LOAD_MODES = ("50 ohm", "high-z")
 COUPLINGS = ("AC", "DC")
 SIM_ADDRESS_PREFIX = "SIM::"
+_IDENTIFIER = r"[A-Za-z_][A-Za-z0-9_]*"
+_DRIVER_CLASS = re.compile(rf"^{_IDENTIFIER}(\.{_IDENTIFIER})*:{_IDENTIFIER}$")
 
 
 @dataclass(frozen=True)
@@ -144,7 +147,7 @@ class Bench:
     load: LoadSetup | None
     injector: InjectorValues
     pin: PinLoad
-    simulation: str | None = None  # scenario name when this is the embedded simulated bench
+    simulation: str | None = None  # simulated bench: a shipped scenario's name or a scenario file
     extra: dict[str, Any] = field(default_factory=dict)
 
     @property
@@ -160,8 +163,12 @@ def _instrument(section: Section, role: str) -> InstrumentSpec:
     address = section.text("address")
     profile = section.text("profile", default=f"scpi-{role}")
     driver_class = section.text("driver_class", default=None)
-    if driver_class is not None and ":" not in driver_class:
-        raise section.error("driver_class", "expected 'package.module:ClassName'")
+    if driver_class is not None and not _DRIVER_CLASS.match(driver_class):
+        raise section.error(
+            "driver_class",
+            f"'{driver_class}' is not of the form 'package.module:ClassName' "
+            "(an importable module, absolute, and a class name)",
+        )
     channel = section.integer("channel", default=1, minimum=1, maximum=64)
     timeout = section.quantity("timeout", "s", default=5.0, within=BENCH_RANGES["timeout"])
     return InstrumentSpec(role, address, profile, driver_class, channel, timeout)
@@ -194,7 +201,7 @@ def parse_bench(
     name = lab.text("name")
     notes = lab.text("notes", default="")
     visa_library = lab.text("visa_library", default="@py")
-    simulation = lab.text("simulation", default=None)
+    simulation = _scenario_reference(lab.text("simulation", default=None), base_dir)
     lab.done()
 
     instruments: dict[str, InstrumentSpec] = {}
@@ -360,6 +367,20 @@ def _amplitude_pp(section: Section, key: str) -> float:
     written = section.raw(key)
     peak_to_peak = section.amplitude(key).peak_to_peak
     return section.check_range(key, peak_to_peak, written, BENCH_RANGES[f"{section.path}.{key}"])
+
+
+def is_scenario_path(name: str) -> bool:
+    """True when lab.simulation names a scenario FILE (a path) rather than a shipped scenario."""
+    return name.endswith(".toml") or "/" in name or "\\" in name
+
+
+def _scenario_reference(name: str | None, base_dir: Path | None) -> str | None:
+    """lab.simulation as given, with a scenario file's relative path taken from the bench
+    file's folder (so the result file records where it was)."""
+    if name is None or not is_scenario_path(name) or base_dir is None:
+        return name
+    path = Path(name)
+    return str(path if path.is_absolute() else (base_dir / path).absolute())
 
 
 def embedded_bench_text(scenario: str = "demo") -> str:

@@ -25,6 +25,7 @@ from benchseq.injector import (
     Feasibility,
     InjectorModel,
 )
+from benchseq.preflight import plan_bench_warnings
 from benchseq.units import Amplitude, format_si
 
 if TYPE_CHECKING:
@@ -292,7 +293,11 @@ def check_plan(plan: Plan, bench: Bench) -> CheckReport:
         time_breakdown=breakdown,
         capture_estimate=method,
         corners=corners,
-        warnings=tuple(bench_warnings(model, corners) + coupling_warnings(plan, bench)),
+        warnings=tuple(
+            bench_warnings(model, corners)
+            + coupling_warnings(plan, bench)
+            + plan_bench_warnings(plan, bench)
+        ),
         groups=groups,
         worst=worst,
         feasibility=feas,

@@ -48,9 +48,11 @@ def cmd_check(args: argparse.Namespace) -> int:
     from benchseq.bench import load_bench
     from benchseq.check import check_plan, render_check
     from benchseq.plan import load_plan
+    from benchseq.preflight import preflight
 
     bench = load_bench(args.bench)
     plan = load_plan(args.plan)
+    preflight(plan, bench)  # what `run` needs of both files, before its feasibility
     report = check_plan(plan, bench)
     if args.json:
         _print_json(report.to_dict())

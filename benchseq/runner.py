@@ -14,6 +14,7 @@ from benchseq import __version__
 from benchseq.bench import Bench, load_bench, parse_bench
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.plan import Plan, load_plan, parse_plan
+from benchseq.preflight import preflight
 from benchseq.records import POINT_COLUMNS, SCHEMA_VERSION, SIGN_CONVENTION, TRUTH_COLUMNS
 from benchseq.sequencer import EventSink, RunOutcome, Sequencer
 from benchseq.stopping import StopControl
@@ -214,6 +215,7 @@ def run_prepared(
     from benchseq.store import RunWriter
 
     open_session = session_factory or open_session
+    preflight(plan, bench)  # everything the run needs, before any file or instrument
     report = _refuse_infeasible(plan, bench)
     calibration = _bench_calibration(bench)
     meta = run_meta(plan, bench, seed, keep_waveforms, report)
@@ -290,6 +292,14 @@ def _run_on_bench(
         session.close()
 
 
+def _stored_bench_dir(meta: dict[str, Any]) -> Path | None:
+    """The folder of a stored run's bench file (its relative paths are from there)."""
+    source = str(meta.get("bench_source", ""))
+    if not source or source.startswith("sim:"):
+        return None
+    return Path(source).parent
+
+
 def resume_run(
     result_path: str,
     plan_path: str | None = None,
@@ -313,7 +323,7 @@ def resume_run(
     text, data = parse_toml_text(meta["plan_text"], f"{path} (stored plan)")
     plan = parse_plan(data, meta["plan_source"], text)
     btext, bdata = parse_toml_text(meta["bench_text"], f"{path} (stored bench)")
-    bench = parse_bench(bdata, meta["bench_source"], btext)
+    bench = parse_bench(bdata, meta["bench_source"], btext, base_dir=_stored_bench_dir(meta))
     if plan_path is not None and load_plan(plan_path).text_hash != meta["plan_sha256"]:
         raise BadInput(
             f"{plan_path} is not the plan this run was started with ({path}); "
@@ -324,6 +334,7 @@ def resume_run(
             f"{bench_path} is not the bench this run was started with ({path}); "
             "resume without --bench to use the stored bench"
         )
+    preflight(plan, bench)
     report = _refuse_infeasible(plan, bench)
     stored = meta.get("calibration")
     if stored:
