@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import os
 import re
 from dataclasses import dataclass, field
 from importlib import resources
@@ -231,9 +232,7 @@ def parse_bench(
         overvoltage_protection=sup.quantity(
             "overvoltage_protection", "V", **_within(sup, "overvoltage_protection")
         ),
-        safe_level=sup.quantity(
-            "safe_level", "V", default=0.0, **_within(sup, "safe_level")
-        ),
+        safe_level=sup.quantity("safe_level", "V", default=0.0, **_within(sup, "safe_level")),
         ramp_rate=sup.quantity("ramp_rate", "V/s", default=5.0, **_within(sup, "ramp_rate")),
     )
     sup.done()
@@ -380,7 +379,7 @@ def _scenario_reference(name: str | None, base_dir: Path | None) -> str | None:
     if name is None or not is_scenario_path(name) or base_dir is None:
         return name
     path = Path(name)
-    return str(path if path.is_absolute() else (base_dir / path).absolute())
+    return os.path.normpath(path if path.is_absolute() else (base_dir / path).absolute())
 
 
 def embedded_bench_text(scenario: str = "demo") -> str:

@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from benchseq.bench import Bench, describe_band
+from benchseq.errors import BadInput, FileKeyError
 from benchseq.injector import (
     REASON_TITLES,
     REASONS,
@@ -28,7 +29,6 @@ from benchseq.injector import (
     InjectorModel,
     InjectorValuesError,
 )
-from benchseq.errors import BadInput, FileKeyError
 from benchseq.preflight import plan_bench_warnings
 from benchseq.units import Amplitude, format_si
 

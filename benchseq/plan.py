@@ -555,9 +555,7 @@ def _band(band: Section) -> list[float]:
 def _device(section: Section) -> DeviceLimits:
     _only(section, ("name", "absolute_max", "min_operating", "max_load"))
     name = section.text("name", default="")
-    absolute_max = section.quantity(
-        "absolute_max", "V", within=PLAN_RANGES["device.absolute_max"]
-    )
+    absolute_max = section.quantity("absolute_max", "V", within=PLAN_RANGES["device.absolute_max"])
     min_operating = section.quantity(
         "min_operating", "V", nonnegative=True, within=PLAN_RANGES["device.min_operating"]
     )

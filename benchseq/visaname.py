@@ -37,7 +37,9 @@ def check_resource_name(address: str) -> str:
 
     text = address.strip()
     if not text:
-        raise AddressError(f"an empty address; write a VISA resource string such as {SOCKET_EXAMPLE}")
+        raise AddressError(
+            f"an empty address; write a VISA resource string such as {SOCKET_EXAMPLE}"
+        )
     if _HOST_PORT.match(text):
         raise AddressError(
             f"'{address}' is not a VISA resource string; for a raw socket write "
