@@ -99,7 +99,7 @@ BENCH_RANGES: dict[str, Range] = {
     "injector.bias_capacitor": _CAPACITOR,
     "injector.opamp.open_loop_gain": Range(1.0, 1e9, "", low_open=True),  # ratio (180 dB)
     "injector.opamp.gain_bandwidth": Range(1e3, 100e9, "Hz"),
-    "injector.opamp.slew_rate": Range(1.0, 1e12, "V/s"),
+    "injector.opamp.slew_rate": Range(1.0, 1e11, "V/s"),
     "injector.opamp.output_resistance": Range(0.0, 10e3, "Ω"),
     "injector.opamp.current_limit": Range(1e-6, 100.0, "A"),
     "injector.opamp.output_low": _RAIL,

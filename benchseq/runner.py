@@ -100,6 +100,19 @@ def _calibrated_writer(writer: Any, record: dict[str, Any] | None) -> Any:
     return writer
 
 
+def _refuse_folders(path: Path) -> None:
+    """A result path, or the journal beside it, that is a folder is refused by name (even
+    with --force: a folder is never removed to make room for a result)."""
+    from benchseq.store import journal_path
+
+    for candidate, what in ((path, "the result file"), (journal_path(path), "its journal")):
+        if candidate.is_dir():
+            raise BadInput(
+                f"{candidate} is a folder, so {what} cannot be written there "
+                f"(--out {path}); nothing was switched on. Choose another result file name"
+            )
+
+
 def default_output(plan: Plan) -> Path:
     stamp = dt.datetime.now().strftime("%Y%m%d-%H%M%S")
     stem = Path(plan.source).stem or "run"
@@ -216,6 +229,7 @@ def run_prepared(
 
     open_session = session_factory or open_session
     preflight(plan, bench)  # everything the run needs, before any file or instrument
+    _refuse_folders(path)
     report = _refuse_infeasible(plan, bench)
     calibration = _bench_calibration(bench)
     meta = run_meta(plan, bench, seed, keep_waveforms, report)

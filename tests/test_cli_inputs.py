@@ -63,6 +63,18 @@ def test_plot_written_at_exactly_the_given_name(
     assert [p.name for p in tmp_path.iterdir()] == ["Bode.PNG"]
 
 
+# -- result paths that are folders -------------------------------------------------------------
+@pytest.mark.parametrize("folder", ["run.h5", "run.h5.journal"])
+def test_a_result_or_journal_path_that_is_a_folder_is_refused(
+    folder: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    (tmp_path / folder).mkdir()
+    plan = _one_point_plan(tmp_path)
+    code, _, err = _cli(capsys, "run", str(plan), "--out", str(tmp_path / "run.h5"), "--force")
+    assert code == 2 and f"{tmp_path / folder} is a folder" in err
+    assert (tmp_path / folder).is_dir() and not any((tmp_path / folder).iterdir())
+
+
 # -- the injector table's phase ----------------------------------------------------------------
 def test_table_phase_is_continuous_like_the_plot() -> None:
     """The table's phase is the angle unwrapped upwards from 1 Hz, as the plot draws it.
