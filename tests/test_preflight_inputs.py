@@ -58,6 +58,7 @@ CASES = [
     Case("scenario that does not exist", "bench", 'simulation = "demo"', 'simulation = "no-such-scenario"', "bench", "lab.simulation"),
     Case("scenario file missing", "bench", 'simulation = "demo"', 'simulation = "mine/device.toml"', "bench", "lab.simulation"),
     Case("safe level above the device limit", "bench", 'safe_level = "0 V"', 'safe_level = "6.4 V"', "bench", "supply.safe_level"),
+    Case("negative safe level", "bench", 'safe_level = "0 V"', 'safe_level = "-1 V"', "bench", "supply.safe_level"),
     Case("load axis without an electronic load", "plan", '# load = ["10 mA", "100 mA"]', 'load = ["10 mA", "20 mA"]', "plan", "sweep.load"),
     Case("address that is not a VISA resource", "lab", 'address = "TCPIP::192.0.2.21::5025::SOCKET"', 'address = "192.0.2.21:5025"', "bench", "generator.address"),
     Case("socket port out of range", "lab", 'address = "TCPIP::192.0.2.22::5025::SOCKET"', 'address = "TCPIP::192.0.2.22::70000::SOCKET"', "bench", "supply.address"),
@@ -161,3 +162,38 @@ def test_the_shipped_files_pass_the_preflight(capsys: pytest.CaptureFixture[str]
     assert main(["check", str(PLANS / "demo.toml")]) == 0
     assert main(["check", str(PLANS / "overnight.toml"), "--bench", str(TEMPLATE)]) in (0, 1)
     assert "error" not in capsys.readouterr().err
+
+
+def test_injector_command_refuses_a_gain_bandwidth_in_millihertz(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    _, bench = _write(tmp_path, next(c for c in CASES if c.name == "gain-bandwidth in millihertz"))
+    assert main(["injector", "--bench", str(bench)]) == 2
+    out, err = capsys.readouterr()
+    assert "Traceback" not in out + err
+    assert f"{bench}: injector.opamp.gain_bandwidth:" in _one_line(err)
+
+
+def test_values_the_model_cannot_evaluate_name_the_injector_table() -> None:
+    """No resistance at all between generator and the − input (Rs = Rin = 0; Rin = 0 is
+    below the allowed range, so only reachable by building the bench in code) gives an
+    infinite passband gain −Rf/(Rs + Rin); the model's failure is reported against the bench
+    file's [injector] table, not raised as a numerical error."""
+    import dataclasses
+
+    from benchseq.bench import load_bench
+    from benchseq.check import check_plan, injector_report
+    from benchseq.errors import FileKeyError
+    from benchseq.plan import load_plan
+
+    bench = load_bench(None)
+    injector = dataclasses.replace(bench.injector, input_resistor=0.0)
+    generator = dataclasses.replace(bench.generator, source_resistance=0.0)
+    broken = dataclasses.replace(bench, injector=injector, generator=generator)
+    for call in (
+        lambda: check_plan(load_plan(PLANS / "demo.toml"), broken),
+        lambda: injector_report(broken),
+    ):
+        with pytest.raises(FileKeyError) as caught:
+            call()
+        assert caught.value.key == "injector" and caught.value.source == "sim:demo"
