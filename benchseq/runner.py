@@ -306,12 +306,15 @@ def _run_on_bench(
         session.close()
 
 
-def _stored_bench_dir(meta: dict[str, Any]) -> Path | None:
-    """The folder of a stored run's bench file (its relative paths are from there)."""
-    source = str(meta.get("bench_source", ""))
-    if not source or source.startswith("sim:"):
-        return None
-    return Path(source).parent
+def _with_stored_scenario(bench: Bench, meta: dict[str, Any]) -> Bench:
+    """A stored bench naming a scenario FILE: the file the run used (stored as an absolute
+    path when it started), not the bench text's relative path read from today's folder."""
+    from benchseq.bench import is_scenario_path
+
+    stored = meta.get("simulation")
+    if bench.simulation and is_scenario_path(bench.simulation) and stored:
+        return dataclasses.replace(bench, simulation=str(stored))
+    return bench
 
 
 def resume_run(
@@ -337,7 +340,7 @@ def resume_run(
     text, data = parse_toml_text(meta["plan_text"], f"{path} (stored plan)")
     plan = parse_plan(data, meta["plan_source"], text)
     btext, bdata = parse_toml_text(meta["bench_text"], f"{path} (stored bench)")
-    bench = parse_bench(bdata, meta["bench_source"], btext, base_dir=_stored_bench_dir(meta))
+    bench = _with_stored_scenario(parse_bench(bdata, meta["bench_source"], btext), meta)
     if plan_path is not None and load_plan(plan_path).text_hash != meta["plan_sha256"]:
         raise BadInput(
             f"{plan_path} is not the plan this run was started with ({path}); "
@@ -348,7 +351,10 @@ def resume_run(
             f"{bench_path} is not the bench this run was started with ({path}); "
             "resume without --bench to use the stored bench"
         )
-    preflight(plan, bench)
+    # the calibration is the run's own (below), whatever the bench file names today
+    preflight(
+        plan, dataclasses.replace(bench, scope=dataclasses.replace(bench.scope, calibration=None))
+    )
     report = _refuse_infeasible(plan, bench)
     stored = meta.get("calibration")
     if stored:

@@ -202,3 +202,40 @@ def test_a_bad_scenario_file_is_refused_naming_both_files(
     code, _, err = _cli(capsys, "check", str(_one_point_plan(tmp_path)), "--bench", str(bench))
     assert code == 2
     assert f"{bench}: lab.simulation" in err and f"{mine}: noise.hum" in err
+
+
+def test_a_run_on_a_scenario_file_resumes_from_another_folder(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Stopped after its first point, then resumed from elsewhere: the stored run's scenario
+    file is found again (the bench text's relative path is not read from the new folder)."""
+    from benchseq.runner import start_run
+    from benchseq.stopping import StopControl
+
+    (tmp_path / "benches").mkdir()
+    (tmp_path / "cwd").mkdir()
+    mine = tmp_path / "benches" / "device.toml"
+    mine.write_text((SCENARIOS / "demo.toml").read_text(encoding="utf-8"), "utf-8")
+    bench_text = (SCENARIOS / "demo.bench.toml").read_text(encoding="utf-8")
+    bench = tmp_path / "benches" / "bench.toml"
+    bench.write_text(
+        bench_text.replace('simulation = "demo"', 'simulation = "device.toml"'), "utf-8"
+    )
+    text = (PLANS / "demo.toml").read_text(encoding="utf-8")
+    plan = tmp_path / "plan.toml"
+    plan.write_text(text.replace(DEMO_FREQUENCIES, 'frequency = ["1 kHz", "10 kHz"]'), "utf-8")
+    stop = StopControl()
+
+    def emit(event: object) -> None:
+        if getattr(event, "kind", "") == "point_stored":
+            stop.request("test stop")
+
+    outcome, path = start_run(
+        str(plan), str(bench), str(tmp_path / "part.h5"), emit=emit, stop=stop
+    )
+    assert outcome.status == "stopped"
+    monkeypatch.chdir(tmp_path / "cwd")
+    code, _, err = _cli(capsys, "run", "--resume", str(path))
+    assert code == 0, err
+    assert len(read_results(path)) == 2
+    assert read_meta(path)["simulation"] == str(mine)
