@@ -1,19 +1,21 @@
 """Fuzzed plan, bench and result files through the command line (a benchmark, not a test).
 
-Each case is a damaged copy of a shipped file: a plan or bench file with one to three lines
-changed (a value replaced by a nasty one, a line deleted, a key misspelt, the text cut or a
-byte flipped), or a small simulated result file truncated or with bytes flipped. Each case
-runs in a forked child with a time limit:
+Each case is a damaged copy of a shipped file: a plan, a bench or a scenario file (a user's
+own scenario, named by the bench's ``lab.simulation``) with one to three lines changed (a
+value replaced by a nasty one or by one at the edge of its allowed range, a line deleted, a
+key misspelt, the text cut or a byte flipped), or a small simulated result file truncated
+or with bytes flipped. Each case runs in a forked child with a time limit:
 
-- plan and bench cases: ``check``; when check refuses (exit 2), ``run`` must refuse too,
-  without creating a result file and without opening the bench; when check accepts a small
-  plan on the simulated bench, ``run`` runs it;
+- plan, bench and scenario cases: ``check``; when check refuses (exit 2, or 1 for
+  infeasible points), ``run`` must refuse too, without creating a result file and without
+  opening the bench; when check accepts a small plan on the simulated bench, ``run`` runs
+  it (and must not refuse what check accepted);
 - result cases: ``show`` and ``report --format csv``.
 
-Printed: cases tried, tracebacks (an exception escaping the command, or "Traceback" in its
-output), hangs (a child over its time limit), instruments touched by refused inputs
-(bench sessions opened, counted by wrapping the session factory) and result files left by
-refused inputs. The target is 0 for the last four.
+Printed: cases tried, exit codes, tracebacks (an exception escaping the command, or
+"Traceback" in its output), hangs (a child over its time limit), instruments touched by
+refused inputs (bench sessions opened, counted by wrapping the session factory), result
+files left by refused inputs, and inputs check accepted but run refused. Target: all 0.
 
     python tests/perf/fuzz_inputs.py [--cases 150] [--seed 1] [--timeout 60] [--budget 900]
 """
@@ -40,6 +42,7 @@ ROOT = Path(__file__).resolve().parents[2]
 PLAN = ROOT / "plans" / "demo.toml"
 SIM_BENCH = ROOT / "sim" / "scenarios" / "demo.bench.toml"
 LAB_BENCH = ROOT / "plans" / "bench-template.toml"
+SCENARIO = ROOT / "sim" / "scenarios" / "demo.toml"
 SMALL_FREQUENCIES = 'frequency = ["1 kHz", "100 kHz"]'
 DEMO_FREQUENCIES = 'frequency = { from = "10 Hz", to = "1 MHz", per_decade = 3 }'
 MAX_RUN_POINTS = 40  # accepted plans larger than this are checked but not run
@@ -251,14 +254,20 @@ def main() -> int:
         base_result = make_result(work)
         plan_text = PLAN.read_text("utf-8").replace(DEMO_FREQUENCIES, SMALL_FREQUENCIES)
         sim_text, lab_text = SIM_BENCH.read_text("utf-8"), LAB_BENCH.read_text("utf-8")
+        scenario_text = SCENARIO.read_text("utf-8")
         for n in range(args.cases):
             if time.monotonic() - started > args.budget:
                 break
             folder = work / f"case{n}"
             folder.mkdir()
-            kind = rng.choice(["plan", "sim", "lab", "result"])
+            kind = rng.choice(["plan", "sim", "lab", "result", "scenario"])
             if kind == "result":
                 damage_result(base_result, folder / "case.h5", rng)
+            elif kind == "scenario":  # the user's own scenario file, named by the bench
+                mine = sim_text.replace('simulation = "demo"', 'simulation = "mine.toml"')
+                (folder / "mine.toml").write_text(mutate_text(scenario_text, rng), "utf-8")
+                (folder / "plan.toml").write_text(plan_text, "utf-8")
+                (folder / "bench.toml").write_text(mine, "utf-8")
             else:
                 damaged_plan = kind == "plan" or rng.random() < 0.2
                 plan = mutate_text(plan_text, rng) if damaged_plan else plan_text
@@ -267,7 +276,7 @@ def main() -> int:
                     bench = mutate_text(bench, rng)
                 (folder / "plan.toml").write_text(plan, "utf-8")
                 (folder / "bench.toml").write_text(bench, "utf-8")
-            run_kind = "sim" if kind in ("plan", "sim") else kind
+            run_kind = "sim" if kind in ("plan", "sim", "scenario") else kind
             tally.tried[kind] += 1
             found = one_case(run_kind, folder, args.timeout)
             label = f"case{n} ({kind})"
