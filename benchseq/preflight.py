@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING
 
 from benchseq.bench import SIM_ADDRESS_PREFIX, Bench, InstrumentSpec
 from benchseq.errors import BadInput, FileKeyError
+from benchseq.ranges import LONGEST_WAIT_S, format_limit
 from benchseq.units import format_si
 
 if TYPE_CHECKING:
@@ -26,6 +27,7 @@ def preflight(plan: Plan, bench: Bench) -> None:
     """Refuse (FileKeyError) what a run could not do (warnings: plan_bench_warnings)."""
     check_bench_for_run(bench)
     check_plan_on_bench(plan, bench)
+    check_waits(plan, bench)
 
 
 def check_bench_for_run(bench: Bench) -> None:
@@ -57,6 +59,51 @@ def check_plan_on_bench(plan: Plan, bench: Bench) -> None:
             f"{format_si(limit, 'V')} ({plan.source}: device.absolute_max); a stop would leave "
             "the device above its limit. Use 0 V (output off) or a level within the limits",
         )
+
+
+def check_waits(plan: Plan, bench: Bench) -> None:
+    """No single wait of the run may exceed LONGEST_WAIT_S: the settling after each change
+    (settle.wait + settle.time_constants x the injector's slowest time constant), the bias
+    filter after a DC step (7 Rb·Cb, as the sequencer waits) and one DC ramp (from 0 V to the
+    highest level at supply.ramp_rate). Each value may be in range while the product is not."""
+    from benchseq.check import BIAS_SETTLE_TIME_CONSTANTS, injector_guard
+    from benchseq.injector import InjectorModel
+
+    with injector_guard(bench):
+        corners = InjectorModel(bench.injector, bench.generator, bench.pin).corners()
+    tau = corners.slowest_time_constant_s
+    settle = plan.settle.fixed_s + plan.settle.time_constants * tau
+    longest = format_limit(LONGEST_WAIT_S, "s")
+    if settle > LONGEST_WAIT_S:
+        raise FileKeyError(
+            bench.source,
+            "injector",
+            f"the injector's slowest time constant is {_duration(tau)}: with {plan.source}'s "
+            f"settle.time_constants = {plan.settle.time_constants:g} (and settle.wait) every "
+            f"point would wait {_duration(settle)}, more than {longest}; check the capacitor and "
+            "resistor values (or lower settle.time_constants)",
+        )
+    bias = BIAS_SETTLE_TIME_CONSTANTS * bench.injector.bias_resistor * bench.injector.bias_capacitor
+    if bias > LONGEST_WAIT_S:
+        raise FileKeyError(
+            bench.source,
+            "injector.bias_capacitor",
+            f"the bias filter (Rb·Cb) needs {_duration(bias)} to settle after each DC step, "
+            f"more than {longest}",
+        )
+    ramp = float(max(plan.dc_levels)) / bench.supply.ramp_rate
+    if ramp > LONGEST_WAIT_S:
+        raise FileKeyError(
+            bench.source,
+            "supply.ramp_rate",
+            f"ramping to {format_si(float(max(plan.dc_levels)), 'V')} ({plan.source}: sweep.dc) "
+            f"at {format_si(bench.supply.ramp_rate, 'V/s')} takes {_duration(ramp)}, more than "
+            f"{longest}",
+        )
+
+
+def _duration(seconds: float) -> str:
+    return format_limit(seconds, "s") if seconds >= 60 else format_si(seconds, "s", 3)
 
 
 def plan_bench_warnings(plan: Plan, bench: Bench) -> list[str]:

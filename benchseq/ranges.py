@@ -17,6 +17,7 @@ from benchseq.units import format_si
 
 HOUR = 3600.0
 DAY = 86_400.0
+LONGEST_WAIT_S = HOUR  # no single wait of a run (settling, bias filter, one DC ramp) is longer
 
 
 @dataclass(frozen=True)
@@ -48,7 +49,7 @@ def format_limit(value: float, unit: str) -> str:
             if value >= size:
                 count = value / size
                 plural = "s" if name == "day" and count != 1 else ""
-                return f"{count:g} {name}{plural}"
+                return f"{count:.3g} {name}{plural}"
     if unit == "dB":
         return f"{value:g} dB"
     if unit == "":

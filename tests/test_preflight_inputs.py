@@ -47,6 +47,7 @@ CASES = [
     Case("resistor of 1e300 ohm", "bench", 'input_resistor = "1 k"', 'input_resistor = "1e300 ohm"', "bench", "injector.input_resistor"),
     Case("timeout of years", "bench", 'profile = "scpi-generator"', 'profile = "scpi-generator"\ntimeout = "1e9 s"', "bench", "generator.timeout"),
     Case("negative bandwidth limit", "bench", 'bandwidth_limit = "20 MHz"', 'bandwidth_limit = "-5 Hz"', "bench", "scope.bandwidth_limit"),
+    Case("settling of hours (1 F coupling capacitor)", "bench", 'coupling_capacitor = "10 uF"', 'coupling_capacitor = "1 F"', "bench", "injector"),
     Case("relative driver class", "bench", 'profile = "scpi-generator"', 'profile = "scpi-generator"\ndriver_class = "..x:Y"', "bench", "generator.driver_class"),
     Case("driver module missing", "bench", 'profile = "scpi-generator"', 'profile = "scpi-generator"\ndriver_class = "no_such_module_here:Gen"', "bench", "generator.driver_class"),
     Case("driver class of the wrong kind", "bench", 'profile = "scpi-generator"', 'profile = "scpi-generator"\ndriver_class = "benchseq.units:Amplitude"', "bench", "generator.driver_class"),
