@@ -198,3 +198,20 @@ def test_values_the_model_cannot_evaluate_name_the_injector_table() -> None:
         with pytest.raises(FileKeyError) as caught:
             call()
         assert caught.value.key == "injector" and caught.value.source == "sim:demo"
+
+
+def test_a_profile_capability_out_of_range_names_both_files(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], opened: Keeper
+) -> None:
+    """A scope profile whose re-arm time is 1e308 s would stall every capture."""
+    shipped = (ROOT / "drivers" / "profiles" / "scpi-scope.toml").read_text(encoding="utf-8")
+    assert "rearm_time = 0.002" in shipped
+    profile = tmp_path / "slow-scope.toml"
+    profile.write_text(shipped.replace("rearm_time = 0.002", "rearm_time = 1e308"), "utf-8")
+    case = Case("", "bench", 'profile = "scpi-scope"', 'profile = "slow-scope.toml"', "bench", "")
+    plan, bench = _write(tmp_path, case)
+    assert main(["check", str(plan), "--bench", str(bench)]) == 2
+    message = _one_line(capsys.readouterr().err)
+    assert f"{bench}: scope.profile:" in message
+    assert f"{profile}: capabilities.rearm_time:" in message
+    assert not opened.sessions
