@@ -12,6 +12,7 @@ key; what is allowed but unwise is listed by ``plan_bench_warnings`` (shown by `
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 from benchseq.bench import SIM_ADDRESS_PREFIX, Bench, InstrumentSpec
@@ -165,7 +166,10 @@ def _check_calibration(bench: Bench) -> None:
     try:
         load_calibration(bench.scope.calibration)
     except BadInput as exc:
-        raise FileKeyError(bench.source, "scope.calibration", str(exc)) from None
+        hint = ""
+        if not Path(bench.scope.calibration).exists():
+            hint = f" (make it with `benchseq calibrate --bench {bench.source}`, or drop the key)"
+        raise FileKeyError(bench.source, "scope.calibration", f"{exc}{hint}") from None
 
 
 def _check_simulation(bench: Bench) -> None:

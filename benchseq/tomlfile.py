@@ -108,6 +108,8 @@ class Section:
             return value
         if not isinstance(value, str):
             raise self.error(key, f"expected text, got {_kind(value)}")
+        if "\x00" in value:
+            raise self.error(key, "contains a NUL character (\\u0000); remove it")
         if choices is not None:
             options = list(choices)
             if value not in options:

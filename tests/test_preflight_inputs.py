@@ -42,6 +42,7 @@ CASES = [
     Case("settle wait of years", "plan", 'wait = "0 s"', 'wait = "1e9 s"', "plan", "settle.wait"),
     Case("capture time too long", "plan", 'max_time = "5 s"', "max_time = 1e308", "plan", "capture.max_time"),
     Case("frequency beyond any bench", "plan", DEMO_FREQUENCIES, 'frequency = ["1 kHz", "1e12 Hz"]', "plan", "sweep.frequency[1]"),
+    Case("NUL character in the title", "plan", 'title = "Demo: FV-33', 'title = "Demo\\u0000: FV-33', "plan", "title"),
     Case("ramp that never ends", "bench", 'ramp_rate = "5 V/s"', 'ramp_rate = "1e-12 V/s"', "bench", "supply.ramp_rate"),
     Case("gain-bandwidth in millihertz", "bench", 'gain_bandwidth = "10 MHz"', 'gain_bandwidth = "10 mHz"', "bench", "injector.opamp.gain_bandwidth"),
     Case("resistor of 1e300 ohm", "bench", 'input_resistor = "1 k"', 'input_resistor = "1e300 ohm"', "bench", "injector.input_resistor"),
