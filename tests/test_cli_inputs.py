@@ -3,6 +3,7 @@ the injector table's phase, and a user's own scenario file named by a bench file
 
 from __future__ import annotations
 
+import json
 import re
 import socket
 import threading
@@ -135,7 +136,7 @@ def test_scan_host_port_is_a_raw_socket(
     monkeypatch.setenv("COLUMNS", "400")
     code, out, _ = _cli(capsys, "scan", f"127.0.0.1:{idn_server}", "--json", "--timeout", "5")
     assert code == 0
-    entry = next(e for e in __import__("json").loads(out) if "127.0.0.1" in e["resource"])
+    entry = next(e for e in json.loads(out) if "127.0.0.1" in e["resource"])
     assert entry["resource"] == f"TCPIP::127.0.0.1::{idn_server}::SOCKET"
     assert entry["identity"] == "Fernhollow,RJ-7 test socket,0,1.0"
 
