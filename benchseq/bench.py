@@ -10,12 +10,15 @@ from __future__ import annotations
 
 import hashlib
 import math
+import os
+import re
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
 from benchseq.errors import FileKeyError
+from benchseq.ranges import BENCH_RANGES
 from benchseq.tomlfile import Section, parse_toml_text, read_toml
 
 ROLES = ("generator", "supply", "scope", "load")
@@ -23,6 +26,8 @@ LOAD_MODES = ("50 ohm", "high-z")
 COUPLINGS = ("AC", "DC")
 SIM_ADDRESS_PREFIX = "SIM::"
 MAX_OUTAGE_PATIENCE_S = 3600.0
+_IDENTIFIER = r"[A-Za-z_][A-Za-z0-9_]*"
+_DRIVER_CLASS = re.compile(rf"^{_IDENTIFIER}(\.{_IDENTIFIER})*:{_IDENTIFIER}$")
 
 
 @dataclass(frozen=True)
@@ -144,7 +149,7 @@ class Bench:
     load: LoadSetup | None
     injector: InjectorValues
     pin: PinLoad
-    simulation: str | None = None  # scenario name when this is the embedded simulated bench
+    simulation: str | None = None  # simulated bench: a shipped scenario's name or a scenario file
     # s: how long an unreachable instrument is waited for, to ride through an outage and
     # again to make the bench safe (lab.outage_patience)
     outage_patience: float = 300.0
@@ -163,19 +168,32 @@ def _instrument(section: Section, role: str) -> InstrumentSpec:
     address = section.text("address")
     profile = section.text("profile", default=f"scpi-{role}")
     driver_class = section.text("driver_class", default=None)
-    if driver_class is not None and ":" not in driver_class:
-        raise section.error("driver_class", "expected 'package.module:ClassName'")
+    if driver_class is not None and not _DRIVER_CLASS.match(driver_class):
+        raise section.error(
+            "driver_class",
+            f"'{driver_class}' is not of the form 'package.module:ClassName' "
+            "(an importable module, absolute, and a class name)",
+        )
     channel = section.integer("channel", default=1, minimum=1, maximum=64)
-    timeout = section.quantity("timeout", "s", default=5.0, positive=True)
+    timeout = section.quantity("timeout", "s", default=5.0, within=BENCH_RANGES["timeout"])
     return InstrumentSpec(role, address, profile, driver_class, channel, timeout)
 
 
 def _scope_channel(section: Section) -> ScopeChannel:
     channel = section.integer("channel", minimum=1, maximum=64)
     probe = section.number("probe", default=1.0, positive=True)
+    section.check_range("probe", probe, probe, BENCH_RANGES["scope.probe"])
     coupling = section.text("coupling", default="AC", choices=COUPLINGS)
     section.done()
     return ScopeChannel(channel, probe, coupling)
+
+
+def _within(section: Section, key: str) -> dict[str, Any]:
+    """The range arguments for ``key`` of ``section`` (its range in BENCH_RANGES); the sign
+    is checked first, so a negative value is told so plainly."""
+    within = BENCH_RANGES[f"{section.path}.{key}"]
+    positive = within.low > 0 or (within.low == 0 and within.low_open)
+    return {"within": within, "positive": positive, "nonnegative": within.low == 0}
 
 
 def parse_bench(
@@ -188,7 +206,7 @@ def parse_bench(
     name = lab.text("name")
     notes = lab.text("notes", default="")
     visa_library = lab.text("visa_library", default="@py")
-    simulation = lab.text("simulation", default=None)
+    simulation = _scenario_reference(lab.text("simulation", default=None), base_dir)
     outage_patience = lab.quantity("outage_patience", "s", default=300.0, positive=True)
     if outage_patience > MAX_OUTAGE_PATIENCE_S:
         raise lab.error("outage_patience", "at most 1 h: the bench may stay on while it lasts")
@@ -202,10 +220,12 @@ def parse_bench(
     load_mode = gen.text("load_mode", choices=LOAD_MODES)
     generator = GeneratorSetup(
         load_mode=load_mode,
-        source_resistance=gen.quantity("source_resistance", "ohm", default=50.0, nonnegative=True),
-        max_amplitude_pp=gen.amplitude("max_amplitude").peak_to_peak,
-        min_amplitude_pp=gen.amplitude("min_amplitude").peak_to_peak,
-        max_frequency=gen.quantity("max_frequency", "Hz", positive=True),
+        source_resistance=gen.quantity(
+            "source_resistance", "ohm", default=50.0, **_within(gen, "source_resistance")
+        ),
+        max_amplitude_pp=_amplitude_pp(gen, "max_amplitude"),
+        min_amplitude_pp=_amplitude_pp(gen, "min_amplitude"),
+        max_frequency=gen.quantity("max_frequency", "Hz", **_within(gen, "max_frequency")),
     )
     gen.done()
     if generator.min_amplitude_pp >= generator.max_amplitude_pp:
@@ -215,10 +235,12 @@ def parse_bench(
     assert sup is not None
     instruments["supply"] = _instrument(sup, "supply")
     supply = SupplySetup(
-        current_limit=sup.quantity("current_limit", "A", positive=True),
-        overvoltage_protection=sup.quantity("overvoltage_protection", "V", positive=True),
-        safe_level=sup.quantity("safe_level", "V", default=0.0, nonnegative=True),
-        ramp_rate=sup.quantity("ramp_rate", "V/s", default=5.0, positive=True),
+        current_limit=sup.quantity("current_limit", "A", **_within(sup, "current_limit")),
+        overvoltage_protection=sup.quantity(
+            "overvoltage_protection", "V", **_within(sup, "overvoltage_protection")
+        ),
+        safe_level=sup.quantity("safe_level", "V", default=0.0, **_within(sup, "safe_level")),
+        ramp_rate=sup.quantity("ramp_rate", "V/s", default=5.0, **_within(sup, "ramp_rate")),
     )
     sup.done()
 
@@ -234,7 +256,14 @@ def parse_bench(
         raise out_section.error("channel", "the pin and the output need different scope channels")
     bandwidth = sco.raw("bandwidth_limit", default="off")
     bandwidth_limit = (
-        None if bandwidth == "off" else sco.parse_value(bandwidth, "Hz", "bandwidth_limit")
+        None
+        if bandwidth == "off"
+        else sco.check_range(
+            "bandwidth_limit",
+            sco.parse_value(bandwidth, "Hz", "bandwidth_limit"),
+            bandwidth,
+            BENCH_RANGES["scope.bandwidth_limit"],
+        )
     )
     calibration = sco.text("calibration", default=None)
     if calibration is not None and base_dir is not None and not Path(calibration).is_absolute():
@@ -246,7 +275,11 @@ def parse_bench(
     load_section = top.section("load", required=False)
     if load_section is not None:
         instruments["load"] = _instrument(load_section, "load")
-        load = LoadSetup(max_current=load_section.quantity("max_current", "A", positive=True))
+        load = LoadSetup(
+            max_current=load_section.quantity(
+                "max_current", "A", **_within(load_section, "max_current")
+            )
+        )
         load_section.done()
 
     inj = top.section("injector")
@@ -260,37 +293,52 @@ def parse_bench(
         open_loop_gain = amp.parse_value(gain_text, "", "open_loop_gain")
     if not open_loop_gain > 1:
         raise amp.error("open_loop_gain", "must be greater than 1 (or 0 dB)")
+    amp.check_range(
+        "open_loop_gain", open_loop_gain, gain_text, BENCH_RANGES["injector.opamp.open_loop_gain"]
+    )
     opamp = OpAmp(
         open_loop_gain=open_loop_gain,
-        gain_bandwidth=amp.quantity("gain_bandwidth", "Hz", positive=True),
-        slew_rate=amp.quantity("slew_rate", "V/s", positive=True),
-        output_resistance=amp.quantity("output_resistance", "ohm", nonnegative=True),
-        current_limit=amp.quantity("current_limit", "A", positive=True),
-        output_low=amp.quantity("output_low", "V"),
-        output_high=amp.quantity("output_high", "V"),
+        gain_bandwidth=amp.quantity("gain_bandwidth", "Hz", **_within(amp, "gain_bandwidth")),
+        slew_rate=amp.quantity("slew_rate", "V/s", **_within(amp, "slew_rate")),
+        output_resistance=amp.quantity(
+            "output_resistance", "ohm", **_within(amp, "output_resistance")
+        ),
+        current_limit=amp.quantity("current_limit", "A", **_within(amp, "current_limit")),
+        output_low=amp.quantity("output_low", "V", **_within(amp, "output_low")),
+        output_high=amp.quantity("output_high", "V", **_within(amp, "output_high")),
     )
     if opamp.output_high <= opamp.output_low:
         raise amp.error("output_high", "must be above output_low")
     amp.done()
     injector = InjectorValues(
-        input_resistor=inj.quantity("input_resistor", "ohm", positive=True),
-        coupling_capacitor=inj.quantity("coupling_capacitor", "F", positive=True),
-        feedback_resistor=inj.quantity("feedback_resistor", "ohm", positive=True),
-        bias_resistor=inj.quantity("bias_resistor", "ohm", positive=True),
-        bias_capacitor=inj.quantity("bias_capacitor", "F", positive=True),
+        input_resistor=inj.quantity("input_resistor", "ohm", **_within(inj, "input_resistor")),
+        coupling_capacitor=inj.quantity(
+            "coupling_capacitor", "F", **_within(inj, "coupling_capacitor")
+        ),
+        feedback_resistor=inj.quantity(
+            "feedback_resistor", "ohm", **_within(inj, "feedback_resistor")
+        ),
+        bias_resistor=inj.quantity("bias_resistor", "ohm", **_within(inj, "bias_resistor")),
+        bias_capacitor=inj.quantity("bias_capacitor", "F", **_within(inj, "bias_capacitor")),
         opamp=opamp,
     )
     inj.done()
 
     pin_load = top.section("pin")
     assert pin_load is not None
-    load_current = pin_load.quantity("load_current", "A", default=None, nonnegative=True)
-    load_resistance = pin_load.quantity("load_resistance", "ohm", default=None, positive=True)
+    load_current = pin_load.quantity(
+        "load_current", "A", default=None, **_within(pin_load, "load_current")
+    )
+    load_resistance = pin_load.quantity(
+        "load_resistance", "ohm", default=None, **_within(pin_load, "load_resistance")
+    )
     if load_current is not None and load_resistance is not None:
         raise pin_load.error("load_resistance", "give load_current or load_resistance, not both")
     pin = PinLoad(
-        capacitance=pin_load.quantity("capacitance", "F", positive=True),
-        capacitor_esr=pin_load.quantity("capacitor_esr", "ohm", default=0.0, nonnegative=True),
+        capacitance=pin_load.quantity("capacitance", "F", **_within(pin_load, "capacitance")),
+        capacitor_esr=pin_load.quantity(
+            "capacitor_esr", "ohm", default=0.0, **_within(pin_load, "capacitor_esr")
+        ),
         load_current=load_current,
         load_resistance=load_resistance,
     )
@@ -319,6 +367,27 @@ def parse_bench(
         simulation=simulation,
         outage_patience=outage_patience,
     )
+
+
+def _amplitude_pp(section: Section, key: str) -> float:
+    """A displayed amplitude (peak to peak, V), within its range."""
+    written = section.raw(key)
+    peak_to_peak = section.amplitude(key).peak_to_peak
+    return section.check_range(key, peak_to_peak, written, BENCH_RANGES[f"{section.path}.{key}"])
+
+
+def is_scenario_path(name: str) -> bool:
+    """True when lab.simulation names a scenario FILE (a path) rather than a shipped scenario."""
+    return name.endswith(".toml") or "/" in name or "\\" in name
+
+
+def _scenario_reference(name: str | None, base_dir: Path | None) -> str | None:
+    """lab.simulation as given, with a scenario file's relative path taken from the bench
+    file's folder (so the result file records where it was)."""
+    if name is None or not is_scenario_path(name) or base_dir is None:
+        return name
+    path = Path(name)
+    return os.path.normpath(path if path.is_absolute() else (base_dir / path).absolute())
 
 
 def embedded_bench_text(scenario: str = "demo") -> str:

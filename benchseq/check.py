@@ -9,7 +9,9 @@ build rich renderables for the CLI, ``plot_injector`` writes a Bode-style PNG.
 
 from __future__ import annotations
 
+import contextlib
 import math
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -17,6 +19,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from benchseq.bench import Bench, describe_band
+from benchseq.errors import BadInput, FileKeyError
 from benchseq.injector import (
     REASON_TITLES,
     REASONS,
@@ -24,7 +27,9 @@ from benchseq.injector import (
     DeviceLimitsLike,
     Feasibility,
     InjectorModel,
+    InjectorValuesError,
 )
+from benchseq.preflight import plan_bench_warnings
 from benchseq.units import Amplitude, format_si
 
 if TYPE_CHECKING:
@@ -35,6 +40,25 @@ BIAS_SETTLE_TIME_CONSTANTS = 7.0  # the sequencer waits 7 x Rb·Cb after moving 
 LOW_PHASE_MARGIN_DEG = 45.0
 PEAKING_WARN_DB = 1.0
 WORST_LISTED = 10
+PHASE_FROM_HZ = 1.0  # the injector's phase is unwrapped upwards from here (table and plot)
+PHASE_POINTS_PER_DECADE = 200
+
+
+@contextlib.contextmanager
+def injector_guard(bench: Bench) -> Iterator[None]:
+    """Turn a numerical failure of the injector model into an error naming the bench file's
+    [injector] values (the allowed ranges keep each value sane; this catches combinations)."""
+    try:
+        yield
+    except InjectorValuesError as exc:
+        raise FileKeyError(bench.source, "injector", str(exc)) from None
+    except (ArithmeticError, ValueError, np.linalg.LinAlgError) as exc:
+        raise FileKeyError(
+            bench.source,
+            "injector",
+            "the injector model cannot be evaluated with these component values "
+            f"({type(exc).__name__}: {exc}); check [injector], [injector.opamp] and [pin]",
+        ) from None
 
 
 def _plain(value: Any) -> Any:
@@ -253,6 +277,11 @@ def _time_budget(
 
 def check_plan(plan: Plan, bench: Bench) -> CheckReport:
     """Feasibility of every planned point (and linearity repeat), bench time, reasons."""
+    with injector_guard(bench):
+        return _check_plan(plan, bench)
+
+
+def _check_plan(plan: Plan, bench: Bench) -> CheckReport:
     model = InjectorModel(bench.injector, bench.generator, bench.pin)
     corners = model.corners()
     sweep = plan.expand()
@@ -292,7 +321,11 @@ def check_plan(plan: Plan, bench: Bench) -> CheckReport:
         time_breakdown=breakdown,
         capture_estimate=method,
         corners=corners,
-        warnings=tuple(bench_warnings(model, corners) + coupling_warnings(plan, bench)),
+        warnings=tuple(
+            bench_warnings(model, corners)
+            + coupling_warnings(plan, bench)
+            + plan_bench_warnings(plan, bench)
+        ),
         groups=groups,
         worst=worst,
         feasibility=feas,
@@ -393,10 +426,16 @@ class InjectorReport:
 
 def injector_report(bench: Bench, ripple: Amplitude | None = None) -> InjectorReport:
     """The injector at the spot frequencies, its corners and usable band, generator set-points."""
+    with injector_guard(bench):
+        return _injector_report(bench, ripple)
+
+
+def _injector_report(bench: Bench, ripple: Amplitude | None) -> InjectorReport:
     model = InjectorModel(bench.injector, bench.generator, bench.pin)
     corners = model.corners()
     f = np.array(SPOT_FREQUENCIES)
     gain = model.ac_gain(f)
+    phase_deg = unwrapped_phase_deg(model, f)
     usable = model.usable_mask(f)
     dc_path = 20 * np.log10(np.abs(model.dc_gain(f)))
     zout = np.abs(model.output_impedance(f))
@@ -415,7 +454,7 @@ def injector_report(bench: Bench, ripple: Amplitude | None = None) -> InjectorRe
             frequency=float(f[k]),
             gain=complex(gain[k]),
             gain_db=float(20 * np.log10(abs(gain[k]))),
-            phase_deg=float(np.degrees(np.angle(gain[k]))),
+            phase_deg=float(phase_deg[k]),
             pin_per_displayed=float(per_displayed[k]),
             dc_path_db=float(dc_path[k]),
             output_impedance=float(zout[k]),
@@ -441,16 +480,19 @@ def plot_injector(bench: Bench, path: str | Path, ripple: Amplitude | None = Non
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    model = InjectorModel(bench.injector, bench.generator, bench.pin)
-    corners = model.corners()
-    f = np.logspace(0, 8, 800)
-    gain = model.ac_gain(f)
+    out = plot_target(path)
+    with injector_guard(bench):
+        model = InjectorModel(bench.injector, bench.generator, bench.pin)
+        corners = model.corners()
+        f = np.logspace(0, 8, 800)
+        gain = model.ac_gain(f)
+        phase_deg = unwrapped_phase_deg(model, f)
     fig = Figure(figsize=(8, 6), dpi=110)
     FigureCanvasAgg(fig)
     mag, phase = fig.subplots(2, 1, sharex=True)
     mag.semilogx(f, 20 * np.log10(np.abs(gain)), label="pin / generator EMF")
     mag.semilogx(f, 20 * np.log10(np.abs(model.dc_gain(f))), label="pin / DC set-point", ls="--")
-    phase.semilogx(f, np.degrees(np.unwrap(np.angle(gain))), label="pin / generator EMF")
+    phase.semilogx(f, phase_deg, label="pin / generator EMF")
     lo, hi = corners.usable_band
     for axis in (mag, phase):
         if math.isfinite(lo) and math.isfinite(hi):
@@ -469,9 +511,42 @@ def plot_injector(bench: Bench, path: str | Path, ripple: Amplitude | None = Non
     mag.set_title(title, fontsize=9)
     mag.legend(fontsize=8, loc="lower center")
     fig.tight_layout()
-    out = Path(path)
-    fig.savefig(out)
+    try:
+        fig.savefig(out, format="png")
+    except OSError as exc:
+        raise BadInput(f"--plot {path}: cannot write the plot ({exc.strerror or exc})") from None
     return out
+
+
+def plot_target(path: str | Path) -> Path:
+    """The PNG file ``--plot`` names, refused (BadInput) before anything is computed when it
+    is not a .png name, is a folder, or its folder does not exist."""
+    out = Path(path)
+    if out.is_dir():
+        raise BadInput(f"--plot {path}: is a folder; give a file name such as bode.png")
+    if out.suffix.lower() != ".png":
+        raise BadInput(
+            f"--plot {path}: the plot is a PNG image; give a file name ending in .png "
+            f"(such as {out.with_suffix('.png').name})"
+        )
+    if not out.parent.is_dir():
+        raise BadInput(f"--plot {path}: the folder {out.parent} does not exist")
+    return out
+
+
+def unwrapped_phase_deg(model: InjectorModel, frequency: Any) -> np.ndarray:
+    """Phase of V_pin/V_emf in degrees, unwrapped continuously upwards from PHASE_FROM_HZ
+    (the plot and the table both use it, so they show the same angle)."""
+    f = np.asarray(frequency, dtype=float)
+    top = max(float(np.max(f)), PHASE_FROM_HZ)
+    decades = max(math.log10(top / PHASE_FROM_HZ), 0.0)
+    count = int(decades * PHASE_POINTS_PER_DECADE) + 2
+    dense = np.logspace(math.log10(PHASE_FROM_HZ), math.log10(top), count)
+    grid = np.union1d(dense, f[f >= PHASE_FROM_HZ])
+    unwrapped = np.degrees(np.unwrap(np.angle(model.ac_gain(grid))))
+    at = np.clip(np.searchsorted(grid, f), 0, grid.size - 1)
+    wrapped_below = np.degrees(np.angle(model.ac_gain(f)))
+    return np.where(f >= PHASE_FROM_HZ, unwrapped[at], wrapped_below)
 
 
 # -- rich renderables (for the CLI) -------------------------------------------------------------

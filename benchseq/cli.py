@@ -92,9 +92,11 @@ def cmd_check(args: argparse.Namespace) -> int:
     from benchseq.bench import load_bench
     from benchseq.check import check_plan, render_check
     from benchseq.plan import load_plan
+    from benchseq.preflight import preflight
 
     bench = load_bench(args.bench)
     plan = load_plan(args.plan)
+    preflight(plan, bench)  # what `run` needs of both files, before its feasibility
     report = check_plan(plan, bench)
     if args.json:
         _print_json(report.to_dict())
@@ -105,9 +107,11 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 def cmd_injector(args: argparse.Namespace) -> int:
     from benchseq.bench import load_bench
-    from benchseq.check import injector_report, plot_injector, render_injector
+    from benchseq.check import injector_report, plot_injector, plot_target, render_injector
     from benchseq.units import parse_amplitude
 
+    if args.plot:
+        plot_target(args.plot)  # a bad --plot is refused before anything is computed
     bench = load_bench(args.bench)
     ripple = parse_amplitude(args.ripple, "--ripple") if args.ripple else None
     report = injector_report(bench, ripple)
@@ -401,7 +405,10 @@ def cmd_report(args: argparse.Namespace) -> int:
 def cmd_scan(args: argparse.Namespace) -> int:
     from benchseq.drivers.session import scan
 
-    entries = scan(args.visa_library, timeout_s=args.timeout, resources=args.address or None)
+    addresses = _scan_addresses(args.address)
+    if not (0 < args.timeout <= 600):
+        raise BadInput(f"--timeout {args.timeout:g}: give seconds above 0, at most 600")
+    entries = scan(args.visa_library, timeout_s=args.timeout, resources=addresses or None)
     if args.json:
         _print_json(
             [{"resource": e.resource, "identity": e.identity, "error": e.error} for e in entries]
@@ -416,6 +423,20 @@ def cmd_scan(args: argparse.Namespace) -> int:
         table.add_row(_escape(e.resource), _escape(e.identity or f"no answer: {e.error}"))
     _console().print(table if entries else "no VISA resources found")
     return EXIT_OK
+
+
+def _scan_addresses(given: Sequence[str]) -> list[str]:
+    """The addresses to ask, HOST:PORT written out as TCPIP::HOST::PORT::SOCKET; BadInput
+    for anything that is not a VISA resource string (pyvisa would fail obscurely on it)."""
+    from benchseq.visaname import AddressError, check_resource_name, expand_host_port
+
+    addresses = []
+    for text in given:
+        try:
+            addresses.append(check_resource_name(expand_host_port(text)))
+        except AddressError as exc:
+            raise BadInput(f"scan {text}: {exc} (or HOST:PORT for a raw socket)") from None
+    return addresses
 
 
 def cmd_sim_serve(args: argparse.Namespace) -> int:
@@ -530,7 +551,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument(
         "address",
         nargs="*",
-        help="also ask these resources (LAN SOCKET addresses cannot be discovered)",
+        help="also ask these resources (LAN SOCKET addresses cannot be discovered); "
+        "HOST:PORT is short for TCPIP::HOST::PORT::SOCKET",
     )
     p.add_argument("--visa-library", default="@py", help="VISA library (default @py: pyvisa-py)")
     p.add_argument("--timeout", type=float, default=1.0, help="seconds per instrument")

@@ -36,6 +36,7 @@ import numpy as np
 from numpy.polynomial import polynomial as P
 
 from benchseq.bench import GeneratorSetup, InjectorValues, PinLoad
+from benchseq.errors import BadInput
 
 # The feasibility check lives in benchseq.feasibility; its names stay importable from here.
 from benchseq.feasibility import (
@@ -81,6 +82,10 @@ class Corners:
     coupling_time_constant_s: float  # (Rs+Rin)·Cc
     bias_time_constant_s: float  # Rb·Cb
     slowest_time_constant_s: float  # 1/min|Re(pole)| over the whole network (AC and DC paths)
+
+
+class InjectorValuesError(BadInput):
+    """The bench's injector values give a network the model cannot evaluate."""
 
 
 def _as_freq(f: Any) -> np.ndarray:
@@ -274,7 +279,13 @@ class InjectorModel:
 
         polys = self.transfer_polynomials()
         poles = np.concatenate([np.roots(polys["ac"][1]), np.roots(polys["dc"][1])])
-        slowest = 1.0 / float(np.min(np.abs(poles.real)))
+        fastest_decay = float(np.min(np.abs(poles.real)))
+        if not (math.isfinite(fastest_decay) and fastest_decay > 0):
+            raise InjectorValuesError(
+                "these component values give the injector a pole at zero frequency (it would "
+                "never settle); check the resistor and capacitor values"
+            )
+        slowest = 1.0 / fastest_decay
         return Corners(
             passband_gain=passband,
             noise_gain=noise_gain,
@@ -301,7 +312,10 @@ class InjectorModel:
         y0, y1 = float(level_db[k - 1]), float(level_db[k])
         if y1 == y0:
             return float(grid[k])
-        return 10 ** (x0 + (x1 - x0) * (-y0) / (y1 - y0))
+        exponent = x0 + (x1 - x0) * (-y0) / (y1 - y0)
+        if not math.isfinite(exponent) or exponent > 300.0:
+            return math.inf  # the level never comes back within a float's range
+        return 10**exponent
 
     @staticmethod
     def _band_around(grid: np.ndarray, mask: np.ndarray, centre: float) -> tuple[float, float]:

@@ -22,10 +22,12 @@ from typing import Any
 import numpy as np
 
 from benchseq.errors import FileKeyError, unknown_key_message
+from benchseq.ranges import PLAN_RANGES, Range
 from benchseq.tomlfile import Section, read_toml
 from benchseq.units import Amplitude, format_si
 
 AXES = ("dc", "load", "ripple", "frequency")
+FREQUENCY_RANGE = PLAN_RANGES["sweep.frequency"]
 DEFAULT_ORDER = AXES  # outermost first: DC steps are slowest (bias filter), frequency fastest
 ACTIONS = ("flag", "stop")
 WATCH_RULES = ("current_limit", "pin_dc", "distortion", "model_mismatch")
@@ -406,6 +408,7 @@ def _ripples(sweep: Section) -> tuple[Amplitude, ...]:
     ripples: list[Amplitude] = []
     for i, item in enumerate(items):
         amplitude = where.parse_amplitude_value(item, i)
+        where.check_range(i, amplitude.peak, item, PLAN_RANGES["sweep.ripple"])
         if any(abs(amplitude.peak - r.peak) <= 1e-9 * r.peak for r in ripples):
             raise where.error(i, f"'{item}' is the same amplitude as an earlier one")
         ripples.append(amplitude)
@@ -414,10 +417,11 @@ def _ripples(sweep: Section) -> tuple[Amplitude, ...]:
 
 def _levels(sweep: Section, key: str, dimension: str, minimum_exclusive: bool) -> np.ndarray:
     """DC levels (V, > 0) or load currents (A, >= 0): a list, one value, or a linear range."""
+    within = PLAN_RANGES[f"sweep.{key}"]
     value = sweep.raw(key)
     if isinstance(value, dict):
         band = Section(value, sweep.source, sweep.key_path(key))
-        levels = _linear_range(band, dimension, positive=minimum_exclusive)
+        levels = _linear_range(band, dimension, positive=minimum_exclusive, within=within)
     else:
         items = sweep.items_list(key)
         where = _list_section(sweep, key)
@@ -428,6 +432,7 @@ def _levels(sweep: Section, key: str, dimension: str, minimum_exclusive: bool) -
                 raise where.error(i, f"must be greater than zero, got {item!r}")
             if number < 0:
                 raise where.error(i, f"must not be negative, got {item!r}")
+            where.check_range(i, number, item, within)
             if any(abs(number - n) <= 1e-9 * max(abs(n), 1e-30) for n in numbers):
                 raise where.error(i, f"{item!r} is listed twice")
             numbers.append(number)
@@ -435,11 +440,13 @@ def _levels(sweep: Section, key: str, dimension: str, minimum_exclusive: bool) -
     return levels
 
 
-def _linear_range(band: Section, dimension: str, positive: bool) -> np.ndarray:
+def _linear_range(
+    band: Section, dimension: str, positive: bool, within: Range | None = None
+) -> np.ndarray:
     """{from, to, step} or {from, to, points}: evenly spaced, both ends included."""
     _only(band, ("from", "to", "step", "points"))
-    start = band.quantity("from", dimension, positive=positive, nonnegative=True)
-    stop = band.quantity("to", dimension, positive=positive, nonnegative=True)
+    start = band.quantity("from", dimension, positive=positive, nonnegative=True, within=within)
+    stop = band.quantity("to", dimension, positive=positive, nonnegative=True, within=within)
     if stop < start:
         raise band.error("to", f"{format_si(stop, _unit(dimension))} is below from")
     if band.has("step") == band.has("points"):
@@ -483,12 +490,14 @@ def _frequencies(sweep: Section) -> np.ndarray:
             band_path = path if path is not None else where.key_path(i)
             collected.extend(_band(Section(part, sweep.source, band_path)))
         elif path is not None:
-            collected.append(sweep.quantity("frequency", "Hz", positive=True))
+            collected.append(
+                sweep.quantity("frequency", "Hz", positive=True, within=FREQUENCY_RANGE)
+            )
         else:
             frequency = where.parse_value(part, "Hz", i)
             if not frequency > 0:
                 raise where.error(i, f"a frequency must be greater than zero, got {part!r}")
-            collected.append(frequency)
+            collected.append(where.check_range(i, frequency, part, FREQUENCY_RANGE))
         if len(collected) > MAX_FREQUENCIES:
             raise sweep.error("frequency", f"more than {MAX_FREQUENCIES:,} frequencies")
     return _unique_sorted(collected)
@@ -509,7 +518,7 @@ def _band(band: Section) -> list[float]:
             frequency = where.parse_value(item, "Hz", i)
             if not frequency > 0:
                 raise where.error(i, f"a frequency must be greater than zero, got {item!r}")
-            values.append(frequency)
+            values.append(where.check_range(i, frequency, item, FREQUENCY_RANGE))
         return values
     kinds = [k for k in ("per_decade", "step", "points") if band.has(k)]
     if len(kinds) != 1:
@@ -519,9 +528,9 @@ def _band(band: Section) -> list[float]:
             "give exactly one of per_decade (log), step or points (linear), or list them with at",
         )
     if kinds[0] != "per_decade":
-        return list(_linear_range(band, "Hz", positive=True))
-    start = band.quantity("from", "Hz", positive=True)
-    stop = band.quantity("to", "Hz", positive=True)
+        return list(_linear_range(band, "Hz", positive=True, within=FREQUENCY_RANGE))
+    start = band.quantity("from", "Hz", positive=True, within=FREQUENCY_RANGE)
+    stop = band.quantity("to", "Hz", positive=True, within=FREQUENCY_RANGE)
     if stop < start:
         raise band.error("to", f"{format_si(stop, 'Hz')} is below from ({format_si(start, 'Hz')})")
     per_decade = _finite_number(band, "per_decade", default=math.nan, low=1.0, high=10_000.0)
@@ -546,15 +555,19 @@ def _band(band: Section) -> list[float]:
 def _device(section: Section) -> DeviceLimits:
     _only(section, ("name", "absolute_max", "min_operating", "max_load"))
     name = section.text("name", default="")
-    absolute_max = section.quantity("absolute_max", "V", positive=True)
-    min_operating = section.quantity("min_operating", "V", nonnegative=True)
+    absolute_max = section.quantity("absolute_max", "V", within=PLAN_RANGES["device.absolute_max"])
+    min_operating = section.quantity(
+        "min_operating", "V", nonnegative=True, within=PLAN_RANGES["device.min_operating"]
+    )
     if min_operating >= absolute_max:
         raise section.error(
             "min_operating",
             f"{format_si(min_operating, 'V')} is not below absolute_max "
             f"({format_si(absolute_max, 'V')})",
         )
-    max_load = section.quantity("max_load", "A", default=None, positive=True)
+    max_load = section.quantity(
+        "max_load", "A", default=None, within=PLAN_RANGES["device.max_load"]
+    )
     section.done()
     return DeviceLimits(absolute_max, min_operating, max_load, name)
 
@@ -563,9 +576,17 @@ def _settle(section: Section | None) -> SettleRule:
     if section is None:
         return SettleRule()
     _only(section, ("wait", "time_constants", "after_operating_point"))
-    fixed = section.quantity("wait", "s", default=0.0, nonnegative=True)
+    fixed = section.quantity(
+        "wait", "s", default=0.0, nonnegative=True, within=PLAN_RANGES["settle.wait"]
+    )
     constants = _finite_number(section, "time_constants", default=5.0, low=0.0, high=100.0)
-    after = section.quantity("after_operating_point", "s", default=0.0, nonnegative=True)
+    after = section.quantity(
+        "after_operating_point",
+        "s",
+        default=0.0,
+        nonnegative=True,
+        within=PLAN_RANGES["settle.after_operating_point"],
+    )
     if fixed == 0 and constants == 0:
         raise FileKeyError(
             section.source,
@@ -582,9 +603,15 @@ def _capture(section: Section | None) -> CaptureRules:
     _only(section, ("min_cycles", "max_time", "target_uncertainty", "max_averages"))
     rules = CaptureRules(
         min_cycles=section.integer("min_cycles", default=10, minimum=1, maximum=1_000_000),
-        max_time_s=section.quantity("max_time", "s", default=10.0, positive=True),
+        max_time_s=section.quantity(
+            "max_time", "s", default=10.0, positive=True, within=PLAN_RANGES["capture.max_time"]
+        ),
         target_uncertainty_db=section.quantity(
-            "target_uncertainty", "dB", default=0.1, positive=True
+            "target_uncertainty",
+            "dB",
+            default=0.1,
+            positive=True,
+            within=PLAN_RANGES["capture.target_uncertainty"],
         ),
         max_averages=section.integer("max_averages", default=64, minimum=1, maximum=1_000_000),
     )
@@ -633,7 +660,7 @@ def _db_threshold(section: Section, key: str, value: Any) -> float:
     level = section.parse_value(value, "dB", key)
     if not level > 0:
         raise section.error(key, f"must be greater than 0 dB, got {value!r}")
-    return level
+    return section.check_range(key, level, value, PLAN_RANGES["watch.model_mismatch"])
 
 
 def _watch(section: Section | None) -> WatchRules:
@@ -672,10 +699,12 @@ def _mask(section: Section) -> Mask:
         frequency = pair.parse_value(item[0], "Hz", 0)
         if not frequency > 0:
             raise pair.error(0, f"a frequency must be greater than zero, got {item[0]!r}")
+        pair.check_range(0, frequency, item[0], FREQUENCY_RANGE)
         if frequencies and frequency <= frequencies[-1]:
             raise pair.error(0, "mask frequencies must increase from one point to the next")
         frequencies.append(frequency)
-        limits.append(pair.parse_value(item[1], "dB", 1))
+        limit = pair.parse_value(item[1], "dB", 1)
+        limits.append(pair.check_range(1, limit, item[1], PLAN_RANGES["mask.points"]))
     if len(frequencies) < 2:
         raise section.error(
             "points", "a mask needs at least two points (for a flat limit repeat the dB value)"
@@ -717,7 +746,9 @@ def _linearity(section: Section, planned: np.ndarray) -> LinearityCheck:
         if not (0 < factor <= 100) or abs(factor - 1) < 1e-9:
             raise where.error(i, f"a factor must be above 0, at most 100 and not 1, got {item!r}")
         factors.append(factor)
-    tolerance = section.quantity("tolerance", "dB", default=0.5, positive=True)
+    tolerance = section.quantity(
+        "tolerance", "dB", default=0.5, positive=True, within=PLAN_RANGES["linearity.tolerance"]
+    )
     section.done()
     return LinearityCheck(frequencies, tuple(factors), tolerance)
 

@@ -15,6 +15,7 @@ from benchseq import __version__
 from benchseq.bench import Bench, load_bench, parse_bench
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.plan import Plan, load_plan, parse_plan
+from benchseq.preflight import preflight
 from benchseq.records import POINT_COLUMNS, SCHEMA_VERSION, SIGN_CONVENTION, TRUTH_COLUMNS
 from benchseq.sequencer import EventSink, RunOutcome, Sequencer
 from benchseq.stopping import StopControl
@@ -98,6 +99,19 @@ def _calibrated_writer(writer: Any, record: dict[str, Any] | None) -> Any:
     if record is not None and record["mismatches"]:
         return _FlaggingWriter(writer, [CONDITIONS_FLAG])
     return writer
+
+
+def _refuse_folders(path: Path) -> None:
+    """A result path, or the journal beside it, that is a folder is refused by name (even
+    with --force: a folder is never removed to make room for a result)."""
+    from benchseq.store import journal_path
+
+    for candidate, what in ((path, "the result file"), (journal_path(path), "its journal")):
+        if candidate.is_dir():
+            raise BadInput(
+                f"{candidate} is a folder, so {what} cannot be written there "
+                f"(--out {path}); nothing was switched on. Choose another result file name"
+            )
 
 
 def default_output(plan: Plan) -> Path:
@@ -215,6 +229,8 @@ def run_prepared(
     from benchseq.store import RunWriter
 
     open_session = session_factory or open_session
+    preflight(plan, bench)  # everything the run needs, before any file or instrument
+    _refuse_folders(path)
     report = _refuse_infeasible(plan, bench)
     calibration = _bench_calibration(bench)
     meta = run_meta(plan, bench, seed, keep_waveforms, report)
@@ -323,6 +339,17 @@ def _sequence_on_bench(
         session.close()
 
 
+def _with_stored_scenario(bench: Bench, meta: dict[str, Any]) -> Bench:
+    """A stored bench naming a scenario FILE: the file the run used (stored as an absolute
+    path when it started), not the bench text's relative path read from today's folder."""
+    from benchseq.bench import is_scenario_path
+
+    stored = meta.get("simulation")
+    if bench.simulation and is_scenario_path(bench.simulation) and stored:
+        return dataclasses.replace(bench, simulation=str(stored))
+    return bench
+
+
 def resume_run(
     result_path: str,
     plan_path: str | None = None,
@@ -356,7 +383,7 @@ def resume_run(
     text, data = parse_toml_text(meta["plan_text"], f"{path} (stored plan)")
     plan = parse_plan(data, meta["plan_source"], text)
     btext, bdata = parse_toml_text(meta["bench_text"], f"{path} (stored bench)")
-    bench = parse_bench(bdata, meta["bench_source"], btext)
+    bench = _with_stored_scenario(parse_bench(bdata, meta["bench_source"], btext), meta)
     if plan_path is not None and load_plan(plan_path).text_hash != meta["plan_sha256"]:
         raise BadInput(
             f"{plan_path} is not the plan this run was started with ({path}); "
@@ -367,6 +394,10 @@ def resume_run(
             f"{bench_path} is not the bench this run was started with ({path}); "
             "resume without --bench to use the stored bench"
         )
+    # the calibration is the run's own (below), whatever the bench file names today
+    preflight(
+        plan, dataclasses.replace(bench, scope=dataclasses.replace(bench.scope, calibration=None))
+    )
     report = _refuse_infeasible(plan, bench)
     stored = meta.get("calibration")
     if stored:

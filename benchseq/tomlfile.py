@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from benchseq.errors import FileKeyError, unknown_key_message
+from benchseq.ranges import Range
 from benchseq.units import (
     DIMENSION_WORDS,
     Amplitude,
@@ -107,6 +108,8 @@ class Section:
             return value
         if not isinstance(value, str):
             raise self.error(key, f"expected text, got {_kind(value)}")
+        if "\x00" in value:
+            raise self.error(key, "contains a NUL character (\\u0000); remove it")
         if choices is not None:
             options = list(choices)
             if value not in options:
@@ -158,12 +161,24 @@ class Section:
         default: Any = _MISSING,
         positive: bool = False,
         nonnegative: bool = False,
+        within: Range | None = None,
     ) -> Any:
-        """A quantity such as '4.7 uF'; ``dimension`` as in benchseq.units.parse_quantity."""
+        """A quantity such as '4.7 uF'; ``dimension`` as in benchseq.units.parse_quantity;
+        ``within``: the allowed range (benchseq.ranges), refused with the range named."""
         value = self.raw(key, default)
         if value is default and default is not _MISSING:
             return value
-        return self._check_sign(key, self.parse_value(value, dimension, key), positive, nonnegative)
+        number = self._check_sign(
+            key, self.parse_value(value, dimension, key), positive, nonnegative
+        )
+        return self.check_range(key, number, value, within)
+
+    def check_range(self, key: str | int, number: float, written: Any, within: Range | None) -> Any:
+        """``number`` if it lies in ``within`` (None: any), else an error naming the range."""
+        if within is not None and not within.contains(number):
+            shown = f"'{written}'" if isinstance(written, str) else f"{written!r}"
+            raise self.error(key, f"{shown} is outside the allowed range {within.describe()}")
+        return number
 
     def amplitude(self, key: str, default: Any = _MISSING) -> Any:
         value = self.raw(key, default)

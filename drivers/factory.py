@@ -45,10 +45,16 @@ def driver_class(spec: InstrumentSpec, source: str) -> type[Instrument]:
         return base
     key = f"{spec.role}.driver_class"
     module_name, _, class_name = spec.driver_class.partition(":")
+    if not module_name or module_name.startswith(".") or not class_name:
+        raise FileKeyError(source, key, "expected 'package.module:ClassName' (absolute)")
     try:
         module = importlib.import_module(module_name)
     except ImportError as exc:
         raise FileKeyError(source, key, f"cannot import module {module_name!r}: {exc}") from None
+    except Exception as exc:  # the user's module itself failed while importing
+        raise FileKeyError(
+            source, key, f"importing module {module_name!r} failed: {type(exc).__name__}: {exc}"
+        ) from None
     found: Any = getattr(module, class_name, None)
     if found is None:
         raise FileKeyError(source, key, f"module {module_name!r} has no class {class_name!r}")

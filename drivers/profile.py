@@ -291,13 +291,32 @@ def _check_template(section: Section, key: str, template: str, kind: str) -> Non
         ) from None
 
 
+# Allowed ranges of a scope's capabilities (wide: they stop typos, not unusual scopes).
+CAPABILITY_RANGES: dict[str, tuple[float, float]] = {
+    "ranges": (1e-4, 1e4),  # V full scale at the input
+    "sample_intervals": (1e-13, 10.0),  # s
+    "record_lengths": (16, 1_000_000_000),
+    "bandwidth_limits": (1e3, 100e9),  # Hz
+    "rearm_time": (0.0, 60.0),  # s
+    "max_offset": (1e-6, 1e4),  # V
+    "max_averages": (1, 1_000_000),
+}
+
+
 def _numbers(section: Section, key: str, integer: bool = False) -> tuple[Any, ...]:
     values = section.items_list(key, allow_scalar=False)
+    low, high = CAPABILITY_RANGES[key]
     out = []
     for i, item in enumerate(values):
         if isinstance(item, bool) or not isinstance(item, int | float) or not item > 0:
             raise FileKeyError(
                 section.source, f"{section.key_path(key)}[{i}]", "expected a positive number"
+            )
+        if not low <= item <= high:
+            raise FileKeyError(
+                section.source,
+                f"{section.key_path(key)}[{i}]",
+                f"{item!r} is outside the allowed range {low:g} to {high:g}",
             )
         if integer and not isinstance(item, int):
             raise FileKeyError(
@@ -309,21 +328,36 @@ def _numbers(section: Section, key: str, integer: bool = False) -> tuple[Any, ..
     return tuple(out)
 
 
+_MISSING_NUMBER: Any = object()
+
+
+def _bounded(section: Section, key: str, default: Any) -> Any:
+    """A number within CAPABILITY_RANGES[key] (``default`` when absent; _MISSING_NUMBER:
+    required)."""
+    value = section.number(key) if default is _MISSING_NUMBER else section.number(key, default)
+    if value is None:
+        return None
+    low, high = CAPABILITY_RANGES[key]
+    if not low <= value <= high:
+        raise section.error(key, f"{value:g} is outside the allowed range {low:g} to {high:g}")
+    return value
+
+
 def _capabilities(section: Section) -> ScopeCapabilities:
     caps = ScopeCapabilities(
         adc_bits=section.integer("adc_bits", minimum=4, maximum=16),
         ranges=_numbers(section, "ranges"),
         sample_intervals=_numbers(section, "sample_intervals"),
         record_lengths=_numbers(section, "record_lengths", integer=True),
-        max_averages=section.integer("max_averages", minimum=1),
-        rearm_time=section.number("rearm_time", positive=False),
-        max_offset=section.number("max_offset", default=None, positive=True),
+        max_averages=section.integer(
+            "max_averages", minimum=1, maximum=int(CAPABILITY_RANGES["max_averages"][1])
+        ),
+        rearm_time=_bounded(section, "rearm_time", default=_MISSING_NUMBER),
+        max_offset=_bounded(section, "max_offset", default=None),
         bandwidth_limits=_numbers(section, "bandwidth_limits")
         if section.has("bandwidth_limits")
         else (),
     )
-    if caps.rearm_time < 0:
-        raise section.error("rearm_time", "must not be negative")
     section.raw("bandwidth_limits", default=None)
     section.done()
     return caps

@@ -1,4 +1,5 @@
-"""Scenario files: the simulated bench's truth (sim/scenarios/<name>.toml).
+"""Scenario files: the simulated bench's truth (sim/scenarios/<name>.toml, or a user's own
+file named by path in a bench file's lab.simulation).
 
 The bench file (<name>.bench.toml) holds what the engineer believes; the scenario holds
 what is really there: the device model, the injector as built (tolerances), instrument
@@ -11,12 +12,12 @@ import math
 from dataclasses import dataclass, field
 from importlib import resources
 
-from benchseq.bench import Bench
+from benchseq.bench import Bench, is_scenario_path
 from benchseq.errors import FileKeyError
 from benchseq.sim.circuit import InjectorCircuit
 from benchseq.sim.devices import Device, Regulator, device_from_section
 from benchseq.sim.faults import FaultRates, rates_from_section
-from benchseq.tomlfile import Section, parse_toml_text
+from benchseq.tomlfile import Section, parse_toml_text, read_toml
 
 ROLE_NAMES = ("generator", "supply", "scope", "load")
 
@@ -281,6 +282,10 @@ def scenario_text(name: str) -> str:
 
 
 def load_scenario(name: str) -> Scenario:
+    """A shipped scenario by name ("demo"), or a user's scenario file by path ("my.toml")."""
+    if is_scenario_path(name):
+        _, data = read_toml(name)
+        return parse_scenario(data, name)
     source = f"sim/scenarios/{name}.toml"
     _, data = parse_toml_text(scenario_text(name), source)
     return parse_scenario(data, source)

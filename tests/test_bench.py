@@ -80,7 +80,7 @@ def test_template_parses_with_documentation_addresses() -> None:
     assert bench.visa_library == "@py"
     assert bench.load is not None and bench.load.max_current == pytest.approx(0.5)
     assert bench.scope.bandwidth_limit == pytest.approx(20e6)
-    assert bench.supply.overvoltage_protection == pytest.approx(6.5)
+    assert bench.supply.overvoltage_protection == pytest.approx(6.0)
 
 
 def test_template_matches_the_simulated_injector() -> None:
