@@ -15,6 +15,11 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from benchseq.analysis.match import (
+    DEFAULT_GAIN_ACCURACY,
+    DEFAULT_PROBE_ACCURACY,
+    ChannelTolerances,
+)
 from benchseq.errors import FileKeyError
 from benchseq.tomlfile import Section, parse_toml_text, read_toml
 
@@ -71,6 +76,7 @@ class ScopeChannel:
     channel: int
     probe: float
     coupling: str  # "AC" or "DC"
+    probe_accuracy: float = 0.0  # ± relative tolerance of the probe's attenuation
 
 
 @dataclass(frozen=True)
@@ -79,6 +85,18 @@ class ScopeSetup:
     output: ScopeChannel  # ripple at the device's output
     bandwidth_limit: float | None  # Hz, None = full bandwidth
     calibration: str | None  # path of a channel-match calibration file, if any
+    gain_accuracy: float = (
+        DEFAULT_GAIN_ACCURACY  # ± relative vertical gain tolerance of each channel
+    )
+
+    def tolerances(self) -> ChannelTolerances:
+        """The channel-match tolerances an uncalibrated ratio carries (analysis.match)."""
+        return ChannelTolerances(
+            gain_pin=self.gain_accuracy,
+            gain_output=self.gain_accuracy,
+            probe_pin=self.pin.probe_accuracy,
+            probe_output=self.output.probe_accuracy,
+        )
 
 
 @dataclass(frozen=True)
@@ -170,8 +188,28 @@ def _scope_channel(section: Section) -> ScopeChannel:
     channel = section.integer("channel", minimum=1, maximum=64)
     probe = section.number("probe", default=1.0, positive=True)
     coupling = section.text("coupling", default="AC", choices=COUPLINGS)
+    # a 1:1 connection (coax) has no attenuation to be off; an attenuating probe ±1 %
+    default = DEFAULT_PROBE_ACCURACY if probe != 1.0 else 0.0
+    accuracy = _tolerance(section, "probe_accuracy", default)
     section.done()
-    return ScopeChannel(channel, probe, coupling)
+    return ScopeChannel(channel, probe, coupling, accuracy)
+
+
+def _tolerance(section: Section, key: str, default: float) -> float:
+    """A ± tolerance written as a percentage ("1.5 %"), as a fraction; ``default`` if absent."""
+    if not section.has(key):
+        return default
+    value = section.raw(key)
+    text = value.strip() if isinstance(value, str) else ""
+    try:
+        number = float(text[:-1]) if text.endswith("%") else math.nan
+    except ValueError:
+        number = math.nan
+    if not (math.isfinite(number) and 0 <= number < 100):
+        raise section.error(
+            key, f"expected a tolerance as a percentage from 0 % to under 100 %, got {value!r}"
+        )
+    return number / 100.0
 
 
 def parse_bench(
@@ -232,7 +270,8 @@ def parse_bench(
     calibration = sco.text("calibration", default=None)
     if calibration is not None and base_dir is not None and not Path(calibration).is_absolute():
         calibration = str(base_dir / calibration)
-    scope = ScopeSetup(pin_channel, out_channel, bandwidth_limit, calibration)
+    gain_accuracy = _tolerance(sco, "gain_accuracy", DEFAULT_GAIN_ACCURACY)
+    scope = ScopeSetup(pin_channel, out_channel, bandwidth_limit, calibration, gain_accuracy)
     sco.done()
 
     load: LoadSetup | None = None
