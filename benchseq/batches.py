@@ -129,6 +129,24 @@ def batch(
     )
 
 
+def within(
+    plan: analysis.CapturePlan, most: int, scope: analysis.ScopeTimebase
+) -> analysis.CapturePlan:
+    """``plan`` (from ``batch``) with at most ``most`` triggered records: batch() reads
+    ⌈n/max_averages⌉ waveforms of equal averages, which can round n up past what the
+    plan's time has room for."""
+    if plan.records * plan.averages <= most:
+        return plan
+    averages = max(1, most // plan.records)
+    duration = plan.record_duration
+    return dataclasses.replace(
+        plan,
+        averages=averages,
+        capture_time=plan.records * averages * duration,
+        bench_time=plan.records * averages * (duration + scope.rearm_time),
+    )
+
+
 def probe_records(plan: analysis.CapturePlan) -> int:
     """Triggered records of the first batch: about PROBE_SHARE of the prediction."""
     return max(1, int(plan.records * plan.averages * PROBE_SHARE))

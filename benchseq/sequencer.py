@@ -517,6 +517,7 @@ class Sequencer:
         pool.add(*waves, probe.averages, probe.bench_time)
         capped = False
         detecting = 0
+        granule = 1  # waveforms per batch of the last top-up: its records come in these
         carried_ratio = 10 ** (-carry.rejection_db / 20.0)
         for _ in range(batches.MAX_TOP_UPS):
             if result.rejection.is_bound and "unresolved_output" in result.flags:
@@ -539,6 +540,9 @@ class Sequencer:
             detecting += int(more.detecting)
             self.activity = "top-up"
             extra = batches.batch(plan, more.records, timebase.max_averages, timebase.rearm_time)
+            if more.capped or more.detecting:  # whole scope averages may round the count up:
+                extra = batches.within(extra, more.records, timebase)  # keep to max_time
+            granule = extra.records
             pin_range, out_range, _, used, waves = self._capture_ranged(
                 extra, actual_frequency, pin_range, out_range, flags
             )
@@ -580,7 +584,7 @@ class Sequencer:
             room = batches.room_for(
                 pool.bench_time, plan.record_duration, timebase.rearm_time, rules.max_time_s
             )
-            if room < 1:  # the plan's max_time was used: more of it would raise the bound
+            if room < granule:  # max_time used (to within whole scope averages per read)
                 flags.append("bound_time_limited")
         if capped or (
             not result.rejection.is_bound
