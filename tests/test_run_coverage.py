@@ -56,7 +56,7 @@ frequency = {{ at = [{frequencies}] }}
 [settle]
 after_operating_point = "0.5 s"
 [capture]
-max_time = "2 s"
+max_time = "1 s"
 target_uncertainty = "0.1 dB"
 """
 
@@ -149,14 +149,14 @@ def test_amplifier_scenario_covers_the_truth(tmp_path: Path) -> None:
         _run(
             tmp_path,
             "amp",
-            AMPLIFIER_PLAN.format(frequencies=_frequencies(30.0, 4, s)),
+            AMPLIFIER_PLAN.format(frequencies=_frequencies(30.0, 3, s, per_decade=1)),
             "sim:amplifier",
             s,
         )
         for s in SEEDS
     ]
     frame = pd.concat(frames)
-    _assert_coverage(frame, at_least=30)
+    _assert_coverage(frame, at_least=24)
     bounds = frame[frame["is_bound"]]
     if len(bounds):
         assert np.mean(bounds["bound_db"] <= bounds["rejection_db_true"]) >= 0.95
