@@ -71,7 +71,7 @@ def test_low_snr_interval_is_computed_in_linear_units() -> None:
 
 
 def test_undetected_output_is_a_bound_and_never_a_value() -> None:
-    """Below 3.5 σ_c: a lower bound 20·log10(A_pin/(A_out + 1.645 σ_c)), with every value
+    """Below the value threshold (5 σ_c): a lower bound 20·log10(A_pin/(A_out + 1.645 σ_c)), with every value
     field NaN so it cannot be read as a measurement."""
     rej = rejection(_fit(0.1, 1e-5), _fit(2e-6, 1e-6))
     assert rej.is_bound and rej.kind == "bound"
