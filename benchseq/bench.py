@@ -15,14 +15,14 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
-from benchseq.analysis.match import (
-    DEFAULT_GAIN_ACCURACY,
-    DEFAULT_PROBE_ACCURACY,
-    ChannelTolerances,
-)
 from benchseq.errors import FileKeyError
 from benchseq.tomlfile import Section, parse_toml_text, read_toml
 
+# ± tolerances an uncalibrated channel ratio carries (the same defaults as
+# benchseq.analysis.match, which the simulator must not import): vertical gain accuracy
+# 1–2 % per channel and ±1 % for an attenuating probe are common practice
+DEFAULT_GAIN_ACCURACY = 0.015
+DEFAULT_PROBE_ACCURACY = 0.01
 ROLES = ("generator", "supply", "scope", "load")
 LOAD_MODES = ("50 ohm", "high-z")
 COUPLINGS = ("AC", "DC")
@@ -89,8 +89,11 @@ class ScopeSetup:
         DEFAULT_GAIN_ACCURACY  # ± relative vertical gain tolerance of each channel
     )
 
-    def tolerances(self) -> ChannelTolerances:
-        """The channel-match tolerances an uncalibrated ratio carries (analysis.match)."""
+    def tolerances(self) -> Any:
+        """The channel-match tolerances an uncalibrated ratio carries (an
+        analysis.match.ChannelTolerances)."""
+        from benchseq.analysis.match import ChannelTolerances
+
         return ChannelTolerances(
             gain_pin=self.gain_accuracy,
             gain_output=self.gain_accuracy,

@@ -113,6 +113,11 @@ def test_bench_file_states_its_tolerances() -> None:
         0.02,
         0.0,
     )
+    from benchseq import bench as bench_module
+    from benchseq.analysis import match
+
+    assert bench_module.DEFAULT_GAIN_ACCURACY == match.DEFAULT_GAIN_ACCURACY
+    assert bench_module.DEFAULT_PROBE_ACCURACY == match.DEFAULT_PROBE_ACCURACY
     bad = text.replace("\n[scope]\n", "\n[scope]\ngain_accuracy = 0.01\n")
     _, data = parse_toml_text(bad, source)
     with pytest.raises(FileKeyError, match=r"gain_accuracy.*percentage"):
