@@ -31,9 +31,10 @@ PROBE_SHARE = 0.5  # the first batch takes this share of the predicted triggered
 RECORD_GRAIN = 4  # a noise-bound prediction is split into at least this many records
 TOP_UP_MARGIN = 1.05  # a top-up aims this far past the need the pool shows
 DETECT_RELATIVE = 0.115  # undetected output: aim for σ_A/A of 1 dB at the expected level
-DETECT_MULTIPLE = 4.0  # ... the expected level being at least this many floors
 MAX_TOP_UPS = 3
-MAX_DETECT_TOP_UPS = 2  # top-ups spent looking for an output still under the floor
+MAX_DETECT_TOP_UPS = 2  # top-ups spent looking for an output still under the floor; the
+#                         last of them takes all of the plan's max_time that is left
+NOISE_SHARE = 0.5  # the noise part aims at least this share of the target (see top_up)
 
 
 @dataclass(frozen=True)
@@ -125,6 +126,24 @@ def batch(
         averages=averages,
         capture_time=records * averages * duration,
         bench_time=records * averages * (duration + rearm),
+    )
+
+
+def within(
+    plan: analysis.CapturePlan, most: int, scope: analysis.ScopeTimebase
+) -> analysis.CapturePlan:
+    """``plan`` (from ``batch``) with at most ``most`` triggered records: batch() reads
+    ⌈n/max_averages⌉ waveforms of equal averages, which can round n up past what the
+    plan's time has room for."""
+    if plan.records * plan.averages <= most:
+        return plan
+    averages = max(1, most // plan.records)
+    duration = plan.record_duration
+    return dataclasses.replace(
+        plan,
+        averages=averages,
+        capture_time=plan.records * averages * duration,
+        bench_time=plan.records * averages * (duration + scope.rearm_time),
     )
 
 
@@ -259,6 +278,13 @@ class TopUp:
     detecting: bool
 
 
+def room_for(
+    pool_bench_time: float, record_duration: float, rearm: float, max_time_s: float
+) -> int:
+    """Whole triggered records that still fit in the point's max_time."""
+    return int(max(max_time_s - pool_bench_time, 0.0) / (record_duration + rearm) + 1e-9)
+
+
 def top_up(
     result: analysis.PointMeasurement,
     pool_triggered: int,
@@ -269,32 +295,43 @@ def top_up(
     max_time_s: float,
     expected_ratio: float,
     calibration_uncertainty: float = 0.0,
+    last_look: bool = False,
 ) -> TopUp:
     """More records for a pooled capture that misses the target, from what it shows.
 
-    Detected: the noise part of the uncertainty, u_n² = (20/ln 10)²·[(σ_c/A_out)² +
-    (σ_pin/A_pin)²], falls as 1/T (Kay, Estimation Theory, ch. 3), so the pool needs T·u_n²/(u_t² − u_cal²).
-    Not detected: enough to see an output at max(expected_ratio·A_pin, 4σ_c) with σ_A/A of
-    1 dB. Records are whole; the pool's bench time stays within max_time_s."""
+    Value: the noise part of the uncertainty, u_n² = (20/ln 10)²·[(σ_c/A_out)² +
+    (σ_pin/A_pin)²], falls as 1/T (σ_A² ≈ S/T; Kay, Estimation Theory, ch. 3), so the pool needs T·u_n²/u_budget², the
+    budget being what the channel match (``calibration_uncertainty``: the calibration's u or
+    the uncalibrated tolerance term) leaves of the target, u_t² − u_match², but never less
+    than (NOISE_SHARE·u_t)²: where the match alone uses up the target, more records cannot
+    meet it, and the noise is taken down to a share of it (the point is flagged).
+    Bound (the output under the value threshold): not settled for early. A first look
+    aims to see an output at max(expected_ratio·A_pin, K·σ_c) (K the value threshold) with
+    σ_A/A of 1 dB; the ``last_look`` takes every record the plan's max_time still allows.
+    Records are whole; the pool's bench time stays within max_time_s."""
     rej = result.rejection
     pin_amp = max(result.pin.amplitude, 1e-15)
     floor = max(result.output_floor, 1e-15)
     detecting = bool(rej.is_bound)
+    room = room_for(pool_bench_time, record_duration, rearm, max_time_s)
     if not detecting:
         out_amp = max(result.output.amplitude, 1e-15)
         noise_db2 = (
             analysis.db_uncertainty(floor / out_amp, result.pin.amplitude_sigma / pin_amp) ** 2
         )
-        budget = target_db**2 - analysis.db_uncertainty(calibration_uncertainty) ** 2
+        budget = max(
+            target_db**2 - analysis.db_uncertainty(calibration_uncertainty) ** 2,
+            (NOISE_SHARE * target_db) ** 2,
+        )
         if noise_db2 <= budget:
             return TopUp(0, False, False)
-        if budget <= 0:  # the calibration alone misses the target: more records cannot help
-            return TopUp(0, True, False)
         factor = noise_db2 / budget
+    elif last_look:
+        return TopUp(room, room < 1, True)
     else:
-        goal = max(expected_ratio * pin_amp, DETECT_MULTIPLE * floor)
+        threshold = float(getattr(result, "value_threshold", analysis.DEFAULT_DETECTION_K))
+        goal = max(expected_ratio * pin_amp, threshold * floor)
         factor = (floor / (DETECT_RELATIVE * goal)) ** 2
-    room = int(max(max_time_s - pool_bench_time, 0.0) / (record_duration + rearm) + 1e-9)
     wanted = max(1, math.ceil(pool_triggered * (factor * TOP_UP_MARGIN - 1.0)))
     if wanted > room:
         return TopUp(room, True, detecting)

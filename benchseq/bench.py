@@ -21,6 +21,11 @@ from benchseq.errors import FileKeyError
 from benchseq.ranges import BENCH_RANGES
 from benchseq.tomlfile import Section, parse_toml_text, read_toml
 
+# ± tolerances an uncalibrated channel ratio carries (the same defaults as
+# benchseq.analysis.match, which the simulator must not import): vertical gain accuracy
+# 1–2 % per channel and ±1 % for an attenuating probe are common practice
+DEFAULT_GAIN_ACCURACY = 0.015
+DEFAULT_PROBE_ACCURACY = 0.01
 ROLES = ("generator", "supply", "scope", "load")
 LOAD_MODES = ("50 ohm", "high-z")
 COUPLINGS = ("AC", "DC")
@@ -77,6 +82,7 @@ class ScopeChannel:
     channel: int
     probe: float
     coupling: str  # "AC" or "DC"
+    probe_accuracy: float = 0.0  # ± relative tolerance of the probe's attenuation
 
 
 @dataclass(frozen=True)
@@ -85,6 +91,21 @@ class ScopeSetup:
     output: ScopeChannel  # ripple at the device's output
     bandwidth_limit: float | None  # Hz, None = full bandwidth
     calibration: str | None  # path of a channel-match calibration file, if any
+    gain_accuracy: float = (
+        DEFAULT_GAIN_ACCURACY  # ± relative vertical gain tolerance of each channel
+    )
+
+    def tolerances(self) -> Any:
+        """The channel-match tolerances an uncalibrated ratio carries (an
+        analysis.match.ChannelTolerances)."""
+        from benchseq.analysis.match import ChannelTolerances
+
+        return ChannelTolerances(
+            gain_pin=self.gain_accuracy,
+            gain_output=self.gain_accuracy,
+            probe_pin=self.pin.probe_accuracy,
+            probe_output=self.output.probe_accuracy,
+        )
 
 
 @dataclass(frozen=True)
@@ -184,8 +205,28 @@ def _scope_channel(section: Section) -> ScopeChannel:
     probe = section.number("probe", default=1.0, positive=True)
     section.check_range("probe", probe, probe, BENCH_RANGES["scope.probe"])
     coupling = section.text("coupling", default="AC", choices=COUPLINGS)
+    # a 1:1 connection (coax) has no attenuation to be off; an attenuating probe ±1 %
+    default = DEFAULT_PROBE_ACCURACY if probe != 1.0 else 0.0
+    accuracy = _tolerance(section, "probe_accuracy", default)
     section.done()
-    return ScopeChannel(channel, probe, coupling)
+    return ScopeChannel(channel, probe, coupling, accuracy)
+
+
+def _tolerance(section: Section, key: str, default: float) -> float:
+    """A ± tolerance written as a percentage ("1.5 %"), as a fraction; ``default`` if absent."""
+    if not section.has(key):
+        return default
+    value = section.raw(key)
+    text = value.strip() if isinstance(value, str) else ""
+    try:
+        number = float(text[:-1]) if text.endswith("%") else math.nan
+    except ValueError:
+        number = math.nan
+    if not (math.isfinite(number) and 0 <= number < 100):
+        raise section.error(
+            key, f"expected a tolerance as a percentage from 0 % to under 100 %, got {value!r}"
+        )
+    return number / 100.0
 
 
 def _within(section: Section, key: str) -> dict[str, Any]:
@@ -268,7 +309,8 @@ def parse_bench(
     calibration = sco.text("calibration", default=None)
     if calibration is not None and base_dir is not None and not Path(calibration).is_absolute():
         calibration = str(base_dir / calibration)
-    scope = ScopeSetup(pin_channel, out_channel, bandwidth_limit, calibration)
+    gain_accuracy = _tolerance(sco, "gain_accuracy", DEFAULT_GAIN_ACCURACY)
+    scope = ScopeSetup(pin_channel, out_channel, bandwidth_limit, calibration, gain_accuracy)
     sco.done()
 
     load: LoadSetup | None = None

@@ -48,6 +48,7 @@ _RECOMPUTED = {
     "not_detected",
     "outside_calibration",
     "floor_from_residual",
+    "uncalibrated",
 }
 _RECOMPUTED_PREFIXES = ("clipped_", "unresolved_", "small_", "unrefined_")
 
@@ -122,12 +123,15 @@ def reanalyse_row(
     calibration: Any = None,
     couplings: tuple[bool, bool] = (False, False),
     ac_corner: float = 0.0,
+    channel_match: float | None = None,
 ) -> dict[str, Any]:
     """The stored ``row`` with its analysis columns recomputed from ``waves`` (pin, output).
 
     ``ac_corner`` (Hz, the run's meta ``scope_ac_corner_hz``; 0 = none) and ``couplings``
     (pin, output AC-coupled): readings are referred back to the nodes through that
-    high-pass, as the run did (the ratio is unchanged: both channels share it)."""
+    high-pass, as the run did (the ratio is unchanged: both channels share it).
+    ``channel_match``: the bench's uncalibrated channel-match uncertainty, in the budget of
+    every point no calibration corrects (as in the run)."""
     from benchseq import analysis
 
     pin, out = waves["pin"], waves["output"]
@@ -142,6 +146,7 @@ def reanalyse_row(
         pin_codes=_channel_codes(pin, float(row["pin_range"])),
         out_codes=_channel_codes(out, float(row["output_range"])),
         calibration=calibration,
+        channel_match=channel_match,
     )
     rej = result.rejection
     f = float(row["frequency"])
@@ -160,7 +165,7 @@ def reanalyse_row(
         pin=result.pin.phasor / pin_through,
         pin_sigma=result.pin.amplitude_sigma / abs(pin_through),
         output=result.output.phasor / out_through,
-        output_sigma=result.output.amplitude_sigma / abs(out_through),
+        output_sigma=result.output_sigma / abs(out_through),
         output_floor=result.output_floor / abs(out_through),
         output_noise=result.output.residual_rms,
         ratio=rej.ratio,
@@ -168,6 +173,7 @@ def reanalyse_row(
         uncertainty_db=rej.uncertainty_db if not rej.is_bound else math.nan,
         bound_db=rej.bound_db if rej.is_bound else math.nan,
         is_bound=bool(rej.is_bound),
+        match_uncertainty=result.match_uncertainty,
         pin_model_ratio_db=model_db,
         thd=result.thd,
     )
@@ -259,7 +265,15 @@ def reanalyse(
             pid = int(row["point_id"])
             point_waves = usable.get(pid)
             new = (
-                reanalyse_row(row, point_waves, stored.plan, calibration, couplings, corner)
+                reanalyse_row(
+                    row,
+                    point_waves,
+                    stored.plan,
+                    calibration,
+                    couplings,
+                    corner,
+                    stored.bench.scope.tolerances().uncertainty,
+                )
                 if point_waves is not None
                 else dict(row)
             )

@@ -36,7 +36,13 @@ POINT_COLUMNS: tuple[Column, ...] = (
     Column("pin", "c16", "V", "measured pin ripple phasor (peak)"),
     Column("pin_sigma", "f8", "V", "standard uncertainty of the pin amplitude"),
     Column("output", "c16", "V", "measured output ripple phasor (peak)"),
-    Column("output_sigma", "f8", "V", "standard uncertainty of the output amplitude"),
+    Column(
+        "output_sigma",
+        "f8",
+        "V",
+        "standard uncertainty of the output amplitude: the noise at the test frequency "
+        "(equal to output_floor)",
+    ),
     Column(
         "output_floor",
         "f8",
@@ -65,7 +71,13 @@ POINT_COLUMNS: tuple[Column, ...] = (
         "dB",
         "rejection 20*log10(|V_pin|/|V_out|); nan when only a bound is known",
     ),
-    Column("uncertainty_db", "f8", "dB", "standard uncertainty of rejection_db"),
+    Column(
+        "uncertainty_db",
+        "f8",
+        "dB",
+        "standard uncertainty of rejection_db: 8.6859*sqrt((pin_sigma/|pin|)^2 + "
+        "(output_sigma/A)^2 + match_uncertainty^2), A = sqrt(|output|^2 - 2*output_sigma^2)",
+    ),
     Column(
         "bound_db",
         "f8",
@@ -77,6 +89,13 @@ POINT_COLUMNS: tuple[Column, ...] = (
         "bool",
         "",
         "true when the output was not detected and only a lower bound is known",
+    ),
+    Column(
+        "match_uncertainty",
+        "f8",
+        "",
+        "relative standard uncertainty of the channel match in uncertainty_db: the "
+        "calibration's, or without one the channels' gain and probes' attenuation tolerances",
     ),
     Column(
         "pin_model",
@@ -129,7 +148,9 @@ FLAG_TEXT: dict[str, str] = {
     "instrument_retry": "an instrument fault occurred and the point was measured again after recovery",
     "nonlinear": "a linearity repeat at another ripple level changed rejection by more than the plan's tolerance (not small-signal)",
     "marginal": "the feasibility check marked this point marginal",
-    "not_detected": "the output amplitude was under the detection threshold (3.5 σ of the floor)",
+    "not_detected": "the output amplitude was under the value threshold (5 σ of the floor or more; see the uncertainty budget): only a bound is stated",
+    "uncalibrated": "no channel-match calibration was applied: the scope channels' gain and the probes' attenuation tolerances are in the uncertainty instead",
+    "bound_time_limited": "the bound used all of the plan's capture time (max_time): a longer max_time would raise it",
     "clipped_pin": "the pin channel's record touched the converter's extreme codes",
     "clipped_output": "the output channel's record touched the converter's extreme codes",
     "unresolved_pin": "the pin channel's record used at most two adjacent codes",

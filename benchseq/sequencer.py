@@ -119,6 +119,7 @@ class Sequencer:
         seed: int = 0,
         planned_bench_time: float = 0.0,
         calibration: analysis.ChannelCalibration | None = None,
+        match_tolerance: bool = True,
     ) -> None:
         self.plan = plan
         self.bench = bench
@@ -141,6 +142,11 @@ class Sequencer:
         self._freq_now: float | None = None
         self._pin_dc = float("nan")
         self.calibration = calibration  # channel match applied to every ratio (None: none)
+        # where no calibration applies, the channels' and probes' tolerances enter each
+        # point's budget (None: not, as for a calibration sweep, which measures that match)
+        self._match_u: float | None = (
+            bench.scope.tolerances().uncertainty if match_tolerance else None
+        )
         self._pool: batches.Pool | None = None  # the last point's pooled records
         self._ac_corner = 0.0  # Hz, the scope's AC-coupling corner once measured (0: none)
         # what the bench is doing now ("power-up", "operating point", "settle", "capture",
@@ -598,8 +604,11 @@ class Sequencer:
         pool.add(*waves, probe.averages, probe.bench_time)
         capped = False
         detecting = 0
+        granule = 1  # waveforms per batch of the last top-up: its records come in these
         carried_ratio = 10 ** (-carry.rejection_db / 20.0)
         for _ in range(batches.MAX_TOP_UPS):
+            if result.rejection.is_bound and "unresolved_output" in result.flags:
+                break  # noise under one code step: more records of this range show no more
             more = batches.top_up(
                 result,
                 pool.triggered,
@@ -609,7 +618,8 @@ class Sequencer:
                 rules.target_uncertainty_db,
                 rules.max_time_s,
                 carried_ratio,
-                result.calibration_uncertainty,
+                result.match_uncertainty,
+                last_look=detecting >= batches.MAX_DETECT_TOP_UPS - 1,
             )
             capped = more.capped
             if more.records < 1 or (more.detecting and detecting >= batches.MAX_DETECT_TOP_UPS):
@@ -617,6 +627,9 @@ class Sequencer:
             detecting += int(more.detecting)
             self.activity = "top-up"
             extra = batches.batch(plan, more.records, timebase.max_averages, timebase.rearm_time)
+            if more.capped or more.detecting:  # whole scope averages may round the count up:
+                extra = batches.within(extra, more.records, timebase)  # keep to max_time
+            granule = extra.records
             pin_range, out_range, _, used, waves = self._capture_ranged(
                 extra, actual_frequency, pin_range, out_range, flags
             )
@@ -655,6 +668,11 @@ class Sequencer:
             flags.append("pin_dc_out_of_limits")
         if result.rejection.is_bound:
             flags.append("bound")
+            room = batches.room_for(
+                pool.bench_time, plan.record_duration, timebase.rearm_time, rules.max_time_s
+            )
+            if room < granule:  # max_time used (to within whole scope averages per read)
+                flags.append("bound_time_limited")
         if capped or (
             not result.rejection.is_bound
             and result.rejection.uncertainty_db > rules.target_uncertainty_db
@@ -682,7 +700,7 @@ class Sequencer:
             "pin": result.pin.phasor / through,
             "pin_sigma": result.pin.amplitude_sigma / abs(through),
             "output": result.output.phasor / out_through,
-            "output_sigma": result.output.amplitude_sigma / abs(out_through),
+            "output_sigma": result.output_sigma / abs(out_through),
             "output_floor": result.output_floor / abs(out_through),
             "output_noise": result.output.residual_rms,
             "floor_pin": floor_pin,
@@ -692,6 +710,7 @@ class Sequencer:
             "uncertainty_db": rej.uncertainty_db if not rej.is_bound else float("nan"),
             "bound_db": rej.bound_db if rej.is_bound else float("nan"),
             "is_bound": bool(rej.is_bound),
+            "match_uncertainty": result.match_uncertainty,
             "pin_model": pin_model,
             "pin_model_ratio_db": model_ratio_db,
             "thd": result.thd,
@@ -863,6 +882,7 @@ class Sequencer:
                 pin_codes=_codes(pins[-1], pin_range, pin_ranges),
                 out_codes=_codes(outs[-1], out_range, out_ranges),
                 calibration=self.calibration,
+                channel_match=self._match_u,
             )
             new_pin = self._next_range(
                 result.pin_codes, pin_range, pin_ranges, result.pin.amplitude, 0.0
@@ -908,6 +928,7 @@ class Sequencer:
             pin_codes=channels[0][1],
             out_codes=channels[1][1],
             calibration=self.calibration,
+            channel_match=self._match_u,
         )
 
     @staticmethod

@@ -75,6 +75,7 @@ def row(point_id: int, frequency: float, rejection_db: float, **values: Any) -> 
         "uncertainty_db": math.nan if is_bound else 0.1,
         "bound_db": bound,
         "is_bound": is_bound,
+        "match_uncertainty": 0.0135,
         "pin_model": pin,
         "pin_model_ratio_db": 0.0,
         "thd": 0.001,

@@ -60,18 +60,18 @@ def test_db_arithmetic_from_the_gum() -> None:
 
 
 def test_low_snr_interval_is_computed_in_linear_units() -> None:
-    """At 5 σ the k = 1 interval, taken in linear units and converted, is asymmetric: the
-    high side is 20·log10(1/(1 − u)) and the low side 20·log10(1/(1 + u)) (from the
-    definition; GUM §5.1.6 note on non-linear models)."""
-    rej = rejection(_fit(1.0, 1e-6), _fit(5e-3, 1e-3))
+    """At 6 σ (just above the value threshold of 5 σ) the k = 1 interval, taken in linear
+    units and converted, is asymmetric: the high side is 20·log10(1/(1 − u)) and the low
+    side 20·log10(1/(1 + u)) (from the definition; GUM §5.1.6 note on non-linear models)."""
+    rej = rejection(_fit(1.0, 1e-6), _fit(6e-3, 1e-3))
     low, high = rej.interval_db
     assert high - rej.rejection_db > rej.rejection_db - low > 0
-    # the output's Rice bias (A² reads 2σ² high) is removed: A_true² ≈ 25σ² − 2σ²
-    assert rej.rejection_db == pytest.approx(-10 * math.log10(23e-6), rel=1e-9)
+    # the output's Rice bias (A² reads 2σ² high) is removed: A_true² ≈ 36σ² − 2σ²
+    assert rej.rejection_db == pytest.approx(-10 * math.log10(34e-6), rel=1e-9)
 
 
 def test_undetected_output_is_a_bound_and_never_a_value() -> None:
-    """Below 3.5 σ_c: a lower bound 20·log10(A_pin/(A_out + 1.645 σ_c)), with every value
+    """Below the value threshold (5 σ_c): a lower bound 20·log10(A_pin/(A_out + 1.645 σ_c)), with every value
     field NaN so it cannot be read as a measurement."""
     rej = rejection(_fit(0.1, 1e-5), _fit(2e-6, 1e-6))
     assert rej.is_bound and rej.kind == "bound"

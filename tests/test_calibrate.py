@@ -124,12 +124,18 @@ def test_calibration_covers_the_plan_with_guard_points(lab: dict[str, Any]) -> N
 def _mismatch_error(path: Path) -> tuple[float, float, float, int]:
     """Weighted mean (weights 1/u²) over the points detected with u ≤ 0.05 dB of
     ln(measured ratio / true ratio), the true ratio being the simulator's output/pin phasors:
-    (gain error dB, phase error °, standard error dB, points used)."""
+    (gain error dB, phase error °, standard error dB, points used). u is the noise part of
+    the stated uncertainty: without a calibration the stated one also holds the channels'
+    tolerance term, the very error measured here."""
     frame = read_results(path).merge(read_truth(path), on="point_id", suffixes=("", "_true"))
-    used = frame[~frame["is_bound"] & (frame["uncertainty_db"] <= 0.05)]
+    noise_u = np.sqrt(
+        np.maximum(frame["uncertainty_db"] ** 2 - (DB * frame["match_uncertainty"]) ** 2, 0.0)
+    )
+    frame = frame.assign(noise_u=noise_u)
+    used = frame[~frame["is_bound"] & (frame["noise_u"] <= 0.05) & (frame["noise_u"] > 0)]
     true_ratio = (used["output_true"] / used["pin_true"]).to_numpy()
     error = np.log(used["ratio"].to_numpy() / true_ratio)
-    weight = 1.0 / used["uncertainty_db"].to_numpy() ** 2
+    weight = 1.0 / used["noise_u"].to_numpy() ** 2
     mean = np.sum(weight * error) / np.sum(weight)
     return DB * mean.real, math.degrees(mean.imag), 1.0 / math.sqrt(np.sum(weight)), len(used)
 

@@ -11,12 +11,15 @@ from benchseq.analysis.codes import CodeCheck, RangeVerdict, check_codes, sugges
 from benchseq.analysis.distortion import HarmonicFit, fit_harmonics
 from benchseq.analysis.errors import AnalysisError, FitNotConverged
 from benchseq.analysis.floor import (
+    DEFAULT_DETECTION_K,
     NoiseFloor,
     is_detected,
     neighbour_frequencies,
     noise_floor,
+    value_threshold,
     widened_quantile,
 )
+from benchseq.analysis.match import ChannelTolerances
 from benchseq.analysis.point import ChannelCodes, PointMeasurement, measure_point
 from benchseq.analysis.refine import (
     FreeSineFit,
@@ -45,11 +48,13 @@ from benchseq.analysis.sinefit import (
 __all__ = [
     "BOUND_Z",
     "DB_PER_NEPER",
+    "DEFAULT_DETECTION_K",
     "AnalysisError",
     "CalibrationLookup",
     "CapturePlan",
     "ChannelCalibration",
     "ChannelCodes",
+    "ChannelTolerances",
     "CodeCheck",
     "FitNotConverged",
     "FreeSineFit",
@@ -81,5 +86,6 @@ __all__ = [
     "refine_frequency",
     "rejection",
     "suggest_range",
+    "value_threshold",
     "widened_quantile",
 ]

@@ -20,7 +20,8 @@ from benchseq.analysis.sinefit import as_records
 
 DEFAULT_NEIGHBOURS = 10  # K: neighbours at k = 2…K bins on each side
 DEFAULT_HARMONICS = 5  # harmonics of f fitted along with each neighbour
-DEFAULT_DETECTION_K = 3.5  # detected when A > 3.5·σ_c: false alarm e^(−3.5²/2) = 0.22 %
+DEFAULT_DETECTION_K = 5.0  # a value when A > 5·σ_c (value_threshold: Rice bias < u/4)
+FALSE_VALUE_RATE = 1e-4  # a noise-only output may pass as a value this often per look, at most
 SKIP_BINS = 1.5  # neighbours this close (in bins) to a harmonic, DC or Nyquist are skipped
 RAYLEIGH_MEAN = math.sqrt(math.pi / 2.0)  # mean of a noise-only amplitude, in σ_c
 
@@ -136,6 +137,30 @@ def widened_quantile(z: float, dof: float) -> float:
     return z + (z3 + z) / (4 * dof) + (5 * z5 + 16 * z3 + 3 * z) / (96 * dof**2)
 
 
+def value_threshold(
+    dof: float = math.inf, k: float = DEFAULT_DETECTION_K, rate: float = FALSE_VALUE_RATE
+) -> float:
+    """The least A_out/σ_c at which a rejection is reported as a value rather than a bound.
+
+    Two conditions, the larger wins:
+
+    - bias: the value uses √(A² − 2σ_c²) (A² of a Rice amplitude reads 2σ_c² high); what is
+      left of the bias in dB is about −σ_c²/A² nepers against u = σ_c/A nepers, i.e. u/ρ at
+      ρ = A/σ_c. Below u/4 needs ρ > 4 to first order; a Monte Carlo of the full estimator
+      gives 0.33u at ρ = 4 and 0.23u at ρ = 5, hence ``k`` = 5;
+    - false values: with no signal A²/(2σ_c²) is exponential, and with σ_c estimated from
+      ``dof`` squared quadratures A²/(2σ̂_c²) follows F(2, dof), whose tail is
+      (1 + x·2/dof)^(−dof/2) (Abramowitz & Stegun 26.6.4 for two numerator degrees of
+      freedom, from memory). The threshold where that tail is ``rate``:
+      ρ² = dof·(rate^(−2/dof) − 1), tending to 2·ln(1/rate) (4.29 at 1e-4) for a known σ_c.
+    """
+    if not math.isfinite(dof):
+        return max(k, math.sqrt(2.0 * math.log(1.0 / rate)))
+    if dof < 2:
+        raise AnalysisError(f"{dof:g} degrees of freedom is too few for a value threshold")
+    return max(k, math.sqrt(dof * (rate ** (-2.0 / dof) - 1.0)))
+
+
 def is_detected(amplitude: float, sigma: float, k: float = DEFAULT_DETECTION_K) -> bool:
-    """A fitted amplitude counts as a signal when it exceeds k·σ_c."""
+    """A fitted amplitude counts as a signal (a value) when it exceeds k·σ_c."""
     return bool(amplitude > k * sigma)

@@ -18,6 +18,7 @@ from benchseq.analysis.floor import (
     DEFAULT_NEIGHBOURS,
     NoiseFloor,
     noise_floor,
+    value_threshold,
     widened_quantile,
 )
 from benchseq.analysis.refine import DEFAULT_MIN_SNR, FrequencyRefinement, refine_frequency
@@ -47,7 +48,7 @@ class PointMeasurement:
     output: SineFit
     frequency: float  # Hz the fits used (refined on the pin, else the generator's)
     refinement: FrequencyRefinement
-    output_floor: float  # σ_c of the output at f (V) used for detection and bound
+    output_floor: float  # σ_c of the output at f (V): detection, bound and the value's u
     floor: NoiseFloor | None
     rejection: Rejection
     harmonics: HarmonicFit | None
@@ -57,6 +58,14 @@ class PointMeasurement:
     calibrated: bool
     flags: tuple[str, ...]
     calibration_uncertainty: float = 0.0  # relative, of the channel match divided out
+    match_uncertainty: float = 0.0  # relative u of the channel match in the budget (k = 1)
+    value_threshold: float = DEFAULT_DETECTION_K  # A_out/σ_c a value needed here
+
+    @property
+    def output_sigma(self) -> float:
+        """Standard uncertainty of the output amplitude (V): the noise at f, σ_c (the spread
+        of a fitted amplitude well above the floor is σ_c per quadrature)."""
+        return self.output_floor
 
     def to_row(self) -> dict[str, Any]:
         """Plain values for a results table (complex phasors, floats, a space-separated flag string)."""
@@ -66,7 +75,7 @@ class PointMeasurement:
             "pin": self.pin.phasor,
             "pin_sigma": self.pin.amplitude_sigma,
             "output": self.output.phasor,
-            "output_sigma": self.output.amplitude_sigma,
+            "output_sigma": self.output_sigma,
             "output_floor": self.output_floor,
             "ratio": rej.ratio,
             "rejection_db": rej.rejection_db,
@@ -75,6 +84,7 @@ class PointMeasurement:
             "lower_db": rej.lower_db,
             "is_bound": rej.is_bound,
             "thd": self.thd,
+            "match_uncertainty": self.match_uncertainty,
             "flags": " ".join(self.flags),
         }
 
@@ -100,6 +110,7 @@ def measure_point(
     detection_k: float = DEFAULT_DETECTION_K,
     z: float = BOUND_Z,
     min_refine_snr: float = DEFAULT_MIN_SNR,
+    channel_match: float | None = None,
 ) -> PointMeasurement:
     """Refine on the pin → fit both channels → output floor → rejection, with flags.
 
@@ -107,7 +118,14 @@ def measure_point(
     probe tips, on one time axis (t0 = time of the first sample from the trigger).
     Flags: "clipped_pin"/"clipped_output", "unresolved_pin"/"unresolved_output",
     "small_pin"/"small_output" (few codes used), "unrefined_<reason>", "not_detected",
-    "outside_calibration", "floor_from_residual".
+    "outside_calibration", "floor_from_residual", "uncalibrated".
+
+    channel_match: the relative standard uncertainty of the channel match without a
+    calibration (ChannelTolerances.uncertainty); where no calibration is applied it enters
+    the budget and the point is flagged "uncalibrated". None: the caller vouches for matched
+    channels (synthetic records) and no term is added.
+    detection_k: the least value threshold (A_out/σ_c); value_threshold raises it when the
+    floor rests on few neighbours.
     """
     if not (math.isfinite(sample_interval) and sample_interval > 0):
         raise AnalysisError(
@@ -166,9 +184,11 @@ def measure_point(
     if floor is not None and floor.used >= MIN_FLOOR_NEIGHBOURS:
         sigma = floor.sigma
         z = widened_quantile(z, 2 * floor.used)
+        threshold = value_threshold(2 * floor.used, detection_k)
     else:
         sigma = out_fit.quadrature_sigma
         flags.append("floor_from_residual")
+        threshold = value_threshold(math.inf, detection_k)
 
     cal_ratio, cal_u, calibrated = 1.0 + 0.0j, 0.0, False
     if calibration is not None:
@@ -177,6 +197,12 @@ def measure_point(
             cal_ratio, cal_u, calibrated = cal.ratio, cal.uncertainty, True
         else:
             flags.append("outside_calibration")
+    match_u = cal_u
+    if not calibrated and channel_match is not None:
+        if not (math.isfinite(channel_match) and channel_match >= 0):
+            raise AnalysisError(f"channel match uncertainty must be ≥ 0, got {channel_match!r}")
+        match_u = float(channel_match)
+        flags.append("uncalibrated")
 
     limit = 0.0
     out_check = checks["output"]
@@ -192,8 +218,8 @@ def measure_point(
         out_fit,
         sigma,
         cal_ratio,
-        cal_u,
-        detection_k,
+        match_u,
+        threshold,
         z,
         output_limit=limit,
         calibrated=calibrated,
@@ -215,4 +241,6 @@ def measure_point(
         calibrated=calibrated,
         flags=tuple(dict.fromkeys(flags)),
         calibration_uncertainty=cal_u,
+        match_uncertainty=match_u,
+        value_threshold=threshold,
     )

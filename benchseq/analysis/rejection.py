@@ -3,9 +3,14 @@
 Rejection in dB = 20·log10(|V_pin|/|V_out|), positive when the device attenuates; the
 complex ratio H = V_out/V_pin is what is stored. Standard uncertainty by the law of
 propagation for a product/quotient [GUM, JCGM 100:2008 §5.1.2, §5.1.6]:
-u_dB = (20/ln 10)·√(u_rel,pin² + u_rel,out² + u_cal²). When the output is not above the
-detection threshold the result is a lower bound 20·log10(A_pin/(A_out + z·σ_c)), z = 1.645,
-which holds with ≥ 95 % one-sided coverage for every true output amplitude.
+u_dB = (20/ln 10)·√(u_rel,pin² + u_rel,out² + u_match²), u_rel,out = σ_c/A_out with σ_c the
+output's noise at f (the neighbour floor), u_match the channel match: a calibration's
+stored u, or without one the Type B term of the channels' and probes' tolerances
+(benchseq.analysis.match). The result is a value only where A_out/σ_c reaches the value
+threshold (benchseq.analysis.floor.value_threshold: the bias left in the dB value is under
+u/4 and noise alone passes at most 1e-4 of the time); otherwise it is a lower bound
+20·log10(A_pin/(A_out + z·σ_c)), z = 1.645, which holds with ≥ 95 % one-sided coverage for
+every true output amplitude.
 """
 
 from __future__ import annotations

@@ -214,6 +214,88 @@ def _json_pairs(value: Any) -> list[tuple[str, str]]:
     return [("value", str(value))]
 
 
+def _percent(value: Any) -> str:
+    return f"±{100 * float(value):.3g} %" if isinstance(value, int | float) else "not recorded"
+
+
+def _match_text(meta: dict[str, Any]) -> str:
+    """The uncalibrated channel match: the bench's tolerances and their combined u."""
+    from benchseq.analysis.match import ChannelTolerances
+    from benchseq.analysis.rejection import DB_PER_NEPER
+
+    scope = meta.get("scope_setup")
+    scope = scope if isinstance(scope, dict) else {}
+    pin = scope.get("pin") if isinstance(scope.get("pin"), dict) else {}
+    out = scope.get("output") if isinstance(scope.get("output"), dict) else {}
+    gain, a_pin, a_out = (
+        scope.get("gain_accuracy"),
+        pin.get("probe_accuracy"),
+        out.get("probe_accuracy"),
+    )
+    if not all(isinstance(v, int | float) for v in (gain, a_pin, a_out)):
+        return (
+            "channel tolerances not recorded with this run (recorded by later versions); "
+            "its uncertainties leave the channel match out"
+        )
+    u = ChannelTolerances(float(gain), float(gain), float(a_pin), float(a_out)).uncertainty
+    return (
+        f"without a calibration: each channel's vertical gain {_percent(gain)}, pin probe "
+        f"{_percent(a_pin)}, output probe {_percent(a_out)} (bench file), each rectangular, "
+        f"a/√3 [JCGM 100 §4.3.7]: u_match = {DB_PER_NEPER * u:.3f} dB (Type B, k = 1); "
+        "such points are flagged 'uncalibrated'"
+    )
+
+
+def _budget_section(source: Source) -> Section:
+    """The uncertainty budget behind every stated ± (terms, sources, coverage factors)."""
+    meta = source.meta
+    calibrated = bool(meta.get("calibration"))
+    pairs = [
+        (
+            "stated uncertainty",
+            "u, the standard uncertainty (k = 1) of rejection in dB: u = (20/ln 10)·"
+            "√(u_pin² + u_out² + u_match²), the law of propagation for a quotient "
+            "[JCGM 100 §5.1.2, §5.1.6]; an expanded U = k·u says its k where it is shown",
+        ),
+        (
+            "output noise u_out",
+            "σ_c/A_out: the output's noise at the test frequency, from fits at neighbouring "
+            "frequencies (Type A, k = 1); stored as output_sigma",
+        ),
+        ("pin noise u_pin", "σ_pin/A_pin from the pin channel's fit (Type A, k = 1)"),
+    ]
+    if calibrated:
+        pairs.append(
+            (
+                "channel match u_match",
+                "the channel-match calibration's stored standard uncertainty at each "
+                "frequency (k = 1); points outside its span: "
+                + _match_text(meta).removeprefix("without a calibration: "),
+            )
+        )
+    else:
+        pairs.append(("channel match u_match", _match_text(meta)))
+    if _match_text(meta).startswith("channel tolerances not recorded"):
+        pairs.append(
+            (
+                "value or bound",
+                "recorded by an earlier version: a value where the output exceeded 3.5 σ_c of "
+                "its noise; otherwise a lower bound 20·log10(A_pin/(A_out + 1.645·σ_c))",
+            )
+        )
+        return "Uncertainty budget", pairs
+    pairs.append(
+        (
+            "value or bound",
+            "a value where the output is at least 5 σ_c above its noise (more when the noise "
+            "rests on few neighbouring frequencies), so that the bias left in dB is under u/4; "
+            "otherwise a lower bound 20·log10(A_pin/(A_out + 1.645·σ_c)), one-sided 95 % "
+            "(before a bound, the plan's max_time is used: flag 'bound_time_limited')",
+        )
+    )
+    return "Uncertainty budget", pairs
+
+
 def conditions(source: Source) -> list[Section]:
     """Every section of conditions of one run, in reading order."""
     meta = source.meta
@@ -229,6 +311,7 @@ def conditions(source: Source) -> list[Section]:
         ("Calibration", _json_pairs(calibration) if calibration
          else [("channel match", "none recorded with this run")])
     )  # fmt: skip
+    sections.append(_budget_section(source))
     if meta.get("replay_of"):
         sections.append(("Replay of", _json_pairs(meta["replay_of"])))
     if meta.get("sign_convention"):
