@@ -59,8 +59,9 @@ class CaptureRules:
 
     min_cycles: int = 10
     max_time_s: float = 10.0
-    target_uncertainty_db: float = 0.1
+    target_uncertainty_db: float = 0.1  # standard uncertainty (k = 1) of rejection_db
     max_averages: int = 64
+    frequency_tolerance: float = 1e-3  # relative move allowed towards a coherent frequency
 
 
 @dataclass(frozen=True)
@@ -579,7 +580,11 @@ def _settle(section: Section | None) -> SettleRule:
 def _capture(section: Section | None) -> CaptureRules:
     if section is None:
         return CaptureRules()
-    _only(section, ("min_cycles", "max_time", "target_uncertainty", "max_averages"))
+    _only(
+        section,
+        ("min_cycles", "max_time", "target_uncertainty", "max_averages", "frequency_tolerance"),
+    )
+    tolerance = section.raw("frequency_tolerance", None)
     rules = CaptureRules(
         min_cycles=section.integer("min_cycles", default=10, minimum=1, maximum=1_000_000),
         max_time_s=section.quantity("max_time", "s", default=10.0, positive=True),
@@ -587,9 +592,26 @@ def _capture(section: Section | None) -> CaptureRules:
             "target_uncertainty", "dB", default=0.1, positive=True
         ),
         max_averages=section.integer("max_averages", default=64, minimum=1, maximum=1_000_000),
+        frequency_tolerance=(
+            1e-3 if tolerance is None else _tolerance(section, "frequency_tolerance", tolerance)
+        ),
     )
     section.done()
     return rules
+
+
+def _tolerance(section: Section, key: str, value: Any) -> float:
+    """'0.1 %' -> 0.001; '0 %' keeps every frequency exactly as planned; at most 10 %."""
+    text = value.strip() if isinstance(value, str) else ""
+    try:
+        number = float(text[:-1]) if text.endswith("%") else math.nan
+    except ValueError:
+        number = math.nan
+    if not (math.isfinite(number) and 0 <= number <= 10):
+        raise section.error(
+            key, f"expected a percentage from '0 %' to '10 %' such as '0.1 %', got {value!r}"
+        )
+    return number / 100.0
 
 
 def _action(section: Section, key: str, value: Any) -> str:

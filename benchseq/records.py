@@ -21,7 +21,13 @@ POINT_COLUMNS: tuple[Column, ...] = (
     ),
     Column("ripple_factor", "f8", "", "ripple relative to the planned level (1 but for repeats)"),
     Column("frequency_planned", "f8", "Hz", "injection frequency asked for by the plan"),
-    Column("frequency", "f8", "Hz", "generator frequency actually set (coherent capture)"),
+    Column(
+        "frequency",
+        "f8",
+        "Hz",
+        "generator frequency actually set: the planned one, or a coherent one within the "
+        "plan's capture.frequency_tolerance of it",
+    ),
     Column(
         "frequency_fitted",
         "f8",
@@ -139,6 +145,7 @@ FLAG_TEXT: dict[str, str] = {
     "floor_from_residual": "too few clean neighbour frequencies: the noise floor came from the fit residual",
     "outside_calibration": "the frequency lies outside the channel-match calibration; not corrected",
     "calibration_conditions": "the channel-match calibration applied was made under other conditions (probes, coupling, bandwidth limit or scope) than this run: see the run's calibration metadata",
+    "frequency_off_plan": "the generator's frequency read back differs from the planned one by more than the plan's frequency tolerance",
     "unrefined_low_snr": "the pin channel's SNR was too low to refine the frequency; the generator's was used",
     "unrefined_not_converged": "the frequency refinement did not converge; the generator's frequency was used",
     "unrefined_off_by_over_half_bin": "the refined frequency moved more than half a bin; the generator's was used",

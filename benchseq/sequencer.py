@@ -138,6 +138,7 @@ class Sequencer:
         self.calibration = calibration  # channel match applied to every ratio (None: none)
         self._pool: batches.Pool | None = None  # the last point's pooled records
         self._ac_corner = 0.0  # Hz, the scope's AC-coupling corner once measured (0: none)
+        self._max_shift = max_frequency_shift(np.asarray(self.sweep.frequency, dtype=float))
         # what the bench is doing now ("power-up", "operating point", "settle", "capture",
         # "trim", "top-up", "floor"): for progress displays and the run benchmarks
         self.activity = "idle"
@@ -476,6 +477,11 @@ class Sequencer:
             rules.min_cycles,
             rules.max_time_s,
         )
+        # measured at the planned frequency; moved to a coherent J/T only within the plan's
+        # tolerance and less than half-way to the nearest other planned frequency
+        plan = analysis.at_frequency(
+            plan, frequency, rules.frequency_tolerance, float(self._max_shift[i])
+        )
         actual_frequency = s.generator.set_frequency(plan.frequency)
         probe = batches.batch(
             plan, batches.probe_records(plan), timebase.max_averages, timebase.rearm_time
@@ -568,6 +574,8 @@ class Sequencer:
             flags.append("pin_dc_out_of_limits")
         if result.rejection.is_bound:
             flags.append("bound")
+        if abs(actual_frequency - frequency) > rules.frequency_tolerance * frequency * (1 + 1e-9):
+            flags.append("frequency_off_plan")
         if capped or (
             not result.rejection.is_bound
             and result.rejection.uncertainty_db > rules.target_uncertainty_db
@@ -958,6 +966,17 @@ def _codes(waveform: Any, full_scale: float, ranges: list[float]) -> analysis.Ch
 
 def _unix() -> float:
     return time.time()
+
+
+def max_frequency_shift(frequencies: np.ndarray) -> np.ndarray:
+    """Per point, the largest move (Hz) that keeps its planned frequency distinct from every
+    other: 0.45 of the gap to the nearest different planned frequency (inf for one only)."""
+    unique = np.unique(frequencies)
+    if unique.size < 2:
+        return np.full(frequencies.shape, np.inf)
+    gaps = np.diff(unique)
+    nearest = np.minimum(np.append(gaps, np.inf), np.insert(gaps, 0, np.inf))
+    return 0.45 * nearest[np.searchsorted(unique, frequencies)]
 
 
 def with_repeats(plan: Plan) -> tuple[Sweep, np.ndarray, np.ndarray]:

@@ -6,7 +6,15 @@ ratio is H = V_out/V_pin.
 """
 
 from benchseq.analysis.calibration import CalibrationLookup, ChannelCalibration
-from benchseq.analysis.capture import CapturePlan, ScopeLimits, ScopeTimebase, plan_capture
+from benchseq.analysis.capture import (
+    DEFAULT_FREQUENCY_TOLERANCE,
+    CapturePlan,
+    ScopeLimits,
+    ScopeTimebase,
+    at_frequency,
+    coherent_frequency,
+    plan_capture,
+)
 from benchseq.analysis.codes import CodeCheck, RangeVerdict, check_codes, suggest_range
 from benchseq.analysis.distortion import HarmonicFit, fit_harmonics
 from benchseq.analysis.errors import AnalysisError, FitNotConverged
@@ -77,6 +85,9 @@ __all__ = [
     "neighbour_frequencies",
     "noise_floor",
     "plan_capture",
+    "at_frequency",
+    "coherent_frequency",
+    "DEFAULT_FREQUENCY_TOLERANCE",
     "ratio_db",
     "refine_frequency",
     "rejection",
