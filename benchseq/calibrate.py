@@ -52,6 +52,7 @@ from benchseq.coupling import high_pass
 from benchseq.errors import BadInput, MeasurementFailure
 from benchseq.journal import fsync_directory, fsync_fd
 from benchseq.plan import Plan, load_plan, parse_plan
+from benchseq.records import SHOWN_COVERAGE_FACTOR
 from benchseq.store import OutputExists  # also switches HDF5 file locking off before h5py
 from benchseq.tomlfile import parse_toml_text
 
@@ -61,6 +62,7 @@ FORMAT = "benchseq-calibration"
 SCHEMA_VERSION = 1
 CONDITIONS_FLAG = "calibration_conditions"  # the per-point flag (benchseq.records.FLAG_TEXT)
 TARGET_UNCERTAINTY_DB = 0.003  # the sweep aims at this per point (k = 1), tighter than runs
+SHOWN_K = SHOWN_COVERAGE_FACTOR  # the table shows U = k·u; the file stores u (k = 1)
 MAX_CHANNEL_MISMATCH_DB = 6.0  # more than this between two probes on one node: wiring fault
 DEFAULT_PLAN_SOURCE = "benchseq:default-calibration-sweep"
 # Without --plan (simulated benches only): the frequencies and levels of plans/demo.toml.
@@ -111,7 +113,7 @@ TABLE_COLUMNS: tuple[TableColumn, ...] = (
     TableColumn("gain_db", "dB", "20*log10(|H_cal|)"),
     TableColumn("phase_deg", "deg", "arg(H_cal), output channel minus pin channel"),
     TableColumn("uncertainty", "", "relative standard uncertainty of |H_cal| (k = 1)"),
-    TableColumn("phase_uncertainty_deg", "deg", "standard uncertainty of arg(H_cal) (k = 1)"),
+    TableColumn("phase_uncertainty_deg", "deg (k=1)", "standard uncertainty of arg(H_cal) (k = 1)"),
     TableColumn(
         "uncertainty_fit",
         "",
@@ -122,11 +124,13 @@ TABLE_COLUMNS: tuple[TableColumn, ...] = (
         "",
         "relative uncertainty of |H_cal| from both channels' quantiser bounds (rectangular)",
     ),
-    TableColumn("pin_range", "V", "pin channel full-scale range at the probe tip, peak to peak"),
     TableColumn(
-        "output_range", "V", "output channel full-scale range at the probe tip, peak to peak"
+        "pin_range", "V (pp)", "pin channel full-scale range at the probe tip, peak to peak"
     ),
-    TableColumn("pin_amplitude", "V", "ripple amplitude at the pin during the point, peak"),
+    TableColumn(
+        "output_range", "V (pp)", "output channel full-scale range at the probe tip, peak to peak"
+    ),
+    TableColumn("pin_amplitude", "V (peak)", "ripple amplitude at the pin during the point, peak"),
     TableColumn("bench_time", "s", "bench time spent on the point"),
     TableColumn("flags", "", "the sequencer's flags of the point (space-separated)"),
 )
@@ -862,9 +866,9 @@ def render_calibration(result: CalibrationResult | LoadedCalibration) -> Any:
     for name in (
         "frequency",
         "gain dB",
-        "± dB",
+        f"± dB (k={SHOWN_K:g})",
         "phase °",
-        "± °",
+        f"± ° (k={SHOWN_K:g})",
         "pin range",
         "out range",
         "flags",
@@ -874,9 +878,9 @@ def render_calibration(result: CalibrationResult | LoadedCalibration) -> Any:
         table.add_row(
             format_si(float(cols["frequency"][i]), "Hz", 4),
             f"{gain[i]:+.4f}",
-            f"{DB_PER_NEPER * float(cols['uncertainty'][i]):.4f}",
+            f"{SHOWN_K * DB_PER_NEPER * float(cols['uncertainty'][i]):.4f}",
             f"{phase[i]:+.3f}",
-            f"{float(cols['phase_uncertainty_deg'][i]):.3f}",
+            f"{SHOWN_K * float(cols['phase_uncertainty_deg'][i]):.3f}",
             format_si(float(cols["pin_range"][i]), "Vpp", 3),
             format_si(float(cols["output_range"][i]), "Vpp", 3),
             escape(str(cols["flags"][i])),

@@ -72,6 +72,12 @@ class DeviceLimits:
     min_operating_v: float
     max_load_current: float | None = None
     name: str = ""
+    gain_db: float | None = None  # the device's closed-loop (noise) gain, input to output
+
+    @property
+    def gain_ratio(self) -> float | None:
+        """The declared gain as a voltage ratio (V/V), None when not declared."""
+        return None if self.gain_db is None else 10 ** (self.gain_db / 20.0)
 
     def __str__(self) -> str:
         return self.name
@@ -545,7 +551,7 @@ def _band(band: Section) -> list[float]:
 
 # -- the other tables ----------------------------------------------------------------------
 def _device(section: Section) -> DeviceLimits:
-    _only(section, ("name", "absolute_max", "min_operating", "max_load"))
+    _only(section, ("name", "absolute_max", "min_operating", "max_load", "gain"))
     name = section.text("name", default="")
     absolute_max = section.quantity("absolute_max", "V", positive=True)
     min_operating = section.quantity("min_operating", "V", nonnegative=True)
@@ -556,8 +562,34 @@ def _device(section: Section) -> DeviceLimits:
             f"({format_si(absolute_max, 'V')})",
         )
     max_load = section.quantity("max_load", "A", default=None, positive=True)
+    gain = _gain_db(section, "gain", section.raw("gain", None))
     section.done()
-    return DeviceLimits(absolute_max, min_operating, max_load, name)
+    return DeviceLimits(absolute_max, min_operating, max_load, name, gain)
+
+
+def _gain_db(section: Section, key: str, value: Any) -> float | None:
+    """The device's gain as written: '20 dB', a ratio (10, '10 V/V'); None when absent."""
+    if value is None:
+        return None
+    text = value.strip() if isinstance(value, str) else None
+    if text is not None and text.lower().endswith("db"):
+        gain = section.parse_value(text, "dB", key)
+        if abs(gain) > 200:
+            raise section.error(key, f"{value!r} is not a plausible gain (within ±200 dB)")
+        return gain
+    if text is not None and text.endswith("V/V"):
+        text = text[:-3].strip()
+    try:
+        ratio = float(text if text is not None else value) if not isinstance(value, bool) else -1
+    except (TypeError, ValueError):
+        ratio = math.nan
+    if not (math.isfinite(ratio) and 1e-10 <= ratio <= 1e10):
+        raise section.error(
+            key,
+            f"expected the device's gain as '20 dB' or a positive ratio such as 10 or "
+            f"'10 V/V', got {value!r}",
+        )
+    return 20.0 * math.log10(ratio)
 
 
 def _settle(section: Section | None) -> SettleRule:

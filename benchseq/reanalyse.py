@@ -36,6 +36,7 @@ import numpy as np
 import pandas as pd
 
 from benchseq.errors import BadInput
+from benchseq.records import input_referred
 
 COVERAGE_K = 3.0  # as benchseq.replay: many points are compared at once
 
@@ -171,6 +172,8 @@ def reanalyse_row(
         pin_model_ratio_db=model_db,
         thd=result.thd,
     )
+    if "rejection_input_db" in row:
+        new.update(input_referred(new["rejection_db"], new["bound_db"], plan.device.gain_db))
     flags = [f for f in str(row.get("flags", "")).split() if not _recomputed(f)]
     target = float(row["ripple_target"])
     if target > 0 and abs(pin_amplitude / target - 1.0) > 0.05:
@@ -282,8 +285,8 @@ def reanalyse(
     notes = []
     if len(rows) > len(usable):
         notes.append(f"{len(rows) - len(usable)} point(s) had no waveforms and were copied")
-    if any("calibration" in k for k in stored.meta) and calibration is None:
-        notes.append("the stored run names a calibration; it was not re-applied")
+    if calibration is None and stored.meta.get("calibration"):
+        notes.append("the stored run applied a calibration; it was not re-applied here")
     return ReanalysisOutcome(
         path=target,
         source=path,

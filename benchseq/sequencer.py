@@ -21,7 +21,7 @@ from benchseq.bench import Bench
 from benchseq.errors import BenchseqError, MeasurementFailure
 from benchseq.injector import InjectorModel
 from benchseq.plan import Plan, Sweep
-from benchseq.records import POINT_COLUMNS
+from benchseq.records import POINT_COLUMNS, input_referred
 from benchseq.stopping import AbandonPoint, StopControl
 
 PIN_TOLERANCE = 0.02  # relative: trim the generator when the pin ripple is further off than this
@@ -612,6 +612,11 @@ class Sequencer:
             "rejection_db": rej.rejection_db if not rej.is_bound else float("nan"),
             "uncertainty_db": rej.uncertainty_db if not rej.is_bound else float("nan"),
             "bound_db": rej.bound_db if rej.is_bound else float("nan"),
+            **input_referred(
+                rej.rejection_db if not rej.is_bound else float("nan"),
+                rej.bound_db if rej.is_bound else float("nan"),
+                self.plan.device.gain_db,
+            ),
             "is_bound": bool(rej.is_bound),
             "pin_model": pin_model,
             "pin_model_ratio_db": model_ratio_db,
