@@ -94,6 +94,10 @@ class CalibrationExists(OutputExists):
     """The calibration file exists and overwriting was not asked for."""
 
 
+class ProbeNotOnPin(MeasurementFailure):
+    """A calibration point shows the two probes on different nodes: the run stopped there."""
+
+
 class CalibrationCancelled(BadInput):
     """The operator did not confirm the probes on the pin: nothing was switched on."""
 
@@ -514,6 +518,7 @@ class _Collector:
         self._last: dict[str, Any] | None = None
         self.status = "running"
         self.reason = ""
+        self.wrong_node: str | None = None  # why the run stopped at a point (probe placement)
 
     @property
     def stored_ids(self) -> set[int]:
@@ -529,6 +534,10 @@ class _Collector:
         truth: Mapping[str, Any] | None = None,
         waveforms: Any = None,
     ) -> None:
+        problem = probe_problem(row, first=not self.rows)
+        if problem is not None:  # stop at once: the sequencer ends in the safe state
+            self.wrong_node = problem
+            raise ProbeNotOnPin(problem)
         self.rows[int(point_id)] = dict(row)
         self._last = dict(row)
 
@@ -540,6 +549,30 @@ class _Collector:
     ) -> None:
         self.status, self.reason = status, reason or ""
         self.meta.update(items)
+
+
+def probe_problem(row: Mapping[str, Any], first: bool = True) -> str | None:
+    """Why one calibration point shows the probes on different nodes, or None: the output
+    channel did not see the pin's ripple, or the channels differ by more than
+    MAX_CHANNEL_MISMATCH_DB (the output probe left on the device's output reads its ripple,
+    the rejection lower)."""
+    where = f"{float(row.get('frequency_planned', math.nan)):.6g} Hz"
+    where = f"its first point ({where})" if first else where
+    ratio = complex(row.get("ratio", complex(math.nan, 0)))
+    if bool(row.get("is_bound")) or not np.isfinite(ratio) or ratio == 0:
+        return (
+            f"calibration stopped at {where}: the output channel did not see "
+            "the pin's ripple; is its probe on the pin? Nothing was written."
+        )
+    gain_db = 20.0 * math.log10(abs(ratio))
+    if abs(gain_db) > MAX_CHANNEL_MISMATCH_DB:
+        return (
+            f"calibration stopped at {where}: the two channels differ by {gain_db:+.1f} dB with "
+            f"both probes meant to be on one node (more than {MAX_CHANNEL_MISMATCH_DB:g} dB): "
+            "check that the output channel's probe is on the supply pin, not the device's "
+            "output, and that the bench file's probe attenuations are right. Nothing was written."
+        )
+    return None
 
 
 def guard_factor(plan: Plan) -> float:
@@ -704,6 +737,9 @@ def run_calibration(
             simulator.connect_probe(bench.scope.output.channel, "output")
     finally:
         session.close()
+    if collector.wrong_node is not None:
+        steps = "; ".join(outcome.safe_state)
+        raise ProbeNotOnPin(collector.wrong_node + (f" Safe state: {steps}." if steps else ""))
     if outcome.status != "complete":
         raise MeasurementFailure(
             f"calibration {outcome.status} after {len(collector.rows)} of "
@@ -736,11 +772,14 @@ def run_calibration(
             + " refused by the feasibility check: a run point at the plan's end may fall "
             "just outside the span and stay uncorrected"
         )
-    if not bench.is_simulated:
-        notes.append(
-            "de-energise the bench before moving the output channel's probe back to the "
-            "device's output"
+    notes.append(
+        "move the output channel's probe back to the device's output before the next run"
+        + (
+            " (the simulated bench has moved it back itself)"
+            if bench.is_simulated
+            else "; de-energise the bench before moving it"
         )
+    )
     meta = {
         "format": FORMAT,
         "schema_version": SCHEMA_VERSION,

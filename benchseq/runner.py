@@ -225,7 +225,7 @@ def run_prepared(
         path,
         meta,
         POINT_COLUMNS,
-        force=force,
+        force=force or is_pointless_abort(path),
         truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,
     )
     outcome = _run_on_bench(
@@ -243,6 +243,20 @@ def run_prepared(
         record_identities=True,
     )
     return outcome, path
+
+
+def is_pointless_abort(path: Path) -> bool:
+    """True for a result file of a run that aborted before storing any point (its bench
+    could not be opened, say): nothing to keep or resume, so a new run may replace it
+    without --force. Any other file, or one that cannot be read, is False."""
+    from benchseq.store import read_meta, read_results
+
+    if not Path(path).is_file():
+        return False
+    try:
+        return read_meta(path).get("status") == "aborted" and len(read_results(path)) == 0
+    except Exception:  # unreadable: let the writer refuse it as any existing file
+        return False
 
 
 def _run_on_bench(

@@ -7,8 +7,8 @@ import json
 import math
 from typing import Any
 
-from benchseq.report.model import Source
 from benchseq.records import SHOWN_COVERAGE_FACTOR
+from benchseq.report.model import Source
 from benchseq.units import format_si
 
 Section = tuple[str, list[tuple[str, str]]]
