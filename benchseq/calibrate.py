@@ -576,9 +576,12 @@ def probe_problem(row: Mapping[str, Any], first: bool = True) -> str | None:
 
 
 def guard_factor(plan: Plan) -> float:
-    """How far beyond the plan's ends the sweep goes, so that a run's coherent frequency
-    (moved by up to 1/(2J), J ≥ min_cycles: benchseq.analysis.capture) stays inside the span."""
-    return 1.0 + 1.0 / (2.0 * max(plan.capture.min_cycles, 1)) + 0.01
+    """How far beyond the plan's ends the sweep goes, so that a run's frequency stays inside
+    the span: a run moves it by at most the plan's frequency_tolerance
+    (benchseq.analysis.capture); the guard keeps a wider margin of 1/(2·min_cycles) + 1 %,
+    which also holds the frequency the fit refines on the pin."""
+    rules = plan.capture
+    return 1.0 + max(rules.frequency_tolerance, 1.0 / (2.0 * max(rules.min_cycles, 1))) + 0.01
 
 
 def calibration_plan(plan: Plan, frequencies: np.ndarray | None = None) -> Plan:
