@@ -36,7 +36,7 @@ import numpy as np
 import pandas as pd
 
 from benchseq.errors import BadInput
-from benchseq.records import input_referred
+from benchseq.records import SHOWN_COVERAGE_FACTOR, input_referred
 
 COVERAGE_K = 3.0  # as benchseq.replay: many points are compared at once
 
@@ -435,14 +435,22 @@ def render_reanalysis(outcome: ReanalysisOutcome) -> Any:
     ]
     head.extend(f"note: {escape(n)}" for n in outcome.notes)
     table = Table(title="stored vs re-analysed", title_justify="left")
-    for name in ("#", "frequency", "stored", "re-analysed", "difference", "verdict"):
+    k = SHOWN_COVERAGE_FACTOR
+    for name in (
+        "#",
+        "frequency",
+        f"stored (± U, k = {k:g})",
+        f"re-analysed (± U, k = {k:g})",
+        "difference",
+        "verdict",
+    ):
         table.add_column(name, justify="left" if name == "verdict" else "right")
     for r in outcome.comparison.to_dict(orient="records"):
 
         def side(value: float, u: float, bound: float, is_bound: bool) -> str:
             if is_bound:
                 return f"≥ {bound:.1f} dB"
-            return f"{value:.2f} ± {u:.2f} dB" if math.isfinite(value) else ""
+            return f"{value:.2f} ± {k * u:.2f} dB" if math.isfinite(value) else ""
 
         table.add_row(
             str(r["point_id"]),
