@@ -21,6 +21,11 @@ V_RMS = "V (rms)"
 STORED_COVERAGE_FACTOR = 1.0
 SHOWN_COVERAGE_FACTOR = 2.0
 DB_STANDARD = "dB (k=1)"
+COVERAGE_NOTE = (
+    "stored uncertainties are standard uncertainties u (coverage factor k = 1); every ± "
+    "shown is the expanded uncertainty U = 2u (k = 2, about 95 %); the plan's "
+    "target_uncertainty is a standard uncertainty (k = 1)"
+)
 SIGN_CONVENTION = (
     "ratio = V_out / V_pin (complex, peak phasors); rejection_db = 20*log10(|V_pin|/|V_out|), "
     "positive when the device attenuates ripple"

@@ -14,7 +14,14 @@ from benchseq import __version__
 from benchseq.bench import Bench, load_bench, parse_bench
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.plan import Plan, load_plan, parse_plan
-from benchseq.records import POINT_COLUMNS, SCHEMA_VERSION, SIGN_CONVENTION, TRUTH_COLUMNS
+from benchseq.records import (
+    COVERAGE_NOTE,
+    POINT_COLUMNS,
+    SCHEMA_VERSION,
+    SIGN_CONVENTION,
+    STORED_COVERAGE_FACTOR,
+    TRUTH_COLUMNS,
+)
 from benchseq.sequencer import EventSink, RunOutcome, Sequencer
 from benchseq.stopping import StopControl
 from benchseq.tomlfile import parse_toml_text
@@ -147,6 +154,11 @@ def run_meta(
         "point_count": report.point_count,
         "planned_bench_time_s": report.estimated_time_s,
         "sign_convention": SIGN_CONVENTION,
+        "coverage_factor": STORED_COVERAGE_FACTOR,
+        "coverage": COVERAGE_NOTE,
+        "target_uncertainty_db": plan.capture.target_uncertainty_db,
+        "frequency_tolerance": plan.capture.frequency_tolerance,
+        "device_gain_db": plan.device.gain_db,
         "injector": dataclasses.asdict(bench.injector),
         "generator": dataclasses.asdict(bench.generator),
         "pin_load": dataclasses.asdict(bench.pin),

@@ -10,6 +10,7 @@ and §6.3.3, clause numbers from memory); u is the standard uncertainty (GUM §2
 
 from __future__ import annotations
 
+import json
 import math
 import re
 import socket
@@ -147,6 +148,9 @@ def test_every_plus_minus_is_k2_and_the_target_is_k1(
     with h5py.File(out, "r") as h5:
         attrs = h5["points/uncertainty_db"].attrs
         assert attrs["unit"] == "dB (k=1)" and "k = 1" in attrs["description"]
+        assert h5.attrs["coverage_factor"] == 1.0 and "U = 2u" in h5.attrs["coverage"]
+    code, printed, _ = _cli(capsys, "show", str(out), "--json")
+    assert code == 0 and json.loads(printed)["units"]["uncertainty_db"] == "dB (k=1)"
     # show: U = 2u, labelled k = 2
     code, printed, _ = _cli(capsys, "show", str(out))
     assert code == 0 and "± U (k = 2)" in _plain(printed)
