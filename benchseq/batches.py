@@ -3,7 +3,7 @@
 The sequencer plans a point's capture from what the last point showed (its noise density at
 f split into a part that scales with the sample interval and a coloured part that does not,
 and its rejection), then takes it in batches of triggered records of ONE timebase (sample
-interval, record length, generator frequency J/T): the first batch, about half the
+interval, record length, generator frequency): the first batch, about half the
 prediction, ranges both channels, shows the pin ripple to trim and the noise this point
 really has; top-ups add as many records as the pooled records show are still needed.
 Records of one timebase on one trigger average sample-wise, so the pool is a weighted sum

@@ -53,6 +53,7 @@ from benchseq.coupling import high_pass
 from benchseq.errors import BadInput, MeasurementFailure
 from benchseq.journal import fsync_directory, fsync_fd
 from benchseq.plan import Plan, load_plan, parse_plan
+from benchseq.records import SHOWN_COVERAGE_FACTOR
 from benchseq.store import OutputExists  # also switches HDF5 file locking off before h5py
 from benchseq.tomlfile import parse_toml_text
 
@@ -62,6 +63,7 @@ FORMAT = "benchseq-calibration"
 SCHEMA_VERSION = 1
 CONDITIONS_FLAG = "calibration_conditions"  # the per-point flag (benchseq.records.FLAG_TEXT)
 TARGET_UNCERTAINTY_DB = 0.003  # the sweep aims at this per point (k = 1), tighter than runs
+SHOWN_K = SHOWN_COVERAGE_FACTOR  # the table shows U = k·u; the file stores u (k = 1)
 MAX_CHANNEL_MISMATCH_DB = 6.0  # more than this between two probes on one node: wiring fault
 DEFAULT_PLAN_SOURCE = "benchseq:default-calibration-sweep"
 # Without --plan (simulated benches only): the frequencies and levels of plans/demo.toml.
@@ -87,6 +89,10 @@ class CalibrationExists(OutputExists):
     """The calibration file exists and overwriting was not asked for."""
 
 
+class ProbeNotOnPin(MeasurementFailure):
+    """A calibration point shows the two probes on different nodes: the run stopped there."""
+
+
 class CalibrationCancelled(BadInput):
     """The operator did not confirm the probes on the pin: nothing was switched on."""
 
@@ -106,7 +112,7 @@ TABLE_COLUMNS: tuple[TableColumn, ...] = (
     TableColumn("gain_db", "dB", "20*log10(|H_cal|)"),
     TableColumn("phase_deg", "deg", "arg(H_cal), output channel minus pin channel"),
     TableColumn("uncertainty", "", "relative standard uncertainty of |H_cal| (k = 1)"),
-    TableColumn("phase_uncertainty_deg", "deg", "standard uncertainty of arg(H_cal) (k = 1)"),
+    TableColumn("phase_uncertainty_deg", "deg (k=1)", "standard uncertainty of arg(H_cal) (k = 1)"),
     TableColumn(
         "uncertainty_fit",
         "",
@@ -117,11 +123,13 @@ TABLE_COLUMNS: tuple[TableColumn, ...] = (
         "",
         "relative uncertainty of |H_cal| from both channels' quantiser bounds (rectangular)",
     ),
-    TableColumn("pin_range", "V", "pin channel full-scale range at the probe tip, peak to peak"),
     TableColumn(
-        "output_range", "V", "output channel full-scale range at the probe tip, peak to peak"
+        "pin_range", "V (pp)", "pin channel full-scale range at the probe tip, peak to peak"
     ),
-    TableColumn("pin_amplitude", "V", "ripple amplitude at the pin during the point, peak"),
+    TableColumn(
+        "output_range", "V (pp)", "output channel full-scale range at the probe tip, peak to peak"
+    ),
+    TableColumn("pin_amplitude", "V (peak)", "ripple amplitude at the pin during the point, peak"),
     TableColumn("bench_time", "s", "bench time spent on the point"),
     TableColumn("flags", "", "the sequencer's flags of the point (space-separated)"),
 )
@@ -505,6 +513,7 @@ class _Collector:
         self._last: dict[str, Any] | None = None
         self.status = "running"
         self.reason = ""
+        self.wrong_node: str | None = None  # why the run stopped at a point (probe placement)
 
     @property
     def stored_ids(self) -> set[int]:
@@ -520,6 +529,10 @@ class _Collector:
         truth: Mapping[str, Any] | None = None,
         waveforms: Any = None,
     ) -> None:
+        problem = probe_problem(row, first=not self.rows)
+        if problem is not None:  # stop at once: the sequencer ends in the safe state
+            self.wrong_node = problem
+            raise ProbeNotOnPin(problem)
         self.rows[int(point_id)] = dict(row)
         self._last = dict(row)
 
@@ -533,10 +546,37 @@ class _Collector:
         self.meta.update(items)
 
 
+def probe_problem(row: Mapping[str, Any], first: bool = True) -> str | None:
+    """Why one calibration point shows the probes on different nodes, or None: the output
+    channel did not see the pin's ripple, or the channels differ by more than
+    MAX_CHANNEL_MISMATCH_DB (the output probe left on the device's output reads its ripple,
+    the rejection lower)."""
+    where = f"{float(row.get('frequency_planned', math.nan)):.6g} Hz"
+    where = f"its first point ({where})" if first else where
+    ratio = complex(row.get("ratio", complex(math.nan, 0)))
+    if bool(row.get("is_bound")) or not np.isfinite(ratio) or ratio == 0:
+        return (
+            f"calibration stopped at {where}: the output channel did not see "
+            "the pin's ripple; is its probe on the pin? Nothing was written."
+        )
+    gain_db = 20.0 * math.log10(abs(ratio))
+    if abs(gain_db) > MAX_CHANNEL_MISMATCH_DB:
+        return (
+            f"calibration stopped at {where}: the two channels differ by {gain_db:+.1f} dB with "
+            f"both probes meant to be on one node (more than {MAX_CHANNEL_MISMATCH_DB:g} dB): "
+            "check that the output channel's probe is on the supply pin, not the device's "
+            "output, and that the bench file's probe attenuations are right. Nothing was written."
+        )
+    return None
+
+
 def guard_factor(plan: Plan) -> float:
-    """How far beyond the plan's ends the sweep goes, so that a run's coherent frequency
-    (moved by up to 1/(2J), J ≥ min_cycles: benchseq.analysis.capture) stays inside the span."""
-    return 1.0 + 1.0 / (2.0 * max(plan.capture.min_cycles, 1)) + 0.01
+    """How far beyond the plan's ends the sweep goes, so that a run's frequency stays inside
+    the span: a run moves it by at most the plan's frequency_tolerance
+    (benchseq.analysis.capture); the guard keeps a wider margin of 1/(2·min_cycles) + 1 %,
+    which also holds the frequency the fit refines on the pin."""
+    rules = plan.capture
+    return 1.0 + max(rules.frequency_tolerance, 1.0 / (2.0 * max(rules.min_cycles, 1))) + 0.01
 
 
 def calibration_plan(plan: Plan, frequencies: np.ndarray | None = None) -> Plan:
@@ -696,6 +736,9 @@ def run_calibration(
             simulator.connect_probe(bench.scope.output.channel, "output")
     finally:
         session.close()
+    if collector.wrong_node is not None:
+        steps = "; ".join(outcome.safe_state)
+        raise ProbeNotOnPin(collector.wrong_node + (f" Safe state: {steps}." if steps else ""))
     if outcome.status != "complete" or outcome.not_safe:  # the reason names what is not safe
         raise MeasurementFailure(
             f"calibration {outcome.status} after {len(collector.rows)} of "
@@ -728,11 +771,14 @@ def run_calibration(
             + " refused by the feasibility check: a run point at the plan's end may fall "
             "just outside the span and stay uncorrected"
         )
-    if not bench.is_simulated:
-        notes.append(
-            "de-energise the bench before moving the output channel's probe back to the "
-            "device's output"
+    notes.append(
+        "move the output channel's probe back to the device's output before the next run"
+        + (
+            " (the simulated bench has moved it back itself)"
+            if bench.is_simulated
+            else "; de-energise the bench before moving it"
         )
+    )
     meta = {
         "format": FORMAT,
         "schema_version": SCHEMA_VERSION,
@@ -858,9 +904,9 @@ def render_calibration(result: CalibrationResult | LoadedCalibration) -> Any:
     for name in (
         "frequency",
         "gain dB",
-        "± dB",
+        f"± dB (k={SHOWN_K:g})",
         "phase °",
-        "± °",
+        f"± ° (k={SHOWN_K:g})",
         "pin range",
         "out range",
         "flags",
@@ -870,9 +916,9 @@ def render_calibration(result: CalibrationResult | LoadedCalibration) -> Any:
         table.add_row(
             format_si(float(cols["frequency"][i]), "Hz", 4),
             f"{gain[i]:+.4f}",
-            f"{DB_PER_NEPER * float(cols['uncertainty'][i]):.4f}",
+            f"{SHOWN_K * DB_PER_NEPER * float(cols['uncertainty'][i]):.4f}",
             f"{phase[i]:+.3f}",
-            f"{float(cols['phase_uncertainty_deg'][i]):.3f}",
+            f"{SHOWN_K * float(cols['phase_uncertainty_deg'][i]):.3f}",
             format_si(float(cols["pin_range"][i]), "Vpp", 3),
             format_si(float(cols["output_range"][i]), "Vpp", 3),
             escape(str(cols["flags"][i])),

@@ -359,6 +359,7 @@ def cmd_show(args: argparse.Namespace) -> int:
             {
                 "meta": {k: v for k, v in meta.items() if not k.endswith("_text")},
                 "mask": verdict.to_dict() if verdict is not None else None,
+                "units": dict(frame.attrs.get("units", {})),
                 "points": frame.to_dict(orient="records"),
             }
         )

@@ -14,15 +14,44 @@ from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 from rich.table import Table
 
+from benchseq.records import SHOWN_COVERAGE_FACTOR
 from benchseq.units import format_si
 
 
-def rejection_text(row: dict[str, Any]) -> str:
-    """'62.31 dB' for a value, '≥ 91.8 dB' for a lower bound."""
+def rejection_text(row: dict[str, Any], prefix: str = "") -> str:
+    """'62.31 dB' for a value, '≥ 91.8 dB' for a lower bound (``prefix`` picks the
+    input-referred columns: "" or "_input")."""
     if row.get("is_bound"):
-        return f"≥ {row['bound_db']:.1f} dB"
-    value = row.get("rejection_db", float("nan"))
+        bound = row.get(f"bound{prefix}_db", float("nan"))
+        return f"≥ {bound:.1f} dB" if math.isfinite(bound) else "—"
+    value = row.get(f"rejection{prefix}_db", float("nan"))
     return f"{value:.2f} dB" if math.isfinite(value) else "—"
+
+
+def expanded_text(u: float) -> str:
+    """U = k·u (k = SHOWN_COVERAGE_FACTOR) from a standard uncertainty u in dB."""
+    if not math.isfinite(u):
+        return ""
+    big_u = SHOWN_COVERAGE_FACTOR * u
+    return f"{big_u:.2f} dB" if big_u >= 0.005 else f"{big_u:.1g} dB"
+
+
+def frequency_text(row: dict[str, Any]) -> str:
+    """The planned frequency; the generator's when it was set elsewhere, with the move."""
+    planned = float(row.get("frequency_planned", row["frequency"]))
+    actual = float(row["frequency"])
+    text = format_si(planned, "Hz", 4)
+    if math.isfinite(planned) and planned > 0 and actual != planned:
+        text += f" ({(actual / planned - 1) * 1e6:+.0f} ppm)"
+    return text
+
+
+def _has_input_referred(rows: list[dict[str, Any]]) -> bool:
+    return any(
+        math.isfinite(float(r.get(name, float("nan"))))
+        for r in rows
+        for name in ("rejection_input_db", "bound_input_db")
+    )
 
 
 def duration_text(seconds: float) -> str:
@@ -37,26 +66,34 @@ def duration_text(seconds: float) -> str:
 
 
 def points_table(rows: list[dict[str, Any]], title: str = "latest points") -> Table:
+    """The points: planned frequency (with the generator's move in ppm, when moved towards
+    a coherent capture), rejection with U = k·u (k = 2), and input-referred rejection
+    when the plan declares the device's gain."""
+    inputs = _has_input_referred(rows)
     table = Table(title=title, title_justify="left", expand=False)
     table.add_column("#", justify="right")
-    table.add_column("frequency", justify="right")
+    table.add_column("frequency (planned)", justify="right")
     table.add_column("DC", justify="right")
     table.add_column("pin ripple", justify="right")
-    table.add_column("rejection", justify="right")
-    table.add_column("± (1σ)", justify="right")
+    table.add_column("rejection (output-referred)" if inputs else "rejection", justify="right")
+    table.add_column(f"± U (k = {SHOWN_COVERAGE_FACTOR:g})", justify="right")
+    if inputs:
+        table.add_column("rejection (input-referred)", justify="right")
     table.add_column("flags")
     for row in rows:
         pin = abs(complex(row["pin"]))
-        u = row.get("uncertainty_db", float("nan"))
-        table.add_row(
+        cells = [
             str(row["point_id"]),
-            format_si(row["frequency"], "Hz", 4),
+            frequency_text(row),
             f"{row['dc_level']:.3g} V",
             format_si(2 * pin, "Vpp", 3),
             rejection_text(row),
-            (f"{u:.2f} dB" if u >= 0.005 else f"{u:.1g} dB") if math.isfinite(u) else "",
-            escape(str(row.get("flags", ""))),
-        )
+            expanded_text(float(row.get("uncertainty_db", float("nan")))),
+        ]
+        if inputs:
+            cells.append(rejection_text(row, "_input"))
+        cells.append(escape(str(row.get("flags", ""))))
+        table.add_row(*cells)
     return table
 
 

@@ -61,8 +61,9 @@ class CaptureRules:
 
     min_cycles: int = 10
     max_time_s: float = 10.0
-    target_uncertainty_db: float = 0.1
+    target_uncertainty_db: float = 0.1  # standard uncertainty (k = 1) of rejection_db
     max_averages: int = 64
+    frequency_tolerance: float = 1e-3  # relative move allowed towards a coherent frequency
 
 
 @dataclass(frozen=True)
@@ -73,6 +74,12 @@ class DeviceLimits:
     min_operating_v: float
     max_load_current: float | None = None
     name: str = ""
+    gain_db: float | None = None  # the device's closed-loop (noise) gain, input to output
+
+    @property
+    def gain_ratio(self) -> float | None:
+        """The declared gain as a voltage ratio (V/V), None when not declared."""
+        return None if self.gain_db is None else 10 ** (self.gain_db / 20.0)
 
     def __str__(self) -> str:
         return self.name
@@ -553,7 +560,7 @@ def _band(band: Section) -> list[float]:
 
 # -- the other tables ----------------------------------------------------------------------
 def _device(section: Section) -> DeviceLimits:
-    _only(section, ("name", "absolute_max", "min_operating", "max_load"))
+    _only(section, ("name", "absolute_max", "min_operating", "max_load", "gain"))
     name = section.text("name", default="")
     absolute_max = section.quantity("absolute_max", "V", within=PLAN_RANGES["device.absolute_max"])
     min_operating = section.quantity(
@@ -568,8 +575,34 @@ def _device(section: Section) -> DeviceLimits:
     max_load = section.quantity(
         "max_load", "A", default=None, within=PLAN_RANGES["device.max_load"]
     )
+    gain = _gain_db(section, "gain", section.raw("gain", None))
     section.done()
-    return DeviceLimits(absolute_max, min_operating, max_load, name)
+    return DeviceLimits(absolute_max, min_operating, max_load, name, gain)
+
+
+def _gain_db(section: Section, key: str, value: Any) -> float | None:
+    """The device's gain as written: '20 dB', a ratio (10, '10 V/V'); None when absent."""
+    if value is None:
+        return None
+    text = value.strip() if isinstance(value, str) else None
+    if text is not None and text.lower().endswith("db"):
+        gain = section.parse_value(text, "dB", key)
+        if abs(gain) > 200:
+            raise section.error(key, f"{value!r} is not a plausible gain (within ±200 dB)")
+        return gain
+    if text is not None and text.endswith("V/V"):
+        text = text[:-3].strip()
+    try:
+        ratio = float(text if text is not None else value) if not isinstance(value, bool) else -1
+    except (TypeError, ValueError):
+        ratio = math.nan
+    if not (math.isfinite(ratio) and 1e-10 <= ratio <= 1e10):
+        raise section.error(
+            key,
+            f"expected the device's gain as '20 dB' or a positive ratio such as 10 or "
+            f"'10 V/V', got {value!r}",
+        )
+    return 20.0 * math.log10(ratio)
 
 
 def _settle(section: Section | None) -> SettleRule:
@@ -600,7 +633,11 @@ def _settle(section: Section | None) -> SettleRule:
 def _capture(section: Section | None) -> CaptureRules:
     if section is None:
         return CaptureRules()
-    _only(section, ("min_cycles", "max_time", "target_uncertainty", "max_averages"))
+    _only(
+        section,
+        ("min_cycles", "max_time", "target_uncertainty", "max_averages", "frequency_tolerance"),
+    )
+    tolerance = section.raw("frequency_tolerance", None)
     rules = CaptureRules(
         min_cycles=section.integer("min_cycles", default=10, minimum=1, maximum=1_000_000),
         max_time_s=section.quantity(
@@ -614,9 +651,26 @@ def _capture(section: Section | None) -> CaptureRules:
             within=PLAN_RANGES["capture.target_uncertainty"],
         ),
         max_averages=section.integer("max_averages", default=64, minimum=1, maximum=1_000_000),
+        frequency_tolerance=(
+            1e-3 if tolerance is None else _tolerance(section, "frequency_tolerance", tolerance)
+        ),
     )
     section.done()
     return rules
+
+
+def _tolerance(section: Section, key: str, value: Any) -> float:
+    """'0.1 %' -> 0.001; '0 %' keeps every frequency exactly as planned; at most 10 %."""
+    text = value.strip() if isinstance(value, str) else ""
+    try:
+        number = float(text[:-1]) if text.endswith("%") else math.nan
+    except ValueError:
+        number = math.nan
+    if not (math.isfinite(number) and 0 <= number <= 10):
+        raise section.error(
+            key, f"expected a percentage from '0 %' to '10 %' such as '0.1 %', got {value!r}"
+        )
+    return number / 100.0
 
 
 def _action(section: Section, key: str, value: Any) -> str:

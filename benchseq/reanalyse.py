@@ -36,6 +36,7 @@ import numpy as np
 import pandas as pd
 
 from benchseq.errors import BadInput
+from benchseq.records import SHOWN_COVERAGE_FACTOR, input_referred
 
 COVERAGE_K = 3.0  # as benchseq.replay: many points are compared at once
 
@@ -177,6 +178,8 @@ def reanalyse_row(
         pin_model_ratio_db=model_db,
         thd=result.thd,
     )
+    if "rejection_input_db" in row:
+        new.update(input_referred(new["rejection_db"], new["bound_db"], plan.device.gain_db))
     flags = [f for f in str(row.get("flags", "")).split() if not _recomputed(f)]
     target = float(row["ripple_target"])
     if target > 0 and abs(pin_amplitude / target - 1.0) > 0.05:
@@ -296,8 +299,8 @@ def reanalyse(
     notes = []
     if len(rows) > len(usable):
         notes.append(f"{len(rows) - len(usable)} point(s) had no waveforms and were copied")
-    if any("calibration" in k for k in stored.meta) and calibration is None:
-        notes.append("the stored run names a calibration; it was not re-applied")
+    if calibration is None and stored.meta.get("calibration"):
+        notes.append("the stored run applied a calibration; it was not re-applied here")
     return ReanalysisOutcome(
         path=target,
         source=path,
@@ -446,14 +449,22 @@ def render_reanalysis(outcome: ReanalysisOutcome) -> Any:
     ]
     head.extend(f"note: {escape(n)}" for n in outcome.notes)
     table = Table(title="stored vs re-analysed", title_justify="left")
-    for name in ("#", "frequency", "stored", "re-analysed", "difference", "verdict"):
+    k = SHOWN_COVERAGE_FACTOR
+    for name in (
+        "#",
+        "frequency",
+        f"stored (± U, k = {k:g})",
+        f"re-analysed (± U, k = {k:g})",
+        "difference",
+        "verdict",
+    ):
         table.add_column(name, justify="left" if name == "verdict" else "right")
     for r in outcome.comparison.to_dict(orient="records"):
 
         def side(value: float, u: float, bound: float, is_bound: bool) -> str:
             if is_bound:
                 return f"≥ {bound:.1f} dB"
-            return f"{value:.2f} ± {u:.2f} dB" if math.isfinite(value) else ""
+            return f"{value:.2f} ± {k * u:.2f} dB" if math.isfinite(value) else ""
 
         table.add_row(
             str(r["point_id"]),

@@ -42,6 +42,7 @@ import pandas as pd
 from benchseq.bench import Bench, InstrumentSpec, parse_bench
 from benchseq.errors import BadInput
 from benchseq.plan import Plan, load_plan, parse_plan
+from benchseq.records import SHOWN_COVERAGE_FACTOR
 from benchseq.sequencer import EventSink, RunOutcome
 from benchseq.stopping import StopControl
 from benchseq.tomlfile import parse_toml_text
@@ -547,9 +548,11 @@ def summarise(comparison: pd.DataFrame) -> dict[str, Any]:
 
 # -- rendering -----------------------------------------------------------------------------
 def _db(value: float, u: float = math.nan) -> str:
+    """'62.31 ± 0.20 dB': the value with its expanded uncertainty U = k·u (k = 2)."""
     if not math.isfinite(value):
         return ""
-    return f"{value:.2f} ± {u:.2f} dB" if math.isfinite(u) else f"{value:.2f} dB"
+    big_u = SHOWN_COVERAGE_FACTOR * u
+    return f"{value:.2f} ± {big_u:.2f} dB" if math.isfinite(u) else f"{value:.2f} dB"
 
 
 def _side(value: float, u: float, bound: float, is_bound: bool) -> str:
@@ -610,8 +613,8 @@ def render_comparison(outcome: ReplayOutcome) -> Any:
         ("#", "right"),
         ("frequency", "right"),
         ("operating point", "right"),
-        ("stored", "right"),
-        ("replayed", "right"),
+        (f"stored (± U, k = {SHOWN_COVERAGE_FACTOR:g})", "right"),
+        (f"replayed (± U, k = {SHOWN_COVERAGE_FACTOR:g})", "right"),
         ("difference", "right"),
         (f"k·u_c (k={k:g})", "right"),
         ("verdict", "left"),

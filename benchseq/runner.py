@@ -16,7 +16,14 @@ from benchseq.bench import Bench, load_bench, parse_bench
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.plan import Plan, load_plan, parse_plan
 from benchseq.preflight import preflight
-from benchseq.records import POINT_COLUMNS, SCHEMA_VERSION, SIGN_CONVENTION, TRUTH_COLUMNS
+from benchseq.records import (
+    COVERAGE_NOTE,
+    POINT_COLUMNS,
+    SCHEMA_VERSION,
+    SIGN_CONVENTION,
+    STORED_COVERAGE_FACTOR,
+    TRUTH_COLUMNS,
+)
 from benchseq.sequencer import EventSink, RunOutcome, Sequencer
 from benchseq.stopping import StopControl
 from benchseq.tomlfile import parse_toml_text
@@ -162,6 +169,11 @@ def run_meta(
         "point_count": report.point_count,
         "planned_bench_time_s": report.estimated_time_s,
         "sign_convention": SIGN_CONVENTION,
+        "coverage_factor": STORED_COVERAGE_FACTOR,
+        "coverage": COVERAGE_NOTE,
+        "target_uncertainty_db": plan.capture.target_uncertainty_db,
+        "frequency_tolerance": plan.capture.frequency_tolerance,
+        "device_gain_db": plan.device.gain_db,
         "injector": dataclasses.asdict(bench.injector),
         "generator": dataclasses.asdict(bench.generator),
         "pin_load": dataclasses.asdict(bench.pin),
@@ -242,7 +254,7 @@ def run_prepared(
         path,
         meta,
         POINT_COLUMNS,
-        force=force,
+        force=force or is_pointless_abort(path),
         truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,
     )
     outcome = _run_on_bench(
@@ -260,6 +272,20 @@ def run_prepared(
         record_identities=True,
     )
     return outcome, path
+
+
+def is_pointless_abort(path: Path) -> bool:
+    """True for a result file of a run that aborted before storing any point (its bench
+    could not be opened, say): nothing to keep or resume, so a new run may replace it
+    without --force. Any other file, or one that cannot be read, is False."""
+    from benchseq.store import read_meta, read_results
+
+    if not Path(path).is_file():
+        return False
+    try:
+        return read_meta(path).get("status") == "aborted" and len(read_results(path)) == 0
+    except Exception:  # unreadable: let the writer refuse it as any existing file
+        return False
 
 
 def _run_on_bench(

@@ -21,7 +21,7 @@ from benchseq.bench import Bench
 from benchseq.errors import BenchseqError, MeasurementFailure
 from benchseq.injector import InjectorModel
 from benchseq.plan import Plan, Sweep
-from benchseq.records import POINT_COLUMNS
+from benchseq.records import POINT_COLUMNS, input_referred
 from benchseq.stopping import AbandonPoint, StopControl
 
 PIN_TOLERANCE = 0.02  # relative: trim the generator when the pin ripple is further off than this
@@ -149,6 +149,7 @@ class Sequencer:
         )
         self._pool: batches.Pool | None = None  # the last point's pooled records
         self._ac_corner = 0.0  # Hz, the scope's AC-coupling corner once measured (0: none)
+        self._max_shift = max_frequency_shift(np.asarray(self.sweep.frequency, dtype=float))
         # what the bench is doing now ("power-up", "operating point", "settle", "capture",
         # "trim", "top-up", "floor"): for progress displays and the run benchmarks
         self.activity = "idle"
@@ -569,6 +570,11 @@ class Sequencer:
             rules.min_cycles,
             rules.max_time_s,
         )
+        # measured at the planned frequency; moved to a coherent J/T only within the plan's
+        # tolerance and less than half-way to the nearest other planned frequency
+        plan = analysis.at_frequency(
+            plan, frequency, rules.frequency_tolerance, float(self._max_shift[i])
+        )
         actual_frequency = s.generator.set_frequency(plan.frequency)
         probe = batches.batch(
             plan, batches.probe_records(plan), timebase.max_averages, timebase.rearm_time
@@ -673,6 +679,8 @@ class Sequencer:
             )
             if room < granule:  # max_time used (to within whole scope averages per read)
                 flags.append("bound_time_limited")
+        if abs(actual_frequency - frequency) > rules.frequency_tolerance * frequency * (1 + 1e-9):
+            flags.append("frequency_off_plan")
         if capped or (
             not result.rejection.is_bound
             and result.rejection.uncertainty_db > rules.target_uncertainty_db
@@ -709,6 +717,11 @@ class Sequencer:
             "rejection_db": rej.rejection_db if not rej.is_bound else float("nan"),
             "uncertainty_db": rej.uncertainty_db if not rej.is_bound else float("nan"),
             "bound_db": rej.bound_db if rej.is_bound else float("nan"),
+            **input_referred(
+                rej.rejection_db if not rej.is_bound else float("nan"),
+                rej.bound_db if rej.is_bound else float("nan"),
+                self.plan.device.gain_db,
+            ),
             "is_bound": bool(rej.is_bound),
             "match_uncertainty": result.match_uncertainty,
             "pin_model": pin_model,
@@ -1079,6 +1092,17 @@ def _codes(waveform: Any, full_scale: float, ranges: list[float]) -> analysis.Ch
 
 def _unix() -> float:
     return time.time()
+
+
+def max_frequency_shift(frequencies: np.ndarray) -> np.ndarray:
+    """Per point, the largest move (Hz) that keeps its planned frequency distinct from every
+    other: 0.45 of the gap to the nearest different planned frequency (inf for one only)."""
+    unique = np.unique(frequencies)
+    if unique.size < 2:
+        return np.full(frequencies.shape, np.inf)
+    gaps = np.diff(unique)
+    nearest = np.minimum(np.append(gaps, np.inf), np.insert(gaps, 0, np.inf))
+    return 0.45 * nearest[np.searchsorted(unique, frequencies)]
 
 
 def with_repeats(plan: Plan) -> tuple[Sweep, np.ndarray, np.ndarray]:

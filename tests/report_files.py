@@ -74,6 +74,8 @@ def row(point_id: int, frequency: float, rejection_db: float, **values: Any) -> 
         "rejection_db": math.nan if is_bound else rejection_db,
         "uncertainty_db": math.nan if is_bound else 0.1,
         "bound_db": bound,
+        "rejection_input_db": math.nan,
+        "bound_input_db": math.nan,
         "is_bound": is_bound,
         "match_uncertainty": 0.0135,
         "pin_model": pin,

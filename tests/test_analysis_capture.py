@@ -1,6 +1,7 @@
 """Capture planning against worked examples from the project's own planning experiments
 (pin 100 mV, noise 100 µV, target 0.1 dB, 10 cycles minimum) and the GUM/Cramér–Rao formula behind them:
-N ≈ 150.9·σ²/(A²·u_dB²), σ_A² ≈ S/T, coherence f' = J/T with a shift ≤ 1/(2J) (IEEE Std 1241).
+N ≈ 150.9·σ²/(A²·u_dB²), σ_A² ≈ S/T, coherence f' = J/T with a shift ≤ 1/(2J) (IEEE Std 1241)
+taken only within the plan's frequency tolerance.
 
 The examples' noise, 100 µV, is taken as white over the 20 MHz bandwidth limit of the
 scope profile (drivers/profiles/scpi-scope.toml); with that reading the 1 kHz figure,
@@ -13,6 +14,7 @@ import math
 import tomllib
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from benchseq.analysis import AnalysisError, ScopeTimebase, plan_capture
@@ -79,15 +81,63 @@ def test_white_per_sample_noise_follows_the_sample_count_formula() -> None:
     assert need <= plan.record_length < need + 1000
 
 
-def test_generator_is_nudged_to_whole_cycles(scope: ScopeTimebase) -> None:
-    """f' = J/T with J whole, relative shift |f' − f|/f' = |J − fT|/J ≤ 1/(2J) (IEEE Std 1241
-    coherent sampling)."""
-    for f in (13.7, 1234.5, 98765.0, 333_333.0):
+def test_coherent_move_only_within_the_tolerance(scope: ScopeTimebase) -> None:
+    """With a tolerance wide enough, f' = J/T, J whole, relative shift |f' − f|/f' ≤ 1/(2J)
+    (IEEE Std 1241 coherent sampling); with the default 0.1 % the frequency moves only when
+    J/T lies that close, else the planned frequency is kept (the three-parameter fit at a
+    known frequency needs no whole cycles: IEEE Std 1057, 4.1.3.1)."""
+    for f in (13.7, 1234.5, 98765.0, 333_333.0, 531_800.0, 46.4159):
+        wide = _plan(scope, f, 60.0, frequency_tolerance=1.0)
+        duration = wide.record_length * wide.sample_interval
+        assert wide.coherent
+        assert wide.frequency * duration == pytest.approx(wide.cycles, rel=1e-12)
+        assert wide.cycles == round(wide.cycles) >= 10
+        assert abs(f / wide.frequency - 1) <= 1 / (2 * wide.cycles) + 1e-15
         plan = _plan(scope, f, 60.0)
+        assert abs(plan.frequency / f - 1) <= 1e-3 * (1 + 1e-12)
+        assert plan.requested_frequency == f
         duration = plan.record_length * plan.sample_interval
-        assert plan.frequency * duration == pytest.approx(plan.cycles, rel=1e-12)
-        assert abs(f / plan.frequency - 1) <= 1 / (2 * plan.cycles) + 1e-15
-        assert plan.cycles >= 10
+        if plan.coherent:
+            assert plan.frequency * duration == pytest.approx(round(plan.cycles), rel=1e-12)
+        else:
+            assert plan.frequency == f and plan.cycles == pytest.approx(f * duration)
+        exact = _plan(scope, f, 60.0, frequency_tolerance=0.0)
+        assert exact.frequency == f
+
+
+@pytest.mark.parametrize("count", [500])
+def test_many_close_planned_frequencies_stay_distinct_and_within_tolerance(
+    scope: ScopeTimebase, count: int
+) -> None:
+    """Short captures (1 cycle at least, 1 ms at most per capture) of 500 log-spaced planned
+    frequencies from 1 kHz to 1.5 kHz (0.08 % apart): whole cycles would need moves of up to
+    ~1/(2J) of f (tens of %), which collapsed such a plan onto a few frequencies. Every
+    chosen frequency stays within 0.1 % of its planned one and less than half-way to its
+    neighbour, so all 500 stay distinct and in the planned order."""
+    from benchseq.analysis import at_frequency
+    from benchseq.sequencer import max_frequency_shift
+
+    planned = np.geomspace(1e3, 1.5e3, count)
+    shifts = max_frequency_shift(planned)
+    chosen = []
+    for f, shift in zip(planned, shifts, strict=True):
+        plan = plan_capture(
+            scope, f, 0.1, 1e-3, 1.0, min_cycles=1, max_time_s=1e-3, noise_sigma=1e-6
+        )
+        plan = at_frequency(plan, f, 1e-3, float(shift))
+        chosen.append(plan.frequency)
+    chosen_arr = np.array(chosen)
+    assert np.all(np.abs(chosen_arr / planned - 1) <= 1e-3 * (1 + 1e-12))
+    assert np.unique(chosen_arr).size == count
+    assert np.all(np.diff(chosen_arr) > 0)
+
+
+def test_max_frequency_shift_keeps_neighbours_apart() -> None:
+    from benchseq.sequencer import max_frequency_shift
+
+    f = np.array([100.0, 100.0, 101.0, 110.0])
+    assert max_frequency_shift(f).tolist() == pytest.approx([0.45, 0.45, 0.45, 4.05])
+    assert max_frequency_shift(np.array([5.0, 5.0])).tolist() == [math.inf, math.inf]
 
 
 def test_unreachable_target_is_reported_not_hidden(scope: ScopeTimebase) -> None:

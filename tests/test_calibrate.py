@@ -106,8 +106,9 @@ def test_calibration_measures_the_scenarios_mismatch(lab: dict[str, Any]) -> Non
 
 
 def test_calibration_covers_the_plan_with_guard_points(lab: dict[str, Any]) -> None:
-    """The sweep goes one guard step beyond each end of the plan (a run's coherent frequency
-    may move by 1/(2J)), records the ranges it used, and the probe went back to the output."""
+    """The sweep goes one guard step beyond each end of the plan (a run's frequency may move
+    by the plan's tolerance, its refined frequency a little more), records the ranges it used,
+    and the probe went back to the output."""
     result = lab["result"]
     low, high = result.loaded.span
     assert low < 10.0 / 1.05 and high > 1e6 * 1.05

@@ -454,6 +454,22 @@ def test_dc_outside_the_device_limits_is_left_to_the_feasibility_check() -> None
         (MINIMAL + "[capture]\nmin_cycles = 0\n", "capture.min_cycles", "below the minimum"),
         (MINIMAL + "[capture]\nmax_averages = 2.5\n", "capture.max_averages", "whole number"),
         (MINIMAL + '[capture]\nmax_time = "10 Hz"\n', "capture.max_time", "a time is expected"),
+        (
+            MINIMAL + '[capture]\nfrequency_tolerance = "20 %"\n',
+            "capture.frequency_tolerance",
+            "from '0 %' to '10 %'",
+        ),
+        (
+            MINIMAL + "[capture]\nfrequency_tolerance = 0.001\n",
+            "capture.frequency_tolerance",
+            "percentage",
+        ),
+        (
+            MINIMAL.replace('"3.8 V"', '"3.8 V"\ngain = -10'),
+            "device.gain",
+            "positive ratio",
+        ),
+        (MINIMAL.replace('"3.8 V"', '"3.8 V"\ngain = "20 dBm"'), "device.gain", "dB"),
         (MINIMAL + '[watch]\npin_dc = "halt"\n', "watch.pin_dc", "'flag' or 'stop'"),
         (MINIMAL + '[watch]\ndistortion = "5"\n', "watch.distortion", "percentage"),
         (
@@ -495,6 +511,25 @@ def test_errors_name_file_key_and_problem(text: str, key: str, fragment: str) ->
     assert isinstance(error, BadInput)
 
 
+@pytest.mark.parametrize(
+    ("written", "gain_db"),
+    [('"20 dB"', 20.0), ("10", 20.0), ('"10 V/V"', 20.0), ('"-6 dB"', -6.0), ("1", 0.0)],
+)
+def test_device_gain_in_db_or_as_a_ratio(written: str, gain_db: float) -> None:
+    """20·log10(10) = 20 dB (the decibel of a voltage ratio, common practice)."""
+    plan = plan_from(MINIMAL.replace('"3.8 V"', f'"3.8 V"\ngain = {written}'))
+    assert plan.device.gain_db == pytest.approx(gain_db, abs=1e-12)
+    assert plan_from(MINIMAL).device.gain_db is None
+
+
+def test_frequency_tolerance_default_and_zero() -> None:
+    assert plan_from(MINIMAL).capture.frequency_tolerance == pytest.approx(1e-3)
+    zero = plan_from(MINIMAL + '[capture]\nfrequency_tolerance = "0 %"\n')
+    assert zero.capture.frequency_tolerance == 0.0
+    half = plan_from(MINIMAL + '[capture]\nfrequency_tolerance = "0.5 %"\n')
+    assert half.capture.frequency_tolerance == pytest.approx(5e-3)
+
+
 def test_too_many_points_is_refused_before_expansion() -> None:
     text = with_sweep(
         'dc = { from = "4 V", to = "5 V", points = 21 }\nripple = "100 mVpp"\n'
@@ -520,12 +555,13 @@ _KEYS = [
     "frequency", "ripple", "dc", "load", "from", "to", "per_decade", "step", "points", "at",
     "wait", "time_constants", "after_operating_point", "min_cycles", "max_time",
     "target_uncertainty", "max_averages", "current_limit", "pin_dc", "distortion",
-    "model_mismatch", "above", "then", "factors", "tolerance", "zzz",
+    "model_mismatch", "above", "then", "factors", "tolerance", "zzz", "frequency_tolerance",
+    "gain",
 ]  # fmt: skip
 _TEXTS = [
     "5 V", "100 mVpp", "35 mVrms", "10 Hz", "1 MHz", "0 Hz", "-3 Hz", "1e300 Hz", "5 %",
     "2 dB", "flag", "stop", "every point", "dc", "ripple", "frequency", "load", "4k7", "",
-    "100 mA", "nan", "1 s", "10 uF", "µ", "inf V",
+    "100 mA", "nan", "1 s", "10 uF", "µ", "inf V", "0.1 %", "20 dB", "10 V/V",
 ]  # fmt: skip
 _SCALARS = st.one_of(
     st.sampled_from(_TEXTS),

@@ -141,8 +141,13 @@ def test_csv_round_trips_to_the_stored_numbers(demo_file: Path, tmp_path: Path) 
     for name in (
         "frequency [Hz]",
         "rejection_db [dB]",
-        "pin_re [V]",
-        "pin_im [V]",
+        "uncertainty_db [dB (k=1)]",
+        "pin_re [V (peak)]",
+        "pin_im [V (peak)]",
+        "ripple_target [V (peak)]",
+        "generator_pp [V (pp)]",
+        "output_noise [V (rms)]",
+        "dc_level [V]",
         "point_id",
         "flags",
     ):
@@ -151,7 +156,7 @@ def test_csv_round_trips_to_the_stored_numbers(demo_file: Path, tmp_path: Path) 
     stored = read_results(demo_file)
     assert len(back) == len(stored) == 16
     pd.testing.assert_frame_equal(back[list(stored.columns)], stored, check_exact=True)
-    assert back.attrs["units"]["frequency"] == "Hz" and back.attrs["units"]["pin"] == "V"
+    assert back.attrs["units"]["frequency"] == "Hz" and back.attrs["units"]["pin"] == "V (peak)"
     verdict = mask_verdict(gather([demo_file]).sources[0].mask, stored)
     np.testing.assert_array_equal(
         back["mask_margin"].to_numpy(), verdict.points["margin_db"].to_numpy()

@@ -6,7 +6,15 @@ ratio is H = V_out/V_pin.
 """
 
 from benchseq.analysis.calibration import CalibrationLookup, ChannelCalibration
-from benchseq.analysis.capture import CapturePlan, ScopeLimits, ScopeTimebase, plan_capture
+from benchseq.analysis.capture import (
+    DEFAULT_FREQUENCY_TOLERANCE,
+    CapturePlan,
+    ScopeLimits,
+    ScopeTimebase,
+    at_frequency,
+    coherent_frequency,
+    plan_capture,
+)
 from benchseq.analysis.codes import CodeCheck, RangeVerdict, check_codes, suggest_range
 from benchseq.analysis.distortion import HarmonicFit, fit_harmonics
 from benchseq.analysis.errors import AnalysisError, FitNotConverged
@@ -49,6 +57,7 @@ __all__ = [
     "BOUND_Z",
     "DB_PER_NEPER",
     "DEFAULT_DETECTION_K",
+    "DEFAULT_FREQUENCY_TOLERANCE",
     "AnalysisError",
     "CalibrationLookup",
     "CapturePlan",
@@ -69,7 +78,9 @@ __all__ = [
     "ScopeTimebase",
     "SineFit",
     "SineFitBatch",
+    "at_frequency",
     "check_codes",
+    "coherent_frequency",
     "db_uncertainty",
     "fit_harmonics",
     "fit_sine",

@@ -11,12 +11,18 @@ Every offered (sample interval, record length) is tried; triggered averages M mu
 (each record costs its duration plus the re-arm time); a record must hold min_cycles and
 each cycle ≥ min_samples_per_cycle samples. The plan with the least bench time that meets
 the target wins; if none does within max_time_s, the most accurate one that fits does.
-Finally the generator is nudged to a whole number of cycles: f' = J/T (IEEE Std 1241),
-J = max(min_cycles, round(f·T)), a relative shift of at most 1/(2J).
+The point is measured at the planned frequency: the three-parameter sine fit at a known
+frequency (IEEE Std 1057, 4.1.3.1) does not need whole cycles in the record. Only where the
+nearest whole number of cycles J/T (IEEE Std 1241 coherent sampling, J = round(f·T)) lies
+within the plan's frequency tolerance of f (and within ``max_shift_hz``, which keeps distinct
+planned frequencies distinct) is the generator moved there, since a coherent record keeps
+other spurs out of the neighbour noise floor. A record of whole 100 ms multiples still rejects
+50/60 Hz pickup either way.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -26,6 +32,7 @@ from benchseq.analysis.errors import AnalysisError
 from benchseq.analysis.rejection import DB_PER_NEPER
 
 DEFAULT_MIN_SAMPLES_PER_CYCLE = 8
+DEFAULT_FREQUENCY_TOLERANCE = 1e-3  # relative: a coherent move of at most 0.1 %
 
 
 class ScopeLimits(Protocol):
@@ -49,25 +56,70 @@ class ScopeTimebase:
 
 @dataclass(frozen=True)
 class CapturePlan:
-    """One point's capture. frequency is the coherent generator frequency J/T (Hz)."""
+    """One point's capture. frequency is the generator frequency to set: the planned one, or
+    the coherent J/T when that lies within the tolerance (``coherent``)."""
 
     sample_interval: float  # s
     record_length: int  # samples per record
     averages: int  # triggered records the scope averages into one waveform
     records: int  # waveforms to read (averaged sample-wise by the caller)
-    frequency: float  # Hz, nudged so the record holds exactly `cycles` periods
+    frequency: float  # Hz to set: requested_frequency, or J/T within the tolerance
     requested_frequency: float  # Hz
-    cycles: int  # J
+    cycles: float  # periods in one record: J (whole) when coherent, else f·T
     expected_uncertainty_db: float  # standard uncertainty this plan should reach
     capture_time: float  # s of signal recorded: records·averages·record_length·interval
     bench_time: float  # s including re-arm times
     limited_by: str  # "cycles", "noise", "max_time" (target unmet) or "calibration" (unmet)
     meets_target: bool
+    coherent: bool = False  # the record holds a whole number of periods of ``frequency``
 
     @property
     def record_duration(self) -> float:
         """T = N·Δt of one record (s)."""
         return self.record_length * self.sample_interval
+
+
+def coherent_frequency(
+    frequency: float,
+    duration: float,
+    tolerance: float = DEFAULT_FREQUENCY_TOLERANCE,
+    max_shift_hz: float = math.inf,
+) -> tuple[float, float, bool]:
+    """(frequency to set, periods per record, coherent?) for a record of ``duration`` s.
+
+    The nearest whole number of periods J = round(f·T) (at least 1) gives J/T; it is taken
+    when |J/T − f| ≤ tolerance·f and ≤ max_shift_hz, else f itself (the fit does not need
+    whole cycles). A zero tolerance never moves the frequency."""
+    if not (frequency > 0 and duration > 0):
+        raise AnalysisError("a coherent frequency needs a positive frequency and duration")
+    if tolerance < 0 or max_shift_hz < 0:
+        raise AnalysisError("the frequency tolerance cannot be negative")
+    cycles = max(1, round(frequency * duration))
+    moved = cycles / duration
+    shift = abs(moved - frequency)
+    if shift <= tolerance * frequency and shift <= max_shift_hz:
+        return moved, float(cycles), True
+    return frequency, frequency * duration, False
+
+
+def at_frequency(
+    plan: CapturePlan,
+    frequency: float,
+    tolerance: float = DEFAULT_FREQUENCY_TOLERANCE,
+    max_shift_hz: float = math.inf,
+) -> CapturePlan:
+    """``plan`` with its generator frequency chosen for the planned ``frequency`` under
+    ``tolerance`` and ``max_shift_hz`` (coherent_frequency)."""
+    chosen, cycles, coherent = coherent_frequency(
+        frequency, plan.record_duration, tolerance, max_shift_hz
+    )
+    return dataclasses.replace(
+        plan,
+        frequency=chosen,
+        requested_frequency=frequency,
+        cycles=cycles,
+        coherent=coherent,
+    )
 
 
 def _effective_density(
@@ -102,6 +154,7 @@ def plan_capture(
     density_at_f: float = 0.0,
     pin_density_at_f: float = 0.0,
     max_record_time: float | None = None,
+    frequency_tolerance: float = DEFAULT_FREQUENCY_TOLERANCE,
 ) -> CapturePlan:
     """Least-bench-time capture of one point (amplitudes peak V at the scope input).
 
@@ -115,6 +168,9 @@ def plan_capture(
     max_record_time (s) keeps records at most this long unless none that short holds
     min_cycles (then the shortest that does): a capture meant to be topped up with more
     records of the same timebase wants records much shorter than its whole need.
+
+    frequency_tolerance (relative) bounds the move to a coherent J/T (coherent_frequency);
+    outside it the plan keeps the requested frequency.
     """
     if not (frequency > 0 and pin_amplitude > 0 and output_amplitude > 0):
         raise AnalysisError(
@@ -192,7 +248,9 @@ def plan_capture(
                     limited = "cycles" if needed <= min_record_time else "noise"
                 else:
                     limited = "calibration" if budget <= 0 else "max_time"
-                cycles = max(min_cycles, round(frequency * duration))
+                chosen, cycles, coherent = coherent_frequency(
+                    frequency, duration, frequency_tolerance
+                )
                 best = (
                     key,
                     CapturePlan(
@@ -200,7 +258,7 @@ def plan_capture(
                         record_length=length,
                         averages=averages,
                         records=records,
-                        frequency=cycles / duration,
+                        frequency=chosen,
                         requested_frequency=frequency,
                         cycles=cycles,
                         expected_uncertainty_db=u,
@@ -208,6 +266,7 @@ def plan_capture(
                         bench_time=bench,
                         limited_by=limited,
                         meets_target=meets,
+                        coherent=coherent,
                     ),
                 )
     if best is None:

@@ -7,6 +7,7 @@ import json
 import math
 from typing import Any
 
+from benchseq.records import SHOWN_COVERAGE_FACTOR
 from benchseq.report.model import Source
 from benchseq.units import format_si
 
@@ -156,6 +157,7 @@ def _plan_section(source: Source) -> Section:
              + (f", maximum load {format_si(plan.device.max_load_current, 'A', 3)}"
                 if plan.device.max_load_current is not None else ""))
         )  # fmt: skip
+        pairs += _capture_pairs(plan)
         if plan.mask is not None:
             corners = ", ".join(
                 f"{format_si(f, 'Hz', 4)} ≥ {db:g} dB"
@@ -165,6 +167,37 @@ def _plan_section(source: Source) -> Section:
     if source.plan_problem:
         pairs.append(("stored plan", f"not readable: {source.plan_problem}"))
     return "Plan", [(k, v) for k, v in pairs if v]
+
+
+def _capture_pairs(plan: Any) -> list[tuple[str, str]]:
+    """The capture rules a reader needs to read the numbers: the target and its coverage,
+    the frequency tolerance, and the device's declared gain (input-referred rejection)."""
+    rules = plan.capture
+    k = SHOWN_COVERAGE_FACTOR
+    pairs = [
+        (
+            "target uncertainty",
+            f"u ≤ {rules.target_uncertainty_db:g} dB standard (k = 1), i.e. U ≤ "
+            f"{k * rules.target_uncertainty_db:g} dB expanded (k = {k:g}, about 95 %); points "
+            "above it are flagged target_unmet",
+        ),
+        (
+            "frequency tolerance",
+            f"{100 * rules.frequency_tolerance:g} %: each point is measured at its planned "
+            "frequency, or moved by at most this towards a whole number of cycles in the "
+            "record (both frequencies are stored)",
+        ),
+    ]
+    gain_db = plan.device.gain_db
+    if gain_db is not None:
+        pairs.append(
+            (
+                "device gain",
+                f"{gain_db:.4g} dB ({10 ** (gain_db / 20):.4g} V/V, declared in the plan): "
+                f"input-referred rejection = output-referred + {gain_db:.4g} dB",
+            )
+        )
+    return pairs
 
 
 def _bench_section(source: Source) -> Section:

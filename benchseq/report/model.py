@@ -15,10 +15,13 @@ import pandas as pd
 
 from benchseq.cautions import SAFETY_CAUTIONS as SAFETY_CAUTIONS  # the renderers import it here
 from benchseq.errors import BadInput, BenchseqError
+from benchseq.records import SHOWN_COVERAGE_FACTOR
 from benchseq.units import format_si
 from benchseq.verdict import MaskVerdict, mask_verdict
 
-COVERAGE_FACTOR = 2.0  # uncertainty bars and the table's U are k = 2 expanded uncertainties
+# uncertainty bars and the table's U are expanded uncertainties U = k·u, k = 2 (the file
+# stores the standard uncertainty u, k = 1: benchseq.records)
+COVERAGE_FACTOR = SHOWN_COVERAGE_FACTOR
 
 
 @dataclass(frozen=True)
@@ -280,13 +283,33 @@ def gather(paths: Sequence[str | Path]) -> Report:
 
 
 # -- texts the formats share ----------------------------------------------------------------
-def rejection_cell(row: dict[str, Any]) -> str:
-    """'62.31' for a value, '≥ 91.8' for a lower bound, '' when neither is known (dB)."""
+def rejection_cell(row: dict[str, Any], prefix: str = "") -> str:
+    """'62.31' for a value, '≥ 91.8' for a lower bound, '' when neither is known (dB);
+    ``prefix`` "_input" reads the input-referred columns."""
     if bool(row.get("is_bound")):
-        bound = float(row.get("bound_db", math.nan))
+        bound = float(row.get(f"bound{prefix}_db", math.nan))
         return f"≥ {bound:.1f}" if math.isfinite(bound) else ""
-    value = float(row.get("rejection_db", math.nan))
+    value = float(row.get(f"rejection{prefix}_db", math.nan))
     return f"{value:.2f}" if math.isfinite(value) else ""
+
+
+def frequency_cell(row: dict[str, Any]) -> str:
+    """The planned frequency, with the generator's move in ppm when it was moved (towards a
+    whole number of cycles, within the plan's frequency tolerance)."""
+    actual = float(row.get("frequency", math.nan))
+    planned = float(row.get("frequency_planned", actual))
+    text = format_si(planned, "Hz", 4)
+    if math.isfinite(planned) and planned > 0 and math.isfinite(actual) and actual != planned:
+        text += f" ({(actual / planned - 1) * 1e6:+.0f} ppm)"
+    return text
+
+
+def has_input_referred(frame: pd.DataFrame) -> bool:
+    """True when the run stored input-referred rejection (the plan declared a gain)."""
+    return any(
+        name in frame.columns and np.isfinite(frame[name].to_numpy(dtype=float)).any()
+        for name in ("rejection_input_db", "bound_input_db")
+    )
 
 
 def _number_cell(value: Any, digits: str) -> str:
@@ -304,7 +327,7 @@ def ratio_phase_deg(ratio: Any) -> np.ndarray:
 
 POINT_TABLE_HEADERS = (
     "#",
-    "frequency",
+    "frequency (planned)",
     "operating point",
     "pin ripple",
     "rejection [dB]",
@@ -321,6 +344,10 @@ def point_table(source: Source) -> tuple[list[str], list[list[str]]]:
     """Headers and text cells of the table of points (one row per stored point)."""
     headers = list(POINT_TABLE_HEADERS)
     frame = source.frame
+    inputs = has_input_referred(frame)
+    if inputs:
+        headers[4] = "rejection, output-referred [dB]"
+        headers.insert(6, "rejection, input-referred [dB]")
     extra: list[tuple[str, str]] = []
     if "repeat_of" in frame.columns and (frame["repeat_of"] >= 0).any():
         extra.append(("repeat_of", "repeat of #"))
@@ -354,11 +381,12 @@ def point_table(source: Source) -> tuple[list[str], list[list[str]]]:
             outcome = str(verdict["outcome"]) + (" (within U)" if verdict["straddles"] else "")
         cells = [
             str(pid),
-            format_si(float(row.get("frequency", math.nan)), "Hz", 4),
+            frequency_cell(row),
             op.label(),
             ripple_text(pin, op.convention) if math.isfinite(pin) else "",
             rejection_cell(row),
             "" if is_bound else _number_cell(COVERAGE_FACTOR * u, ".2f"),
+            *([rejection_cell(row, "_input")] if inputs else []),
             phase,
             limit,
             margin,
@@ -396,7 +424,8 @@ def headline(source: Source) -> list[tuple[str, str]]:
 
 PLOT_CAPTIONS: dict[str, str] = {
     "rejection": (
-        "Rejection 20·log10(|V_pin|/|V_out|) over frequency, one curve per operating point. "
+        "Rejection 20·log10(|V_pin|/|V_out|) (output-referred) over frequency, one curve per "
+        "operating point. "
         f"Bars: expanded uncertainty U = {COVERAGE_FACTOR:g}·u (k = {COVERAGE_FACTOR:g}, about "
         "95 % coverage). A bar with an arrow rising from it marks a lower bound: the output was "
         "under the noise floor and the true rejection is at or above the bar. The dash-dot line "
