@@ -126,11 +126,17 @@ def subcircuit_ports(text: str) -> dict[str, list[str]]:
 
 
 def read_netlist(
-    path: Path, subcircuit: str, source: str, temperature: float | None = None
+    path: Path,
+    subcircuit: str,
+    source: str,
+    temperature: float | None = None,
+    keys: tuple[str, str] = ("device.netlist", "device.subcircuit"),
 ) -> NetlistSpec:
     """The netlist file, checked without ngspice: readable, holds ``subcircuit`` with three
-    ports. ``source`` names the scenario file for messages."""
-    where = f"{source}: device.netlist"
+    ports. ``source`` and ``keys`` (of the file name, of the subcircuit) name where they
+    were given, for messages."""
+    where = f"{source}: {keys[0]}"
+    named = f"{source}: {keys[1]}"
     if not path.is_file():
         raise NetlistInvalid(f"{where}: no such netlist file {path}")
     try:
@@ -143,12 +149,11 @@ def read_netlist(
     if ports is None:
         names = ", ".join(sorted(subcircuits)) or "none"
         raise NetlistInvalid(
-            f"{source}: device.subcircuit: no subcircuit {subcircuit!r} in {path} "
-            f"(subcircuits there: {names})"
+            f"{named}: no subcircuit {subcircuit!r} in {path} (subcircuits there: {names})"
         )
     if len(ports) != 3:
         raise NetlistInvalid(
-            f"{source}: device.subcircuit: {subcircuit} in {path} has {len(ports)} ports "
+            f"{named}: {subcircuit} in {path} has {len(ports)} ports "
             f"({' '.join(ports)}); benchseq connects exactly three, in this order: supply pin, "
             "output, ground. Wrap it in a three-port subcircuit that ties the others."
         )
