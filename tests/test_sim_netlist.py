@@ -186,7 +186,7 @@ def test_bounds_on_a_noisy_board_stay_at_or_below_ngspice_truth(tmp_path: Path) 
     bench = load_bench("sim:netlist-ldo")
     board = scenario.device.board_load_current  # type: ignore[attr-defined]
     errors, excess = [], []
-    for seed in SEEDS[:3]:
+    for seed in SEEDS:
         outcome, path = run_prepared(
             plan, bench, tmp_path / f"faint{seed}.h5", seed=seed,
             session_factory=session_factory_for(scenario),
@@ -197,7 +197,7 @@ def test_bounds_on_a_noisy_board_stay_at_or_below_ngspice_truth(tmp_path: Path) 
         excess.append(b)
     b = np.concatenate(excess)
     e = np.concatenate(errors)
-    assert b.size >= 10, "the plan should end mostly in bounds"
+    assert b.size >= 25, "the plan should end mostly in bounds"
     assert np.mean(b <= 0.0) >= 0.95, f"bounds above the truth by {b[b > 0]} dB"
     assert e.size == 0 or np.max(np.abs(e)) <= 4.0
 
@@ -260,8 +260,9 @@ def test_measured_curve_follows_a_changed_output_capacitor(tmp_path: Path) -> No
     u = rows["uncertainty_db"].to_numpy(dtype=float)[~rows["is_bound"].to_numpy(dtype=bool)]
     assert value.size == 4
     assert np.all(np.abs(e_new) <= 4.0), e_new
-    assert np.all(np.abs(truth_new - truth_old) > 1.0)  # the change matters at these points
-    assert np.all(np.abs(value - truth_old) > 4.0 * u), (value, truth_old)
+    matters = np.abs(truth_new - truth_old) > 10.0 * u  # where the change shows
+    assert matters.sum() >= 2, (truth_new, truth_old)
+    assert np.all(np.abs(value - truth_old)[matters] > 4.0 * u[matters]), (value, truth_old)
 
 
 # -- errors a user can act on -----------------------------------------------------------------
@@ -427,7 +428,8 @@ def test_report_model_overlay_draws_ngspice_prediction_and_difference(
         prediction = overlay.predictions[curve.index]
         freqs = curve.frame["frequency"].to_numpy(dtype=float)
         expected = device_alone_rejection(NETLIST, prediction.pin_dc, 0.02, freqs)
-        assert np.allclose(prediction.rejection_db, expected, rtol=0, atol=1e-9)
+        # the device resolves operating points to 1 µV of pin DC: 1e-5 dB covers that here
+        assert np.allclose(prediction.rejection_db, expected, rtol=0, atol=1e-5)
         diff, u, _ = differences(overlay, curve)
         assert np.nanmax(np.abs(diff) / u) < 5.0  # the model that was measured
     out = tmp_path / "overlay.html"
