@@ -387,12 +387,20 @@ def cmd_report(args: argparse.Namespace) -> int:
     from benchseq.report import format_name, write_report
 
     fmt = format_name(args.format, args.out)
+    model = None
+    if args.model is not None:
+        from benchseq.units import parse_quantity
+
+        board_load = parse_quantity(args.model_load, "A", "--model-load")
+        model = (args.model, args.subcircuit or "", board_load)
+    elif args.subcircuit is not None:
+        raise BadInput("--subcircuit goes with --model FILE.cir")
     for result in args.results:
         _refuse_same_file(result, args.out, "the report file")
     with _result_notices():
         for result in args.results:
             _repair_for_reading(result)
-        written = write_report(args.results, fmt, args.out)
+        written = write_report(args.results, fmt, args.out, model=model)
     if args.json:
         _print_json({"format": fmt, "files": [str(p) for p in written]})
         return EXIT_OK
@@ -544,6 +552,22 @@ def build_parser() -> argparse.ArgumentParser:
         "--out",
         metavar="PATH",
         help="report file (default: <first result>-report.<ext> beside it)",
+    )
+    p.add_argument(
+        "--model",
+        metavar="FILE.cir",
+        help="SPICE netlist whose predicted curve (ngspice) is drawn with the measurement",
+    )
+    p.add_argument(
+        "--subcircuit",
+        metavar="NAME",
+        help="subcircuit of --model; its ports in order: supply pin, output, ground",
+    )
+    p.add_argument(
+        "--model-load",
+        default="0 A",
+        metavar="CURRENT",
+        help="the board's own DC load on the output, added to the run's load (default 0 A)",
     )
     p.add_argument("--json", action="store_true", help="print the files written as JSON")
     p.set_defaults(func=cmd_report)

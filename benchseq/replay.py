@@ -260,7 +260,7 @@ def replay(
 ) -> ReplayOutcome:
     """Replay stored run ``result`` (its plan, or ``plan_path``) on a simulated bench with
     ``device`` ("learned" or a scenario name) into a new result file, and compare."""
-    from benchseq.runner import run_prepared
+    from benchseq.runner import preflight_simulation, run_prepared
     from benchseq.store import read_meta, read_results, read_truth
 
     stored = read_stored(result)
@@ -270,6 +270,7 @@ def replay(
     base, bench, real, scenario_name = _truth_and_bench(stored, truth_scenario)
     learned = _learned(stored, base, bench)
     scenario = _scenario_for(device, base, learned)
+    preflight_simulation(plan, bench, scenario)  # a netlist device: solved before any file
     path = Path(out) if out is not None else default_replay_output(stored.path, device)
     replay_of = {
         "file": str(stored.path),

@@ -139,6 +139,29 @@ def _refuse_infeasible(plan: Plan, bench: Bench) -> Any:
     return report
 
 
+def preflight_simulation(plan: Plan, bench: Bench, scenario: Any = None) -> None:
+    """Before any file is created: a simulated bench's scenario loads (a netlist device is
+    checked by ngspice then) and a device that can fail at an operating point (a netlist)
+    is solved at each DC level and load the plan visits. Raises BadInput or
+    MeasurementFailure naming the file, the subcircuit and the point."""
+    if scenario is None:
+        if bench.simulation is None:
+            return
+        from benchseq.sim.scenario import load_scenario
+
+        scenario = load_scenario(bench.simulation)
+    preflight = getattr(scenario.device, "preflight", None)
+    if preflight is None:
+        return
+    from benchseq.sim.devices import OperatingPoint
+
+    loads = plan.load_currents if plan.load_currents is not None else [0.0]
+    board = float(getattr(scenario.device, "board_load_current", 0.0))
+    preflight(
+        [OperatingPoint(float(dc), board + float(load)) for dc in plan.dc_levels for load in loads]
+    )
+
+
 def run_meta(
     plan: Plan, bench: Bench, seed: int, keep_waveforms: bool, report: Any
 ) -> dict[str, Any]:
@@ -244,6 +267,7 @@ def run_prepared(
     preflight(plan, bench)  # everything the run needs, before any file or instrument
     _refuse_folders(path)
     report = _refuse_infeasible(plan, bench)
+    preflight_simulation(plan, bench)
     calibration = _bench_calibration(bench)
     meta = run_meta(plan, bench, seed, keep_waveforms, report)
     meta["calibration"] = (

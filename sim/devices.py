@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Protocol
 
 import numpy as np
@@ -235,9 +236,14 @@ _RENAMES = {
 }
 
 
-def device_from_section(section: Section) -> Device:
-    """A device model from a scenario's [device] table (model = "regulator" | "amplifier")."""
-    model = section.text("model", choices=tuple(_QUANTITY_KEYS))
+def device_from_section(section: Section, folder: Path | None = None) -> Device:
+    """A device model from a scenario's [device] table (model = "regulator" | "amplifier" |
+    "netlist"; a netlist file is read relative to ``folder``, the scenario file's folder)."""
+    model = section.text("model", choices=(*_QUANTITY_KEYS, "netlist"))
+    if model == "netlist":
+        from benchseq.sim.netlist import netlist_device_from_section
+
+        return netlist_device_from_section(section, folder or Path(section.source).parent)
     values: dict[str, object] = {}
     for key, dimension in _QUANTITY_KEYS[model].items():
         if section.has(key):

@@ -10,6 +10,7 @@ overdriving distorts and shrinks the pin waveform as on a bench.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -78,6 +79,15 @@ def _synthesise(harmonics: np.ndarray, n: int) -> np.ndarray:
     return np.fft.irfft(spectrum, n)
 
 
+def pin_admittance(device: Device, op: OperatingPoint) -> Callable[[np.ndarray], np.ndarray]:
+    """The device's pin admittance over frequency at ``op``: a device whose pin depends on
+    its operating point (a netlist) has ``pin_admittance(f, op)``; others a fixed ``pin``."""
+    at_point = getattr(device, "pin_admittance", None)
+    if at_point is None:
+        return device.pin.admittance
+    return lambda f: at_point(f, op)
+
+
 def solve_point(
     circuit: InjectorCircuit,
     device: Device,
@@ -97,7 +107,7 @@ def solve_point(
 
     dc = solve_dc(circuit, supply.voltage if setpoint is None else setpoint, draw)
     op = OperatingPoint(dc.pin, output_current)
-    admittance = device.pin.admittance
+    admittance = pin_admittance(device, op)
     emf = complex(emf_peak)
     ac = solve_ac(circuit, np.array([frequency]), admittance)
     opamp1 = ac.opamp_per_emf[0] * emf

@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from importlib import resources
+from pathlib import Path
 
 from benchseq.bench import Bench, is_scenario_path
 from benchseq.errors import FileKeyError
@@ -136,7 +137,9 @@ def _channel_table(section: Section, key: str, dimension: str | None) -> dict[in
     return out
 
 
-def parse_scenario(data: dict, source: str) -> Scenario:
+def parse_scenario(data: dict, source: str, folder: Path | None = None) -> Scenario:
+    """A scenario from its TOML data; ``folder`` is where files it names (a device netlist)
+    are looked for (default: the folder of ``source``)."""
     top = Section(data, source)
     head = top.section("scenario")
     assert head is not None
@@ -146,7 +149,11 @@ def parse_scenario(data: dict, source: str) -> Scenario:
     head.done()
 
     device_section = top.section("device", required=False)
-    device: Device = Regulator() if device_section is None else device_from_section(device_section)
+    device: Device = (
+        Regulator()
+        if device_section is None
+        else device_from_section(device_section, folder or Path(source).parent)
+    )
 
     overrides: dict[str, float] = {}
     inj = top.section("injector", required=False)
@@ -288,4 +295,5 @@ def load_scenario(name: str) -> Scenario:
         return parse_scenario(data, name)
     source = f"sim/scenarios/{name}.toml"
     _, data = parse_toml_text(scenario_text(name), source)
-    return parse_scenario(data, source)
+    folder = resources.files("benchseq.sim") / "scenarios"
+    return parse_scenario(data, source, Path(str(folder)))

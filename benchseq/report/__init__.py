@@ -75,13 +75,17 @@ def format_name(fmt: str | None, out: str | Path | None = None) -> str:
 
 
 def write_report(
-    paths: Sequence[str | Path], fmt: str, out: str | Path | None = None
+    paths: Sequence[str | Path],
+    fmt: str,
+    out: str | Path | None = None,
+    model: tuple[str | Path, str, float] | None = None,
 ) -> list[Path]:
     """Write the report of ``paths`` in ``fmt``; returns every file written (main file first).
 
     ``out`` defaults to '<stem>-report.<ext>' beside the first result file. BadInput for a
     missing or unreadable result file, an unknown format or an output that would overwrite
-    a result."""
+    a result. ``model`` = (netlist, subcircuit, board load in A) overlays that circuit's
+    predicted curve and the difference (benchseq.report.circuit_model)."""
     from benchseq.report.output import check_output, default_output
 
     name = format_name(fmt, out)
@@ -91,6 +95,10 @@ def write_report(
     target = Path(out) if out is not None else default_output(paths[0], extension)
     check_output(target, paths)
     report = gather(paths)
+    if model is not None:
+        from benchseq.report.circuit_model import predict
+
+        report.model = predict(report, *model)
     return writer(report, target)
 
 

@@ -144,6 +144,7 @@ class Report:
     sources: list[Source]
     generated: str  # ISO time the report was made
     software: str
+    model: Any = None  # a circuit model's prediction (report.circuit_model.ModelOverlay)
 
     @property
     def title(self) -> str:

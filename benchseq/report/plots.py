@@ -173,6 +173,7 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
                 )  # fmt: skip
                 marks.set_gid(f"{BOUND_GID}-{curve.index}")
                 drawn.bounds.append(marks)
+    handles += _draw_model(ax, report)
     seen: set[tuple[Any, ...]] = set()
     for source in report.sources:
         mask = source.mask
@@ -214,6 +215,73 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
         drawn.verdicts.append(plot_text(f"{prefix}{short}{partial}"))
     ax.set_title("\n".join(drawn.verdicts), fontsize="small", loc="left")
     return drawn
+
+
+MODEL_GID = "model-curve"
+
+
+def _draw_model(ax: Any, report: Report) -> list[Any]:
+    """A circuit model's predicted rejection, one dashed line per curve (when present)."""
+    overlay = report.model
+    if overlay is None:
+        return []
+    lines = []
+    for curve in report.curves:
+        prediction = overlay.predictions.get(curve.index)
+        if prediction is None:
+            continue
+        colour, _ = _style(curve)
+        (line,) = ax.plot(
+            _column(curve, "frequency").astype(float), prediction.rejection_db, color=colour,
+            linestyle=(0, (4, 2)), linewidth=1.1, alpha=0.8,
+            label=plot_text(f"{overlay.label}, {report.curve_label(curve)}"),
+        )  # fmt: skip
+        line.set_gid(f"{MODEL_GID}-{curve.index}")
+        lines.append(line)
+    return lines
+
+
+def draw_model_difference(ax: Any, report: Report) -> list[Any]:
+    """Measured − predicted (dB) with ±k·u bars; a bound minus the prediction as a bound."""
+    from benchseq.report.circuit_model import differences
+
+    _frequency_axis(ax)
+    ax.set_ylabel("measured − model [dB]")
+    ax.axhline(0.0, color="#888888", linewidth=0.8)
+    drawn: list[Any] = []
+    overlay = report.model
+    glyph = bound_marker()
+    for curve in report.curves:
+        if overlay is None or curve.index not in overlay.predictions:
+            continue
+        colour, _ = _style(curve)
+        f = _column(curve, "frequency").astype(float)
+        diff, u, bound_diff = differences(overlay, curve)
+        container = ax.errorbar(
+            f, diff, yerr=np.nan_to_num(COVERAGE_FACTOR * u, nan=0.0), color=colour,
+            linestyle="none", marker="o", markersize=3.6, capsize=2.5, elinewidth=0.9,
+            label=plot_text(report.curve_label(curve)),
+        )  # fmt: skip
+        drawn.append(container)
+        if np.isfinite(bound_diff).any():
+            ax.plot(
+                f, bound_diff, linestyle="none", marker=glyph, markersize=15,
+                markerfacecolor="none", markeredgecolor=colour, markeredgewidth=1.5,
+                label="_bound",
+            )  # fmt: skip
+    if drawn:
+        ax.legend(loc="best", fontsize="x-small", framealpha=0.85)
+    title = (
+        "" if overlay is None else plot_text(f"{overlay.label}: bars ±U, k = {COVERAGE_FACTOR:g}")
+    )
+    ax.set_title(title, fontsize="small", loc="left")
+    return drawn
+
+
+def model_difference_figure(report: Report) -> Any:
+    fig = _figure(3.6, 0.15)
+    draw_model_difference(fig.add_subplot(), report)
+    return fig
 
 
 def draw_phase(ax: Any, report: Report) -> list[Any]:
@@ -327,6 +395,8 @@ def floor_figure(report: Report) -> Any | None:
 def report_figures(report: Report) -> list[tuple[str, Any]]:
     """(name, figure) of every plot the report shows, in reading order."""
     figures = [("rejection", rejection_figure(report)[0]), ("phase", phase_figure(report))]
+    if report.model is not None:
+        figures.append(("model difference", model_difference_figure(report)))
     floor = floor_figure(report)
     if floor is not None:
         figures.append(("floor", floor))
@@ -335,13 +405,15 @@ def report_figures(report: Report) -> list[tuple[str, Any]]:
 
 def stacked_figure(report: Report) -> Any:
     """All plots in one image, one above the other, sharing the frequency axis."""
-    count = 3 if report.has_floor() else 2
+    count = 2 + int(report.has_floor()) + int(report.model is not None)
     fig = _figure(4.6 + 3.0 * (count - 1), 0.35 + _title_inches(report))
     axes = fig.subplots(count, 1, sharex=True, height_ratios=[1.4] + [1.0] * (count - 1))
     draw_rejection(axes[0], report)
     draw_phase(axes[1], report)
-    if count == 3:
+    if report.has_floor():
         draw_floor(axes[2], report)
+    if report.model is not None:
+        draw_model_difference(axes[-1], report)
     for ax in axes[:-1]:
         ax.set_xlabel("")
     fig.suptitle(plot_text(report.title), fontsize="medium", y=1 - 0.08 / fig.get_figheight(),
