@@ -41,7 +41,8 @@ def frequency_text(row: dict[str, Any]) -> str:
     planned = float(row.get("frequency_planned", row["frequency"]))
     actual = float(row["frequency"])
     text = format_si(planned, "Hz", 4)
-    if math.isfinite(planned) and planned > 0 and actual != planned:
+    # a move under 0.5 ppm is the generator's own resolution, not a move: not shown
+    if math.isfinite(planned) and planned > 0 and abs(actual / planned - 1) >= 0.5e-6:
         text += f" ({(actual / planned - 1) * 1e6:+.0f} ppm)"
     return text
 

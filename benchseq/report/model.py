@@ -300,7 +300,8 @@ def frequency_cell(row: dict[str, Any]) -> str:
     actual = float(row.get("frequency", math.nan))
     planned = float(row.get("frequency_planned", actual))
     text = format_si(planned, "Hz", 4)
-    if math.isfinite(planned) and planned > 0 and math.isfinite(actual) and actual != planned:
+    # a move under 0.5 ppm is the generator's own resolution, not a move: not shown
+    if math.isfinite(planned) and planned > 0 and abs(actual / planned - 1) >= 0.5e-6:
         text += f" ({(actual / planned - 1) * 1e6:+.0f} ppm)"
     return text
 
