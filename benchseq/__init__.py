@@ -1,6 +1,6 @@
 """benchseq: unattended supply-ripple rejection sweeps on SCPI instruments or a simulated bench.
 
-The Python interface (``benchseq.load_plan``, ``check``, ``run``, ``resume``,
+The Python interface (``benchseq.load_plan``, ``check_plan``, ``run``, ``resume``,
 ``read_results`` …) is in ``benchseq.api``; its names are importable from here and load on
 first use, so ``import benchseq`` stays light."""
 
@@ -12,7 +12,7 @@ __version__ = "0.1.0"
 
 _API = (
     "RunResult",
-    "check",
+    "check_plan",
     "load_bench",
     "load_plan",
     "read_meta",

@@ -2,7 +2,7 @@
 
     import benchseq
     plan = benchseq.load_plan("plans/demo.toml")
-    print(benchseq.check(plan).point_count)
+    print(benchseq.check_plan(plan).point_count)
     result = benchseq.run(plan, out="results/demo.h5", force=True)
     points = benchseq.read_results(result.path)     # a pandas DataFrame, one row per point
 
@@ -24,7 +24,7 @@ from benchseq.results import read_meta, read_results, read_truth, read_waveforms
 
 __all__ = [
     "RunResult",
-    "check",
+    "check_plan",
     "load_bench",
     "load_plan",
     "read_meta",
@@ -56,12 +56,12 @@ def _bench(bench: Bench | str | Path | None) -> Bench:
     return bench if isinstance(bench, Bench) else load_bench(None if bench is None else str(bench))
 
 
-def check(plan: Plan | str | Path, bench: Bench | str | Path | None = None) -> Any:
+def check_plan(plan: Plan | str | Path, bench: Bench | str | Path | None = None) -> Any:
     """The feasibility check of every planned point (what `benchseq check` prints): a report
     with ``point_count``, ``refused_count``, ``estimated_time_s`` and ``to_dict()``."""
-    from benchseq.check import check_plan
+    from benchseq import check
 
-    return check_plan(_plan(plan), _bench(bench))
+    return check.check_plan(_plan(plan), _bench(bench))
 
 
 def run(

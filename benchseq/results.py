@@ -223,7 +223,14 @@ def _frame(sources: _Sources, group: str, columns: Sequence[Column], key: str) -
     if sources.h5 is not None:
         with _open_h5(sources.path, "r") as h5:
             if group in h5:
-                found = _column_arrays(h5[group], columns, slice(None))
+                try:
+                    found = _column_arrays(h5[group], columns, slice(None))
+                except (OSError, KeyError, ValueError) as exc:  # damaged storage under h5py
+                    raise BadResultFile(
+                        f"{sources.path}: the HDF5 table /{group} cannot be read ({exc}): the "
+                        "file is damaged (its journal, where kept beside it, still holds every "
+                        "stored point as written)"
+                    ) from None
                 found, damaged = _verified(sources, h5[group], columns, key, found)
                 notices += damaged
                 for name, values in found.items():

@@ -35,7 +35,7 @@ def test_check_run_and_read_from_python(tmp_path: Path) -> None:
     plan_file = tmp_path / "short.toml"
     plan_file.write_text(SHORT, encoding="utf-8")
     plan = benchseq.load_plan(plan_file)
-    report = benchseq.check(plan)
+    report = benchseq.check_plan(plan)
     assert report.point_count == 2 and report.refused_count == 0
     events: list[str] = []
     result = benchseq.run(plan, out=tmp_path / "r.h5", on_event=lambda e: events.append(e.kind))

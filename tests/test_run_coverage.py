@@ -110,6 +110,17 @@ def _assert_coverage(frame: pd.DataFrame, at_least: int) -> None:
     assert np.all(np.abs(z) <= 4), np.round(z, 2)
 
 
+def _assert_bounds_hold(bounds: pd.DataFrame) -> None:
+    """Each bound is one-sided at ≥ 95 %: the number above the truth is at most
+    Binomial(n, 0.05); fail beyond its 99.9th percentile (scipy.stats.binom as the reference),
+    so a handful of bounds is judged by what 95 % coverage allows, not by all-or-nothing."""
+    from scipy.stats import binom
+
+    above = int(np.sum(bounds["bound_db"] > bounds["rejection_db_true"]))
+    allowed = int(binom.ppf(0.999, len(bounds), 0.05))
+    assert above <= allowed, (above, len(bounds), allowed)
+
+
 def _rebuilt_u(frame: pd.DataFrame) -> np.ndarray:
     """u from the stored columns alone, by the formula the uncertainty_db column states."""
     pin = np.abs(frame["pin"].to_numpy())
@@ -158,8 +169,7 @@ def test_amplifier_scenario_covers_the_truth(tmp_path: Path) -> None:
     frame = pd.concat(frames)
     _assert_coverage(frame, at_least=24)
     bounds = frame[frame["is_bound"]]
-    if len(bounds):
-        assert np.mean(bounds["bound_db"] <= bounds["rejection_db_true"]) >= 0.95
+    _assert_bounds_hold(bounds)
 
 
 @pytest.mark.slow

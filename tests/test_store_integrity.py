@@ -265,6 +265,27 @@ def test_a_flipped_bit_is_caught_and_the_journal_value_shown(
     assert code == 2 and "point(s) 1 fail their checksum" in err
 
 
+def test_unreadable_hdf5_storage_is_an_error_naming_the_table(
+    complete_run: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """Storage h5py cannot read (a damaged chunk raises OSError inside h5py) ends `show` with
+    exit 2 and a message naming the file and table, never a traceback."""
+    from benchseq import results
+
+    out = _copy_result(complete_run, tmp_path)
+
+    def unreadable(*args, **kwargs):
+        raise OSError("Can't synchronously read data (damaged chunk)")
+
+    monkeypatch.setattr(results, "_column_arrays", unreadable)
+    code, _, err = _cli(capsys, "show", str(out))
+    assert code == 2 and "/points cannot be read" in err and "damaged" in err
+    assert "Traceback" not in err
+
+
 def test_a_damaged_journal_is_reported_not_skipped(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
