@@ -17,6 +17,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from benchseq import plugins
 from benchseq.errors import FileKeyError
 from benchseq.ranges import BENCH_RANGES
 from benchseq.tomlfile import Section, parse_toml_text, read_toml
@@ -189,11 +190,17 @@ def _instrument(section: Section, role: str) -> InstrumentSpec:
     address = section.text("address")
     profile = section.text("profile", default=f"scpi-{role}")
     driver_class = section.text("driver_class", default=None)
-    if driver_class is not None and not _DRIVER_CLASS.match(driver_class):
+    if (
+        driver_class is not None
+        and not _DRIVER_CLASS.match(driver_class)
+        and (":" in driver_class or driver_class not in plugins.registered("driver"))
+    ):
+        registered = ", ".join(plugins.names("driver")) or "none installed"
         raise section.error(
             "driver_class",
-            f"'{driver_class}' is not of the form 'package.module:ClassName' "
-            "(an importable module, absolute, and a class name)",
+            f"'{driver_class}' is neither of the form 'package.module:ClassName' "
+            "(an importable module, absolute, and a class name) nor the name of a driver "
+            f"a package registers (entry-point group benchseq.drivers: {registered})",
         )
     channel = section.integer("channel", default=1, minimum=1, maximum=64)
     timeout = section.quantity("timeout", "s", default=5.0, within=BENCH_RANGES["timeout"])

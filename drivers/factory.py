@@ -8,6 +8,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from benchseq import plugins
 from benchseq.bench import Bench, InstrumentSpec
 from benchseq.drivers.generator import Generator
 from benchseq.drivers.instrument import Instrument
@@ -44,6 +45,16 @@ def driver_class(spec: InstrumentSpec, source: str) -> type[Instrument]:
     if spec.driver_class is None:
         return base
     key = f"{spec.role}.driver_class"
+    if ":" not in spec.driver_class:  # a name a lab package registers (entry point)
+        found: Any = plugins.load("driver", spec.driver_class, source, key)
+        if not (isinstance(found, type) and issubclass(found, base)):
+            raise FileKeyError(
+                source,
+                key,
+                f"the driver registered as {spec.driver_class!r} must be a subclass of "
+                f"benchseq.drivers.{base.__name__}",
+            )
+        return found
     module_name, _, class_name = spec.driver_class.partition(":")
     if not module_name or module_name.startswith(".") or not class_name:
         raise FileKeyError(source, key, "expected 'package.module:ClassName' (absolute)")
@@ -55,7 +66,7 @@ def driver_class(spec: InstrumentSpec, source: str) -> type[Instrument]:
         raise FileKeyError(
             source, key, f"importing module {module_name!r} failed: {type(exc).__name__}: {exc}"
         ) from None
-    found: Any = getattr(module, class_name, None)
+    found = getattr(module, class_name, None)
     if found is None:
         raise FileKeyError(source, key, f"module {module_name!r} has no class {class_name!r}")
     if not (isinstance(found, type) and issubclass(found, base)):

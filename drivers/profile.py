@@ -8,12 +8,14 @@ wrong placeholder or a missing command is a file error before any instrument is 
 
 from __future__ import annotations
 
+import os
 import string
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from benchseq import plugins
 from benchseq.errors import FileKeyError, nearest
 from benchseq.tomlfile import Section, parse_toml_text, read_toml
 
@@ -167,10 +169,12 @@ def profile_path(name_or_path: str | Path, base_dir: Path | None = None) -> tupl
 
 
 def available_profiles() -> list[str]:
+    """Shipped profile names, then those lab packages register (entry points)."""
     folder = resources.files("benchseq.drivers") / "profiles"
-    return sorted(
+    shipped = sorted(
         p.name.removesuffix(".toml") for p in folder.iterdir() if p.name.endswith(".toml")
     )
+    return shipped + [name for name in plugins.names("profile") if name not in shipped]
 
 
 def load_profile(
@@ -185,14 +189,32 @@ def load_profile(
         _text, data = read_toml(where)
     else:
         if not where.is_file():
-            raise FileKeyError(
-                str(name_or_path),
-                "",
-                f"no such instrument profile; shipped profiles: {', '.join(available_profiles())}"
-                " (or give a path to a .toml file)",
-            )
+            where, source = _registered_profile(str(name_or_path))
         _text, data = parse_toml_text(where.read_text(encoding="utf-8"), source)
     return parse_profile(data, source, role)
+
+
+def _registered_profile(name: str) -> tuple[Any, str]:
+    """A profile a lab package registers under ``name`` (entry-point group benchseq.profiles):
+    (a readable file, source text for messages)."""
+    if name not in plugins.registered("profile"):
+        raise FileKeyError(
+            name,
+            "",
+            f"no such instrument profile; available profiles: {', '.join(available_profiles())}"
+            " (or give a path to a .toml file)",
+        )
+    found = plugins.load("profile", name, f"profile {name}", "")
+    if callable(found):
+        found = found()
+    where = Path(found) if isinstance(found, str | os.PathLike) else found
+    if not (hasattr(where, "is_file") and hasattr(where, "read_text")) or not where.is_file():
+        raise FileKeyError(
+            f"profile {name}",
+            "",
+            f"the package registering it gives {found!r}, which is not a readable profile file",
+        )
+    return where, f"profile {name} ({where}, registered by a package)"
 
 
 def parse_profile(data: dict[str, Any], source: str, role: str | None = None) -> Profile:

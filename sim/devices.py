@@ -11,10 +11,11 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Protocol
+from typing import Protocol, cast
 
 import numpy as np
 
+from benchseq import plugins
 from benchseq.tomlfile import Section
 
 
@@ -49,6 +50,7 @@ class Device(Protocol):
 
     kind: str
     pin: PinImpedance
+    board_load_current: float  # A, drawn from the output by the device's own board
 
     def transfer(self, f: np.ndarray, op: OperatingPoint) -> np.ndarray:
         """V_out / V_pin (complex) at each frequency (Hz)."""
@@ -239,7 +241,12 @@ _RENAMES = {
 def device_from_section(section: Section, folder: Path | None = None) -> Device:
     """A device model from a scenario's [device] table (model = "regulator" | "amplifier" |
     "netlist"; a netlist file is read relative to ``folder``, the scenario file's folder)."""
-    model = section.text("model", choices=(*_QUANTITY_KEYS, "netlist"))
+    model = section.text("model")
+    if model not in (*_QUANTITY_KEYS, "netlist"):
+        if model in plugins.registered("device"):
+            factory = plugins.load("device", model, section.source, section.key_path("model"))
+            return cast(Device, factory(section, folder))
+        section.text("model", choices=(*_QUANTITY_KEYS, "netlist", *plugins.names("device")))
     if model == "netlist":
         from benchseq.sim.netlist import netlist_device_from_section
 
