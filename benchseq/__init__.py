@@ -1,7 +1,7 @@
 """benchseq: unattended supply-ripple rejection sweeps on SCPI instruments or a simulated bench.
 
 The Python interface (``benchseq.load_plan``, ``check_plan``, ``run``, ``resume``,
-``read_results`` …) is in ``benchseq.api``; its names are importable from here and load on
+``read_results``, ``to_xarray`` …) is in ``benchseq.api``; its names are importable from here and load on
 first use, so ``import benchseq`` stays light."""
 
 from __future__ import annotations
@@ -21,6 +21,7 @@ _API = (
     "read_waveforms",
     "resume",
     "run",
+    "to_xarray",
 )
 
 __all__ = ["__version__", *_API]

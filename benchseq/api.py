@@ -5,6 +5,7 @@
     print(benchseq.check_plan(plan).point_count)
     result = benchseq.run(plan, out="results/demo.h5", force=True)
     points = benchseq.read_results(result.path)     # a pandas DataFrame, one row per point
+    ds = benchseq.read_results(result.path, as_xarray=True)  # or an xarray.Dataset (optional)
 
 Every function takes a file path or an object already loaded; ``bench=None`` is the embedded
 simulated bench. Errors are the command line's: ``BadInput`` (a file or an option),
@@ -16,11 +17,16 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, Literal, overload
 
 from benchseq.bench import Bench, load_bench
 from benchseq.plan import Plan, load_plan
-from benchseq.results import read_meta, read_results, read_truth, read_waveforms
+from benchseq.results import read_meta, read_truth, read_waveforms
+from benchseq.results import read_results as _read_frame
+
+if TYPE_CHECKING:
+    import pandas
+    import xarray
 
 __all__ = [
     "RunResult",
@@ -33,6 +39,7 @@ __all__ = [
     "read_waveforms",
     "resume",
     "run",
+    "to_xarray",
 ]
 
 
@@ -46,6 +53,29 @@ class RunResult:
     @property
     def status(self) -> str:
         return str(self.outcome.status)
+
+
+@overload
+def read_results(path: str | Path, *, as_xarray: Literal[False] = False) -> pandas.DataFrame: ...
+@overload
+def read_results(path: str | Path, *, as_xarray: Literal[True]) -> xarray.Dataset: ...
+def read_results(path: str | Path, *, as_xarray: bool = False) -> Any:
+    """The table of points of result file ``path``, partial runs too: a pandas DataFrame (one
+    row per point, ``attrs["units"]`` the units by column) or, with ``as_xarray``, an
+    ``xarray.Dataset`` indexed by point_id (see ``to_xarray``; needs the optional xarray)."""
+    if as_xarray:
+        return to_xarray(path)
+    return _read_frame(path)
+
+
+def to_xarray(source: Any, meta: dict[str, Any] | None = None) -> xarray.Dataset:
+    """The points of a result file (or of a frame from ``read_results``/``read_truth``) as an
+    ``xarray.Dataset`` indexed by point_id: frequencies and operating point (dc_level,
+    load_current) as coordinates, ``units`` on every variable, the run's metadata in attrs.
+    ModuleNotFoundError saying how to install it when xarray is missing."""
+    from benchseq.xarray_export import to_xarray as export
+
+    return export(source, meta)
 
 
 def _plan(plan: Plan | str | Path) -> Plan:

@@ -19,8 +19,9 @@ CAL.h5 layout (plain h5py)::
     /meta/bench_text, /meta/plan_text   the files the calibration was made from
     /conditions    attrs: the scalar conditions (probes, coupling, bandwidth limit, scope
                    identity, ripple, DC level); json: all conditions as JSON
-    /table/<col>   one 1-D dataset per column (attrs unit, description); the group's
-                   "columns" attr gives the order; ratio is HDF5 complex128
+    /table/<col>   one 1-D dataset per column (attrs units, description: the result file's
+                   conventions, benchseq.h5layout); the group's "columns" attr gives the
+                   order; ratio is HDF5 complex128
 
 The file is written to a temporary file in the same folder, fsync'd, then renamed into
 place (or hard-linked, which refuses an existing file, when overwriting is not allowed);
@@ -43,6 +44,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import h5py
 import numpy as np
 
 from benchseq import __version__
@@ -51,13 +53,12 @@ from benchseq.bench import Bench, describe_band, load_bench
 from benchseq.cautions import PROBE_CAUTION
 from benchseq.coupling import high_pass
 from benchseq.errors import BadInput, MeasurementFailure
+from benchseq.h5layout import UNITS_ATTR
 from benchseq.journal import fsync_directory, fsync_fd
 from benchseq.plan import Plan, load_plan, parse_plan
 from benchseq.records import SHOWN_COVERAGE_FACTOR
-from benchseq.store import OutputExists  # also switches HDF5 file locking off before h5py
+from benchseq.store import OutputExists
 from benchseq.tomlfile import parse_toml_text
-
-import h5py  # isort: skip  (after benchseq.store, which sets HDF5_USE_FILE_LOCKING)
 
 FORMAT = "benchseq-calibration"
 SCHEMA_VERSION = 1
@@ -344,7 +345,7 @@ def _write_layout(h5: h5py.File, meta: Mapping[str, Any], table: Mapping[str, np
             ds = tgroup.create_dataset(column.name, data=np.asarray(values, dtype=np.complex128))
         else:
             ds = tgroup.create_dataset(column.name, data=np.asarray(values, dtype=float))
-        ds.attrs["unit"] = column.unit
+        ds.attrs[UNITS_ATTR] = column.unit
         ds.attrs["description"] = column.description
 
 

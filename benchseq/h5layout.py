@@ -7,19 +7,30 @@ Layout (plain h5py, no pickles)::
                       every short scalar meta item, point_rows, journal_id, journal_offset
     /meta/json        the whole meta dict as JSON text (authoritative for read_meta)
     /meta/<key>       long text items (plan_text, bench_text) and nested items (JSON text)
-    /points/<column>  one resizable 1-D dataset per column; attrs unit, description, kind;
-                      the group's "columns" attr lists the order; point_id is a column
-/points/row_crc32 CRC-32 of each row's canonical journal JSON (not a column: a check)
+    /points/<column>  one resizable 1-D dataset per column; attrs units, description, kind;
+                      the group's "columns" attr lists the order; point_id is a column and
+                      the HDF5 dimension scale of every other dataset of the group
+    /points/row_crc32 CRC-32 of each row's canonical journal JSON (not a column: a check)
     /truth/<column>   the simulator's truth per point, same layout (simulated benches)
     /waveforms/<ch>/  samples: every point's record of channel <ch> end to end (chunked,
                       gzip); point_id, start, length, scale, offset, sample_interval: one
-                      entry per point. value = samples[start:start+length] * scale + offset
+                      entry per point (point_id their dimension scale); the group's attr
+                      units is the unit of value = samples[start:start+length] * scale + offset
 
 Complex columns are stored as HDF5 complex128 (a compound of float64 fields "r" and "i",
 h5py's native mapping): h5py reads them back as complex numbers.
 
-File locking is never used (network drives often lack it): files are opened with
-``locking=False`` and HDF5_USE_FILE_LOCKING=FALSE is set for older builds.
+Units follow the common "units" attribute convention (CF conventions §3.1): the UDUNITS
+symbol ("Hz", "V", "A", "s", "deg"), "" for a ratio or a count, and "dB" (not a UDUNITS
+unit; common practice). Amplitudes say their convention and uncertainties their coverage
+factor in parentheses ("V (peak)", "V (pp)", "V (rms)", "dB (k=1)"): a number means nothing
+without it, so these stay readable to people at the cost of strict UDUNITS parsing. Files
+written before the rename carry "unit"; readers accept both (``units_of``).
+
+HDF5's own file locking is not used: every open passes ``locking=False``. Writers are
+serialised by benchseq.writelock, and an update is written to a temporary copy renamed into
+place, so a reader never needs a lock (network drives often lack one). Nothing is set in the
+process environment.
 
 benchseq.store brings the file up to date from the journal; benchseq.results reads it.
 """
@@ -27,18 +38,15 @@ benchseq.store brings the file up to date from the journal; benchseq.results rea
 from __future__ import annotations
 
 import json
-import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import h5py
 import numpy as np
 
 from benchseq.rowcodec import _DTYPES, BadResultFile, Column, _decode, row_checksum
-
-os.environ.setdefault("HDF5_USE_FILE_LOCKING", "FALSE")
-import h5py  # after the locking switch, which older HDF5 builds read at open
 
 FORMAT = "benchseq-result"
 FORMAT_VERSION = 1
@@ -56,6 +64,10 @@ CHECKSUM_MEANING = (
     "',' and ':', complex as [real, imag], NaN as NaN; readers recompute and compare"
 )
 _ATTR_TEXT_LIMIT = 2048  # longer strings go to /meta datasets (attributes stay small)
+UNITS_ATTR = "units"
+_OLD_UNITS_ATTR = "unit"  # what files written before the "units" convention carry
+ID_SCALE = "point_id"  # the dimension scale of every per-point dataset of a group
+_WAVE_INDEX = ("start", "length", "scale", "offset", "sample_interval")
 
 
 def journal_path(path: str | Path) -> Path:
@@ -84,14 +96,49 @@ def _column_group(h5: h5py.File, name: str, columns: Sequence[Column]) -> h5py.G
             ds = group.create_dataset(
                 column.name, shape=(0,), maxshape=(None,), chunks=(256,), dtype=dtype
             )
-            ds.attrs["unit"] = column.unit
+            ds.attrs[UNITS_ATTR] = column.unit
             ds.attrs["description"] = column.description
             ds.attrs["kind"] = column.kind
         crc = group.create_dataset(
             CHECKSUM_NAME, shape=(0,), maxshape=(None,), chunks=(256,), dtype="u4"
         )
         crc.attrs["description"] = CHECKSUM_MEANING
+    elif not group[ID_SCALE].is_scale:  # an older file (see the module's notes), resumed
+        for column in columns:  # or repaired: brought to today's conventions
+            _rename_units(group[column.name])
+    _scale_by_point_id(group, [c.name for c in columns] + [CHECKSUM_NAME])
     return group
+
+
+def _rename_units(obj: h5py.Group | h5py.Dataset) -> None:
+    """An older file's "unit" attribute renamed "units" (same text)."""
+    if _OLD_UNITS_ATTR in obj.attrs and UNITS_ATTR not in obj.attrs:
+        obj.attrs[UNITS_ATTR] = obj.attrs[_OLD_UNITS_ATTR]
+        del obj.attrs[_OLD_UNITS_ATTR]
+
+
+def units_of(obj: h5py.Group | h5py.Dataset, default: str | None = None) -> str:
+    """The "units" attribute of ``obj``, or an older file's "unit" (KeyError without either,
+    unless a ``default`` is given)."""
+    for name in (UNITS_ATTR, _OLD_UNITS_ATTR):
+        if name in obj.attrs:
+            return str(obj.attrs[name])
+    if default is None:
+        raise KeyError(f"{obj.name} has no {UNITS_ATTR!r} attribute")
+    return default
+
+
+def _scale_by_point_id(group: h5py.Group, names: Sequence[str]) -> None:
+    """Make ``group``'s point_id an HDF5 dimension scale attached to dimension 0 of the
+    datasets ``names`` (those present), unless it is one already. The attachments are object
+    references inside the file: they survive resizes and the byte copy each update makes."""
+    ids = group[ID_SCALE]
+    if ids.is_scale:
+        return
+    ids.make_scale(ID_SCALE)
+    for name in names:
+        if name != ID_SCALE and name in group:
+            group[name].dims[0].attach_scale(ids)
 
 
 def _append_rows(group: h5py.Group, columns: Sequence[Column], rows: list[dict]) -> None:
@@ -119,7 +166,7 @@ def _append_waveforms(h5: h5py.File, point_id: int, parts: list[dict], blob: byt
         samples = np.frombuffer(blob, dtype=dtype, count=part["length"], offset=part["at"])
         if "samples" not in group:
             group.attrs["meaning"] = "value = samples[start:start+length] * scale + offset"
-            group.attrs["unit"] = part["unit"]
+            group.attrs[UNITS_ATTR] = part["unit"]
             group.create_dataset(
                 "samples", shape=(0,), maxshape=(None,), dtype=dtype, chunks=(1 << 15,),
                 compression="gzip", compression_opts=4, shuffle=True,
@@ -128,7 +175,12 @@ def _append_waveforms(h5: h5py.File, point_id: int, parts: list[dict], blob: byt
                 group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype=kind)
             for name in ("scale", "offset", "sample_interval"):
                 group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype="f8")
-            group["sample_interval"].attrs["unit"] = "s"
+            group["sample_interval"].attrs[UNITS_ATTR] = "s"
+            _scale_by_point_id(group, _WAVE_INDEX)
+        elif not group[ID_SCALE].is_scale:  # an older file's index, being resumed or repaired
+            _rename_units(group)
+            _rename_units(group["sample_interval"])
+            _scale_by_point_id(group, _WAVE_INDEX)
         store = group["samples"]
         start = store.shape[0]
         store.resize((start + samples.size,))
@@ -190,7 +242,7 @@ def _group_columns(group: h5py.Group, where: str) -> list[Column]:
     try:
         names = json.loads(group.attrs["columns"])
         return [
-            Column(n, str(group[n].attrs["kind"]), str(group[n].attrs["unit"]),
+            Column(n, str(group[n].attrs["kind"]), units_of(group[n]),
                    str(group[n].attrs["description"]))
             for n in names
         ]  # fmt: skip

@@ -33,6 +33,7 @@ from benchseq.h5layout import (
     _result_path,
     _Unreadable,
     journal_path,
+    units_of,
 )
 from benchseq.rowcodec import (
     _DTYPES,
@@ -372,7 +373,7 @@ def read_waveforms(path: str | Path, point_id: int) -> dict[str, StoredWaveform]
                     found[channel] = StoredWaveform(
                         group["samples"][start : start + length],
                         float(group["scale"][i]), float(group["offset"][i]),
-                        float(group["sample_interval"][i]), str(group.attrs.get("unit", "")),
+                        float(group["sample_interval"][i]), units_of(group, ""),
                     )  # fmt: skip
         return found
     for record in sources.points():

@@ -184,7 +184,7 @@ def test_file_round_trip_and_self_description(lab: dict[str, Any]) -> None:
     assert summary["points"][0]["gain_db"] == pytest.approx(loaded.columns["gain_db"][0])
     with h5py.File(loaded.path, "r") as h5:  # plain h5py, no benchseq needed
         assert h5.attrs["format"] == cal.FORMAT and h5.attrs["schema_version"] == 1
-        assert h5["table/frequency"].attrs["unit"] == "Hz"
+        assert h5["table/frequency"].attrs["units"] == "Hz"
         assert h5["table/ratio"].dtype == np.complex128
         assert h5["conditions"].attrs["output_probe"] == 1.0
         assert "calibration" in h5["meta/bench_text"][()].decode()

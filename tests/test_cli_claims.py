@@ -147,7 +147,7 @@ def test_every_plus_minus_is_k2_and_the_target_is_k1(
     frame = read_results(out).sort_values("point_id")
     with h5py.File(out, "r") as h5:
         attrs = h5["points/uncertainty_db"].attrs
-        assert attrs["unit"] == "dB (k=1)" and "k = 1" in attrs["description"]
+        assert attrs["units"] == "dB (k=1)" and "k = 1" in attrs["description"]
         assert h5.attrs["coverage_factor"] == 1.0 and "U = 2u" in h5.attrs["coverage"]
     code, printed, _ = _cli(capsys, "show", str(out), "--json")
     assert code == 0 and json.loads(printed)["units"]["uncertainty_db"] == "dB (k=1)"
@@ -202,7 +202,7 @@ def test_amplitude_units_carry_their_convention(run: tuple[Path, Path], tmp_path
     }
     with h5py.File(out, "r") as h5:
         for name, unit in expected.items():
-            assert h5[f"points/{name}"].attrs["unit"] == unit, name
+            assert h5[f"points/{name}"].attrs["units"] == unit, name
     csv = tmp_path / "units.csv"
     assert main(["report", str(out), "-o", str(csv)]) == 0
     header = csv.read_text(encoding="utf-8").splitlines()[0].split(",")

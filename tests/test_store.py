@@ -131,15 +131,15 @@ def test_plain_h5py_reads_units_complex_and_meta(tmp_path):
         assert h5.attrs["point_count"] == 12 and h5.attrs["reason"] == "operator stop"
         points = h5["points"]
         assert json.loads(points.attrs["columns"]) == [c.name for c in COLUMNS]
-        assert points["frequency"].attrs["unit"] == "Hz"
-        assert points["pin"].attrs["unit"] == "V" and points["pin"].dtype == np.complex128
+        assert points["frequency"].attrs["units"] == "Hz"
+        assert points["pin"].attrs["units"] == "V" and points["pin"].dtype == np.complex128
         assert points["pin"][1] == complex(0.1, -0.03)
         assert list(points["point_id"][:]) == list(range(5))
         assert points["flags"].asstr()[0] == "bound distorted Ω µ"
         assert h5["meta/plan_text"].asstr()[()] == META["plan_text"]
         assert json.loads(h5["meta/injector"].asstr()[()]) == META["injector"]
         assert json.loads(h5["meta/json"].asstr()[()])["status"] == "stopped"
-        assert h5["truth/rejection_db"].attrs["unit"] == "dB"
+        assert h5["truth/rejection_db"].attrs["units"] == "dB"
         assert "groups per point" and len(h5["points"]) == len(COLUMNS) + 1  # + row_crc32
 
 
