@@ -153,13 +153,14 @@ def solve_point(
         freqs = np.array([frequency])
         opamp_h = np.array([opamp1])
         pin_h = ac.pin_per_emf * emf
-    transfer = device.transfer(freqs, op)
-    output_h = pin_h * transfer
-    fundamental = complex(transfer[0])
-    output_dc = device.output_dc(op)
     transient = getattr(device, "large_signal", None)
     answer = transient(frequency, pin_h, op) if transient is not None and emf_peak > 0 else None
-    if answer is not None:
+    if answer is None:
+        transfer = device.transfer(freqs, op)
+        output_h = pin_h * transfer
+        fundamental = complex(transfer[0])
+        output_dc = device.output_dc(op)
+    else:
         count = max(answer.harmonics.size, pin_h.size)
         freqs = frequency * np.arange(1, count + 1)
         pin_h = np.concatenate([pin_h, np.zeros(count - pin_h.size, dtype=complex)])
