@@ -549,8 +549,9 @@ class NetlistSolver:
         harmonics = np.asarray(pin_harmonics, dtype=complex)
         if harmonics.size == 0 or abs(harmonics[0]) == 0:
             raise ValueError("a transient analysis needs a pin ripple")
-        # time invariance: solve with the fundamental at phase zero, turn the answer back
-        turn = harmonics[0] / abs(harmonics[0])
+        # time invariance: solve with the fundamental as sin(ωt) (the pin starts at its DC
+        # level, no step at t = 0), turn the answer back
+        turn = 1j * harmonics[0] / abs(harmonics[0])
         order = np.arange(1, harmonics.size + 1)
         aligned = harmonics * turn.conjugate() ** order
         resolved = tuple(
