@@ -268,9 +268,15 @@ def test_bad_large_signal_keys_name_file_and_key(tmp_path: Path, table: str, key
     assert key in str(caught.value) and "large.toml" in str(caught.value)
 
 
-def test_conditions_choose_the_points() -> None:
+def test_conditions_choose_the_points(tmp_path: Path) -> None:
     """ripple_above compares the pin ripple whatever its convention was written in (Vpp =
-    2 Vpk, common practice); the frequency band and the DC ceiling include their ends."""
+    2 Vpk, Vrms = Vpk/√2 for a sine, common practice); the frequency band and the DC ceiling
+    include their ends."""
+    require_ngspice()
+    for written, peak in (('"500 mVpp"', 0.25), ('"0.1 Vrms"', 0.1 * math.sqrt(2.0))):
+        device = _scenario(tmp_path, f"[device.large_signal]\nripple_above = {written}\n").device
+        chosen = device.large_signal_settings  # type: ignore[attr-defined]
+        assert math.isclose(chosen.min_ripple, peak, rel_tol=1e-12)
     settings = netlist_module.LargeSignal(
         min_ripple=0.25, frequency_from=100.0, frequency_to=1e4, pin_dc_below=4.0
     )
