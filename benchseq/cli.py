@@ -836,6 +836,14 @@ def _attach_console_log(args: argparse.Namespace) -> tuple[logging.Handler, int]
     return handler, previous
 
 
+def _json_error(args: argparse.Namespace, error: object, code: int) -> int:
+    """With --json, stdout still carries JSON when a command fails: the error and the
+    exit code (the message itself went to stderr as without --json)."""
+    if getattr(args, "json", False):
+        _print_json({"error": str(error), "exit_code": code})
+    return code
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -849,13 +857,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(args.func(args))
     except BadInput as exc:
         _console(stderr=True).print(f"[bold red]error:[/] {_escape(exc)}")
-        return EXIT_BAD_INPUT
+        return _json_error(args, exc, EXIT_BAD_INPUT)
     except BenchseqError as exc:
         _console(stderr=True).print(f"[bold red]failed:[/] {_escape(exc)}")
-        return exc.exit_code
+        return _json_error(args, exc, exc.exit_code)
     except KeyboardInterrupt:
         _console(stderr=True).print("interrupted")
-        return EXIT_FAILURE
+        return _json_error(args, "interrupted", EXIT_FAILURE)
     finally:
         package = logging.getLogger("benchseq")
         package.removeHandler(handler)

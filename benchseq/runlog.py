@@ -75,21 +75,27 @@ class ProgressLog:
                 self.logger.info("operating point %s", here)
             self.points += 1
             self.logger.info("%s", point_line(event.row, event.done, event.total))
-        elif kind in ("warning", "caution"):
+        elif kind == "warning":
             self.logger.warning("%s", event.message)
+        elif kind == "caution":  # before the bench opens (a real bench): said, never asked
+            self.logger.warning("%s", event.message, extra={"label": "caution"})
         elif kind in ("state", "finished") and event.message:
             self.logger.info("%s", event.message)
 
 
 class LineFormatter(logging.Formatter):
-    """'2026-12-05 09:14:03 message', with 'warning: ' / 'error: ' before what is one."""
+    """'2026-12-05 09:14:03 message', with 'warning: ' / 'error: ' before what is one (or
+    the record's own ``label``, e.g. 'caution: ')."""
 
     def __init__(self) -> None:
         super().__init__("%(asctime)s %(message)s", CLOCK_FORMAT)
 
     def format(self, record: logging.LogRecord) -> str:
         text = super().format(record)
-        if record.levelno >= logging.ERROR:
+        label = getattr(record, "label", None)
+        if label is not None:
+            prefix = f"{label}: "
+        elif record.levelno >= logging.ERROR:
             prefix = "error: "
         elif record.levelno >= logging.WARNING:
             prefix = "warning: "
