@@ -52,7 +52,7 @@ def run_after_command(
 
     Returns its exit code (None when it could not start or was ended at its limit); never
     raises for the command's own failure, which is logged as a warning."""
-    shown = " ".join(argv)
+    shown = argv[0] if argv else "(none)"
     posix = os.name == "posix"
     try:
         proc = subprocess.Popen(

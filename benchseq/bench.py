@@ -424,7 +424,13 @@ def _after_run(section: Section | None) -> tuple[tuple[str, ...] | None, float]:
 
     if section is None:
         return None, DEFAULT_TIMEOUT_S
-    command = section.raw("command")
+    command = section.raw("command", default=None)
+    timeout = section.quantity(
+        "timeout", "s", default=DEFAULT_TIMEOUT_S, **_within(section, "timeout")
+    )
+    section.done()  # a misspelt key is named before a missing command
+    if command is None:
+        raise section.error("command", "missing (required)")
     if not (
         isinstance(command, list)
         and command
@@ -435,10 +441,6 @@ def _after_run(section: Section | None) -> tuple[tuple[str, ...] | None, float]:
             "expected a list of text: the program, then its arguments, "
             'e.g. ["/usr/local/bin/lab-notify", "--room", "bay 2"] (no shell is used)',
         )
-    timeout = section.quantity(
-        "timeout", "s", default=DEFAULT_TIMEOUT_S, **_within(section, "timeout")
-    )
-    section.done()
     return tuple(command), timeout
 
 

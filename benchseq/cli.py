@@ -7,6 +7,7 @@ import argparse
 import contextlib
 import json
 import logging
+import os
 import sys
 import warnings
 from collections.abc import Iterator, Sequence
@@ -346,7 +347,7 @@ class _RunEnding:
         if not argv:
             return
         variables = ending_environment(
-            result=str(self.path or ""),
+            result=os.path.abspath(self.path) if self.path else "",
             status=self.status,
             verdict=self.verdict,
             exit_code=code,
