@@ -818,6 +818,22 @@ def _commands(sub: Any) -> list[argparse.ArgumentParser]:
     return found
 
 
+class _StderrHandler(logging.StreamHandler):  # type: ignore[type-arg]
+    """A handler writing to whatever sys.stderr is when a record comes (the live display
+    redirects it, to print lines above itself)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+
+    @property  # type: ignore[override]
+    def stream(self) -> Any:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value: Any) -> None:
+        pass
+
+
 def _attach_console_log(args: argparse.Namespace) -> tuple[logging.Handler, int]:
     """The terminal's log handler (stderr) on the ``benchseq`` logger, at the level -q/-v
     give; returns it and the logger's previous level, to put back."""
@@ -826,7 +842,7 @@ def _attach_console_log(args: argparse.Namespace) -> tuple[logging.Handler, int]
     package = logging.getLogger("benchseq")
     previous = package.level
     package.setLevel(logging.DEBUG if args.verbose else logging.INFO)
-    handler = logging.StreamHandler(sys.stderr)
+    handler = _StderrHandler()
     handler.setFormatter(LineFormatter())
     handler.setLevel(
         logging.WARNING if args.quiet else logging.DEBUG if args.verbose else logging.INFO
