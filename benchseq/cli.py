@@ -169,6 +169,16 @@ class _ConsoleFilter(logging.Filter):
         return not (self.live and record.name == "benchseq.run")
 
 
+def _is_terminal(console: Any) -> bool:
+    """True when the console writes to a terminal (its stream's isatty; FORCE_COLOR and the
+    like colour the output but do not make a redirected run draw a live display)."""
+    isatty = getattr(console.file, "isatty", None)
+    try:
+        return bool(isatty()) if isatty is not None else False
+    except ValueError:  # a closed stream
+        return False
+
+
 class _Progress:
     """Event sink of a run: its log lines (benchseq.runlog) always; on a terminal, and
     unless --quiet, the live display too (the terminal's log handler then leaves the lines
@@ -178,7 +188,7 @@ class _Progress:
         from benchseq.runlog import ProgressLog
 
         self.log = ProgressLog()
-        live = not getattr(args, "quiet", False) and bool(console.is_terminal)
+        live = not getattr(args, "quiet", False) and _is_terminal(console)
         self.display = _LiveDisplay(console) if live else None
         self.filter: _ConsoleFilter | None = getattr(args, "log_filter", None)
         if self.filter is not None:

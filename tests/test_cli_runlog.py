@@ -159,6 +159,21 @@ def test_resume_appends_to_the_run_log_after_a_marking_line(
     assert len([m for m in _lines(before, POINT_LINE)]) == first
 
 
+def test_on_a_terminal_the_live_display_shows_the_points_and_the_lines_go_to_the_log(
+    plans: dict[str, Path],
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.setattr("benchseq.cli._is_terminal", lambda console: True)
+    out = tmp_path / "live.h5"
+    assert main(["run", str(plans["one"]), "--out", str(out)]) == 0
+    printed, said = capsys.readouterr()
+    assert "latest points" in printed  # the live display's table
+    assert _lines(said, POINT_LINE) == [] and _lines(printed, POINT_LINE) == []
+    assert len(_points(out.with_suffix(".log"))) == len(read_results(out)) == 1
+
+
 # -- -q and -v -----------------------------------------------------------------------------
 def test_quiet_keeps_to_the_verdict_and_verbose_adds_instrument_detail(
     plans: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
