@@ -286,9 +286,10 @@ def run_prepared(
         truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,
     )
     log.info(
-        "run started: %s, %d points, bench %s; results %s",
+        "run started: %s, %d point%s, bench %s; results %s",
         plan.source,
         report.point_count,
+        "" if report.point_count == 1 else "s",
         bench.name,
         path,
     )
