@@ -305,6 +305,7 @@ class _RunEnding:
         self.status, self.reason, self.verdict = "failed", "", ""
         self.not_safe: list[str] = []
         self.handler: logging.FileHandler | None = None
+        self._command: tuple[list[str], float | None] | None = None
 
     def open_log(self, path: Any) -> None:
         """The run log beside ``path``: replaced by a new run, appended to on --resume; the
@@ -353,7 +354,7 @@ class _RunEnding:
     def _after_run(self, code: int, handler: logging.FileHandler | None) -> None:
         from benchseq.afterrun import DEFAULT_TIMEOUT_S, ending_environment, run_after_command
 
-        argv, timeout = self._command()
+        argv, timeout = self.command()
         if not argv:
             return
         variables = ending_environment(
@@ -367,9 +368,15 @@ class _RunEnding:
         )
         run_after_command(argv, variables, timeout or DEFAULT_TIMEOUT_S)
 
-    def _command(self) -> tuple[list[str], float | None]:
+    def command(self) -> tuple[list[str], float | None]:
         """--after-run, else the bench's [after_run] (the stored bench on --resume); none
-        when neither is given or the bench cannot be read (its error is reported already)."""
+        when neither is given or the bench cannot be read (its error is reported already).
+        Read once: a new run's bench when it starts, a resumed run's at its end."""
+        if self._command is None:
+            self._command = self._read_command()
+        return self._command
+
+    def _read_command(self) -> tuple[list[str], float | None]:
         import shlex
 
         bench = None
@@ -414,6 +421,8 @@ def _run_path(args: argparse.Namespace) -> Any:
 
 def cmd_run(args: argparse.Namespace) -> int:
     ending = _RunEnding(args)
+    if not args.resume:
+        ending.command()  # the bench's after-run command as the run starts
     code = EXIT_FAILURE
     try:
         ending.open_log(_run_path(args))
