@@ -6,6 +6,8 @@ from __future__ import annotations
 import argparse
 import contextlib
 import json
+import logging
+import os
 import sys
 import warnings
 from collections.abc import Iterator, Sequence
@@ -153,6 +155,57 @@ class _LiveDisplay:
             self.display = None
 
 
+class _ConsoleFilter(logging.Filter):
+    """What the terminal's log handler leaves out: the run's own lines while the live
+    display shows them, and what is meant for the run log file only."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.live = False
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if getattr(record, "run_log_only", False):
+            return False
+        return not (self.live and record.name == "benchseq.run")
+
+
+def _is_terminal(console: Any) -> bool:
+    """True when the console writes to a terminal (its stream's isatty; FORCE_COLOR and the
+    like colour the output but do not make a redirected run draw a live display)."""
+    isatty = getattr(console.file, "isatty", None)
+    try:
+        return bool(isatty()) if isatty is not None else False
+    except ValueError:  # a closed stream
+        return False
+
+
+class _Progress:
+    """Event sink of a run: its log lines (benchseq.runlog) always; on a terminal, and
+    unless --quiet, the live display too (the terminal's log handler then leaves the lines
+    to it). Without a terminal (output redirected) the lines are the progress."""
+
+    def __init__(self, console: Any, args: argparse.Namespace) -> None:
+        from benchseq.runlog import ProgressLog
+
+        self.log = ProgressLog()
+        live = not getattr(args, "quiet", False) and _is_terminal(console)
+        self.display = _LiveDisplay(console) if live else None
+        self.filter: _ConsoleFilter | None = getattr(args, "log_filter", None)
+        if self.filter is not None:
+            self.filter.live = live
+
+    def __call__(self, event: Any) -> None:
+        self.log(event)
+        if self.display is not None:
+            self.display(event)
+
+    def close(self) -> None:
+        if self.display is not None:
+            self.display.close()
+        if self.filter is not None:
+            self.filter.live = False
+
+
 def cmd_replay(args: argparse.Namespace) -> int:
     from pathlib import Path
 
@@ -178,9 +231,9 @@ def cmd_replay(args: argparse.Namespace) -> int:
     from benchseq.replay import render_comparison, replay
     from benchseq.stopping import StopControl
 
-    console = _console()
+    console = _console(stderr=args.json)
     stop = StopControl()
-    sink = _LiveDisplay(console, quiet=args.json)
+    sink = _Progress(console, args)
     with stop.installed():
         try:
             outcome = replay(
@@ -212,7 +265,7 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
 
     console = _console(stderr=args.json)
     stop = StopControl()
-    sink = _LiveDisplay(console)
+    sink = _Progress(console, args)
 
     def confirm(message: str) -> bool:
         console.print(_escape(message))
@@ -242,26 +295,164 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+class _RunEnding:
+    """How `run` ended, for its run log (RESULT.log beside the result) and its after-run
+    command: both are set up here, the command started on every way out (benchseq.afterrun)."""
+
+    def __init__(self, args: argparse.Namespace) -> None:
+        self.args = args
+        self.path: Any = None
+        self.status, self.reason, self.verdict = "failed", "", ""
+        self.not_safe: list[str] = []
+        self.handler: logging.FileHandler | None = None
+        self._command: tuple[list[str], float | None] | None = None
+
+    def open_log(self, path: Any) -> None:
+        """The run log beside ``path``: replaced by a new run, appended to on --resume; the
+        file is created with the first line (so a run refused before it began leaves none)."""
+        from benchseq.runlog import LineFormatter, run_log_path
+
+        self.path = path
+        handler = logging.FileHandler(
+            run_log_path(path), mode="a" if self.args.resume else "w", encoding="utf-8", delay=True
+        )
+        handler.setFormatter(LineFormatter())
+        handler.setLevel(logging.DEBUG if self.args.verbose else logging.INFO)
+        logging.getLogger("benchseq").addHandler(handler)
+        self.handler = handler
+
+    def failed(self, exc: BaseException) -> int:
+        """The exit code ``main`` gives for ``exc``; noted in the run log if it began."""
+        if isinstance(exc, BadInput):
+            self.status, code = "refused", EXIT_BAD_INPUT
+        elif isinstance(exc, BenchseqError):
+            self.status, code = "failed", exc.exit_code
+        elif isinstance(exc, KeyboardInterrupt):
+            self.status, code = "stopped", EXIT_FAILURE
+        else:
+            self.status, code = "failed", EXIT_FAILURE
+        self.reason = str(exc) or type(exc).__name__
+        if self.handler is not None and self.handler.stream is not None:
+            logging.getLogger("benchseq.run").error(
+                "run %s: %s", self.status, self.reason, extra={"run_log_only": True}
+            )
+        return code
+
+    def close(self, code: int) -> None:
+        """Start the after-run command (if any), then let go of the run log."""
+        handler, self.handler = self.handler, None
+        if handler is not None and handler.stream is None:  # nothing began: no log file
+            logging.getLogger("benchseq").removeHandler(handler)
+            handler = None
+        try:
+            self._after_run(code, handler)
+        finally:
+            if handler is not None:
+                logging.getLogger("benchseq").removeHandler(handler)
+                handler.close()
+
+    def _after_run(self, code: int, handler: logging.FileHandler | None) -> None:
+        from benchseq.afterrun import DEFAULT_TIMEOUT_S, ending_environment, run_after_command
+
+        argv, timeout = self.command()
+        if not argv:
+            return
+        variables = ending_environment(
+            result=os.path.abspath(self.path) if self.path else "",
+            status=self.status,
+            verdict=self.verdict,
+            exit_code=code,
+            reason=self.reason,
+            not_safe=self.not_safe,
+            run_log=handler.baseFilename if handler is not None else "",
+        )
+        run_after_command(argv, variables, timeout or DEFAULT_TIMEOUT_S)
+
+    def command(self) -> tuple[list[str], float | None]:
+        """--after-run, else the bench's [after_run] (the stored bench on --resume); none
+        when neither is given or the bench cannot be read (its error is reported already).
+        Read once: a new run's bench when it starts, a resumed run's at its end."""
+        if self._command is None:
+            self._command = self._read_command()
+        return self._command
+
+    def _read_command(self) -> tuple[list[str], float | None]:
+        import shlex
+
+        bench = None
+        try:
+            if self.args.resume:
+                from benchseq.bench import parse_bench
+                from benchseq.store import read_meta
+                from benchseq.tomlfile import parse_toml_text
+
+                meta = read_meta(self.args.resume)
+                text, data = parse_toml_text(
+                    meta["bench_text"], f"{self.args.resume} (stored bench)"
+                )
+                bench = parse_bench(data, str(meta["bench_source"]), text)
+            else:
+                from benchseq.bench import load_bench
+
+                bench = load_bench(self.args.bench)
+        except Exception:  # a bench that cannot be read names no command
+            bench = None
+        timeout = bench.after_run_timeout if bench is not None else None
+        if self.args.after_run:
+            return shlex.split(self.args.after_run), timeout
+        if bench is not None and bench.after_run:
+            return list(bench.after_run), timeout
+        return [], timeout
+
+
+def _run_path(args: argparse.Namespace) -> Any:
+    """The result file of this run: --resume's, --out, or the plan's default name."""
+    from pathlib import Path
+
+    from benchseq.plan import load_plan
+    from benchseq.runner import default_output
+
+    if args.resume:
+        return Path(args.resume)
+    if not args.plan:
+        raise BadInput("give a plan file (or --resume RESULT.h5)")
+    return Path(args.out) if args.out else default_output(load_plan(args.plan))
+
+
 def cmd_run(args: argparse.Namespace) -> int:
+    ending = _RunEnding(args)
+    if not args.resume:
+        ending.command()  # the bench's after-run command as the run starts
+    code = EXIT_FAILURE
+    try:
+        ending.open_log(_run_path(args))
+        code = _run(args, ending)
+        return code
+    except BaseException as exc:
+        code = ending.failed(exc)
+        raise
+    finally:
+        ending.close(code)
+
+
+def _run(args: argparse.Namespace, ending: _RunEnding) -> int:
     from benchseq.display import duration_text
     from benchseq.runner import resume_run, start_run
     from benchseq.stopping import StopControl
 
-    console = _console()
+    console = _console(stderr=args.json)
     stop = StopControl()
-    emit = _LiveDisplay(console)
+    emit = _Progress(console, args)
 
     with stop.installed(), _result_notices():
         try:
             if args.resume:
                 outcome, path = resume_run(args.resume, args.plan, args.bench, emit=emit, stop=stop)
             else:
-                if not args.plan:
-                    raise BadInput("give a plan file (or --resume RESULT.h5)")
                 outcome, path = start_run(
                     args.plan,
                     args.bench,
-                    args.out,
+                    str(ending.path),
                     force=args.force,
                     keep_waveforms=args.keep_waveforms,
                     seed=args.seed,
@@ -271,8 +462,19 @@ def cmd_run(args: argparse.Namespace) -> int:
         finally:
             emit.close()
     if outcome is None:
-        console.print(f"{_escape(path)} is already complete; nothing to do.")
+        ending.status, ending.reason = "complete", "already complete; nothing to do"
+        if args.json:
+            _print_json({"status": "complete", "reason": ending.reason, "file": str(path)})
+        else:
+            console.print(f"{_escape(path)} is already complete; nothing to do.")
         return EXIT_OK
+    from benchseq.store import read_meta, read_results
+
+    with _result_notices():
+        verdict = _verdict(read_meta(path), read_results(path), str(path))
+    ending.status, ending.reason = outcome.status, outcome.reason
+    ending.not_safe = list(outcome.not_safe)
+    ending.verdict = verdict.status if verdict is not None else ""
     if args.json:
         _print_json(
             {
@@ -285,28 +487,27 @@ def cmd_run(args: argparse.Namespace) -> int:
                 "bench_time_s": outcome.bench_time,
                 "safe_state": list(outcome.safe_state),
                 "not_safe": list(outcome.not_safe),
+                "verdict": ending.verdict or None,
             }
         )
     else:
         colour = {"complete": "green", "stopped": "yellow"}.get(outcome.status, "red")
         console.print(f"[bold {colour}]run {outcome.status}[/]: {_escape(outcome.reason)}")
-        console.print(
-            f"points measured this session: {outcome.measured} "
-            f"(lower bounds: {outcome.bounds}, flagged: {outcome.flagged}); "
-            f"bench time {duration_text(outcome.bench_time)}"
-        )
-        console.print("safe state: " + _escape("; ".join(outcome.safe_state)))
-        from benchseq.store import read_meta, read_results
-
-        with _result_notices():
-            verdict = _verdict(read_meta(path), read_results(path), str(path))
+        if not args.quiet:
+            console.print(
+                f"points measured this session: {outcome.measured} "
+                f"(lower bounds: {outcome.bounds}, flagged: {outcome.flagged}); "
+                f"bench time {duration_text(outcome.bench_time)}"
+            )
+            console.print("safe state: " + _escape("; ".join(outcome.safe_state)))
         if verdict is not None and verdict.status != "no mask":
             console.print(_verdict_markup(verdict))
-        console.print(f"results: [bold]{_escape(path)}[/]")
-        if outcome.status != "complete":
-            console.print(f"continue with: benchseq run --resume {_escape(path)}")
-        console.print(f"summary: benchseq show {_escape(path)}")
-        console.print(f"lab report: benchseq report {_escape(path)}")
+        if not args.quiet:
+            console.print(f"results: [bold]{_escape(path)}[/]")
+            if outcome.status != "complete":
+                console.print(f"continue with: benchseq run --resume {_escape(path)}")
+            console.print(f"summary: benchseq show {_escape(path)}")
+            console.print(f"lab report: benchseq report {_escape(path)}")
     if outcome.not_safe:  # never exit 0 with a bench that may still be energised
         _not_safe_alarm(outcome.not_safe, stderr=args.json)
         return EXIT_FAILURE
@@ -489,6 +690,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="overwrite an existing result file")
     p.add_argument("--keep-waveforms", action="store_true", help="store raw scope records")
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated bench (default 0)")
+    p.add_argument(
+        "--after-run",
+        metavar="COMMAND",
+        help="program (and arguments, split as a POSIX shell would, but run without one) to "
+        "start when the run ends in any state; replaces the bench's [after_run] command",
+    )
     p.add_argument("--json", action="store_true", help="print the outcome as JSON")
     p.set_defaults(func=cmd_run)
 
@@ -594,23 +801,106 @@ def build_parser() -> argparse.ArgumentParser:
         "--log", metavar="FILE", help="append every instrument state change to FILE (JSON lines)"
     )
     q.set_defaults(func=cmd_sim_serve)
+    _verbosity_options(parser, sub)
     return parser
+
+
+def _verbosity_options(parser: argparse.ArgumentParser, sub: Any) -> None:
+    """-q/--quiet and -v/--verbose, before the command or after it (benchseq -v run ...,
+    benchseq run ... -v)."""
+    for target, default in [(parser, False), *((c, argparse.SUPPRESS) for c in _commands(sub))]:
+        group = target.add_mutually_exclusive_group()
+        group.add_argument(
+            "-q",
+            "--quiet",
+            action="store_true",
+            default=default,
+            help="warnings and the final verdict only",
+        )
+        group.add_argument(
+            "-v",
+            "--verbose",
+            action="store_true",
+            default=default,
+            help="debug detail too (instrument settings read back, capture decisions)",
+        )
+
+
+def _commands(sub: Any) -> list[argparse.ArgumentParser]:
+    """Every command's parser, nested ones (sim serve) included."""
+    found = []
+    for command in dict.fromkeys(sub.choices.values()):
+        found.append(command)
+        for action in command._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                found += _commands(action)
+    return found
+
+
+class _StderrHandler(logging.StreamHandler):  # type: ignore[type-arg]
+    """A handler writing to whatever sys.stderr is when a record comes (the live display
+    redirects it, to print lines above itself)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+
+    @property  # type: ignore[override]
+    def stream(self) -> Any:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value: Any) -> None:
+        pass
+
+
+def _attach_console_log(args: argparse.Namespace) -> tuple[logging.Handler, int]:
+    """The terminal's log handler (stderr) on the ``benchseq`` logger, at the level -q/-v
+    give; returns it and the logger's previous level, to put back."""
+    from benchseq.runlog import LineFormatter
+
+    package = logging.getLogger("benchseq")
+    previous = package.level
+    package.setLevel(logging.DEBUG if args.verbose else logging.INFO)
+    handler = _StderrHandler()
+    handler.setFormatter(LineFormatter())
+    handler.setLevel(
+        logging.WARNING if args.quiet else logging.DEBUG if args.verbose else logging.INFO
+    )
+    args.log_filter = _ConsoleFilter()
+    handler.addFilter(args.log_filter)
+    package.addHandler(handler)
+    return handler, previous
+
+
+def _json_error(args: argparse.Namespace, error: object, code: int) -> int:
+    """With --json, stdout still carries JSON when a command fails: the error and the
+    exit code (the message itself went to stderr as without --json)."""
+    if getattr(args, "json", False):
+        _print_json({"error": str(error), "exit_code": code})
+    return code
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.quiet and args.verbose:
+        parser.error("-q/--quiet and -v/--verbose exclude each other")
     if not getattr(args, "func", None):
         parser.print_help()
         return EXIT_BAD_INPUT
+    handler, level = _attach_console_log(args)
     try:
         return int(args.func(args))
     except BadInput as exc:
         _console(stderr=True).print(f"[bold red]error:[/] {_escape(exc)}")
-        return EXIT_BAD_INPUT
+        return _json_error(args, exc, EXIT_BAD_INPUT)
     except BenchseqError as exc:
         _console(stderr=True).print(f"[bold red]failed:[/] {_escape(exc)}")
-        return exc.exit_code
+        return _json_error(args, exc, exc.exit_code)
     except KeyboardInterrupt:
         _console(stderr=True).print("interrupted")
-        return EXIT_FAILURE
+        return _json_error(args, "interrupted", EXIT_FAILURE)
+    finally:
+        package = logging.getLogger("benchseq")
+        package.removeHandler(handler)
+        package.setLevel(level)
