@@ -22,6 +22,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -90,7 +91,7 @@ def predicted_plan(
     """The least capture meeting ``target_db`` under ``noise``, with records short enough
     (a RECORD_GRAIN-th of the need, or the shortest holding min_cycles) that top-ups of
     whole records land close to what the point turns out to need."""
-    kwargs = dict(
+    kwargs: dict[str, Any] = dict(
         min_cycles=min_cycles,
         max_time_s=max_time_s,
         noise_sigma=noise.white_sigma,

@@ -871,8 +871,9 @@ class Sequencer:
 
     def _acquire(
         self, plan: analysis.CapturePlan, pin_range: float, out_range: float
-    ) -> tuple[Any, Any]:
-        """One capture of both channels per ``plan``; returns (pin, output) as (volts, codes)."""
+    ) -> tuple[list[Any], list[Any], float]:
+        """One capture of both channels per ``plan``; returns the pin and output waveforms as
+        read (one per record) and their sample interval."""
         scope = self.session.scope
         pin_ch, out_ch = self.bench.scope.pin, self.bench.scope.output
         bandwidth = self.bench.scope.bandwidth_limit
