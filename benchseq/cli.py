@@ -11,10 +11,13 @@ import os
 import sys
 import warnings
 from collections.abc import Iterator, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from benchseq import __version__
 from benchseq.errors import BadInput, BenchseqError
+
+if TYPE_CHECKING:
+    from benchseq.display import RunDisplay
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -132,7 +135,8 @@ class _LiveDisplay:
     """Event sink that opens a RunDisplay on the first event and closes it at the end."""
 
     def __init__(self, console: Any, quiet: bool = False) -> None:
-        self.console, self.quiet, self.display = console, quiet, None
+        self.console, self.quiet = console, quiet
+        self.display: RunDisplay | None = None
 
     def __call__(self, event: Any) -> None:
         from benchseq.display import RunDisplay
@@ -220,12 +224,12 @@ def cmd_replay(args: argparse.Namespace) -> int:
             raise BadInput(
                 "--reanalyse recomputes the stored points; it takes no --plan or --device"
             )
-        outcome = reanalyse(args.result, args.out, force=args.force)
+        redone = reanalyse(args.result, args.out, force=args.force)
         if args.json:
-            _print_json(outcome.to_dict())
+            _print_json(redone.to_dict())
         else:
-            _console().print(render_reanalysis(outcome))
-            _console().print(f"results: [bold]{_escape(outcome.path)}[/]")
+            _console().print(render_reanalysis(redone))
+            _console().print(f"results: [bold]{_escape(redone.path)}[/]")
         return EXIT_OK
 
     from benchseq.replay import render_comparison, replay

@@ -43,6 +43,7 @@ from collections import OrderedDict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -756,7 +757,7 @@ def netlist_device_from_section(section: Section, folder: Path) -> NetlistDevice
     name = section.text("netlist")
     subcircuit = section.text("subcircuit")
     temperature = section.number("temperature_c", default=None)
-    values: dict[str, float] = {}
+    values: dict[str, Any] = {}  # keyword arguments of NetlistDevice
     if section.has("board_load_current"):
         values["board_load_current"] = section.quantity("board_load_current", "A", nonnegative=True)
     if section.has("white_noise_nv_per_root_hz"):
