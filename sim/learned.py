@@ -254,7 +254,7 @@ class LearnedDevice:
     _nearest_cache: dict[tuple[float, float], int] = field(default_factory=dict, repr=False)
 
     @property
-    def pin(self) -> PinImpedance:  # type: ignore[override]
+    def pin(self) -> PinImpedance:
         return self.standin.pin
 
     @property

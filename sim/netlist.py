@@ -539,7 +539,7 @@ class NetlistSolver:
         pin_dc: float,
         output_current: float,
         frequency: float,
-        pin_harmonics: Sequence[complex],
+        pin_harmonics: Sequence[complex] | np.ndarray,
         settings: LargeSignal,
     ) -> LargeSignalOutput:
         """The output's harmonics and mean level from a transient analysis with the pin at
@@ -652,7 +652,7 @@ class NetlistDevice:
         self.solver = NetlistSolver(self.spec)
 
     @property
-    def pin(self) -> PinImpedance:  # type: ignore[override]
+    def pin(self) -> PinImpedance:
         return _OperatingPin(self)  # type: ignore[return-value]
 
     def check(self) -> None:
@@ -769,6 +769,6 @@ def netlist_device_from_section(section: Section, folder: Path) -> NetlistDevice
     settings = large_signal_from_section(large) if large is not None else None
     section.done()
     spec = read_netlist(folder / name, subcircuit, section.source, temperature)
-    device = NetlistDevice(spec, large_signal_settings=settings, **values)  # type: ignore[arg-type]
+    device = NetlistDevice(spec, large_signal_settings=settings, **values)
     device.check()
     return device
