@@ -5,7 +5,7 @@ benchseq.sim), which mypy cannot follow on its own: `mypy -p benchseq` never see
 and sim/, and `mypy drivers sim` checks them under the wrong names, so every import between
 them turns into Any. This script hands mypy the three directories and gives each file its
 installed module name; everything else is plain mypy (options from [tool.mypy], extra
-command-line flags passed through, same messages; exit 1 on errors).
+command-line flags passed through, same messages; exit 1 on errors, 2 on a blocking one).
 
     .venv/bin/python tools/typecheck.py [mypy options]
 """
