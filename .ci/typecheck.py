@@ -7,7 +7,7 @@ them turns into Any. This script hands mypy the three directories and gives each
 installed module name; everything else is plain mypy (options from [tool.mypy], extra
 command-line flags passed through, same messages; exit 1 on errors, 2 on a blocking one).
 
-    .venv/bin/python tools/typecheck.py [mypy options]
+    .venv/bin/python .ci/typecheck.py [mypy options]
 """
 
 from __future__ import annotations
