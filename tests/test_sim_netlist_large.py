@@ -144,7 +144,7 @@ def test_small_ripple_transient_fundamental_is_ngspice_ac_transfer(tmp_path: Pat
         [
             "device alone",
             "Vp p 0 DC 5 AC 1",
-            f'.include "{NETLIST}"',
+            NETLIST.read_text(encoding="utf-8"),  # inline: the stored answer's key is the deck
             "Iboard out 0 DC 0.02",
             f"Xdut p out 0 {SUBCIRCUIT}",
         ]
