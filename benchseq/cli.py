@@ -346,9 +346,11 @@ def _verdict_markup(verdict: Any) -> str:
 
 
 def cmd_show(args: argparse.Namespace) -> int:
-    from benchseq.display import points_table
+    from benchseq.overview import is_calibration_file, render_result
     from benchseq.store import read_meta, read_results
 
+    if is_calibration_file(args.result):
+        return _show_calibration(args)
     with _result_notices():
         _repair_for_reading(args.result)
         meta = read_meta(args.result)
@@ -365,21 +367,27 @@ def cmd_show(args: argparse.Namespace) -> int:
         )
         return EXIT_OK
     console = _console()
-    console.print(f"[bold]{_escape(meta.get('title', ''))}[/] — {_escape(meta.get('device', ''))}")
-    console.print(
-        f"status {_escape(meta.get('status'))}; started {_escape(meta.get('started'))}; "
-        f"{len(frame)} of {meta.get('point_count', '?')} points stored; bench {_escape(meta.get('bench_name', ''))}"
-    )
-    if meta.get("status") == "interrupted":
-        when = (meta.get("interrupted") or {}).get("last_point_at") or "never"
-        console.print(
-            f"[bold yellow]interrupted:[/] its process ended without finishing; last point "
-            f"stored {_escape(when)}; continue with: benchseq run --resume {_escape(args.result)}"
-        )
-    rows = frame.sort_values("point_id").to_dict(orient="records")
-    console.print(points_table(rows, title="points"))
-    if verdict is not None:
-        console.print(_verdict_markup(verdict))
+    for part in render_result(meta, frame, verdict, args.result, all_rows=args.all):
+        console.print(part)
+    return EXIT_OK
+
+
+def _show_calibration(args: argparse.Namespace) -> int:
+    """`show CAL.h5`: describe the channel-match calibration file."""
+    from benchseq.calibrate import calibration_summary, load_calibration
+    from benchseq.overview import calibration_figures, render_calibration_file
+
+    loaded = load_calibration(args.result)
+    if args.json:
+        summary = calibration_summary(loaded)
+        summary["kind"] = "channel-match calibration"
+        summary["meta"] = {k: v for k, v in loaded.meta.items() if not k.endswith("_text")}
+        summary["match"] = calibration_figures(loaded)
+        _print_json(summary)
+        return EXIT_OK
+    console = _console()
+    for part in render_calibration_file(loaded):
+        console.print(part)
     return EXIT_OK
 
 
@@ -492,8 +500,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the outcome as JSON")
     p.set_defaults(func=cmd_run)
 
-    p = sub.add_parser("show", help="summary and table of a stored run")
+    p = sub.add_parser(
+        "show", help="summary, verdict and table of a stored run (or a calibration file)"
+    )
     p.add_argument("result", help="result file (.h5)")
+    p.add_argument(
+        "--all", action="store_true", help="list every point (a long run is summarised)"
+    )
     p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
     p.set_defaults(func=cmd_show)
 
