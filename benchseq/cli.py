@@ -419,6 +419,46 @@ def cmd_report(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_compare(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from benchseq.compare import compare_files, render_comparisons, write_plot
+
+    model = None
+    if args.model is not None:
+        from benchseq.units import parse_quantity
+
+        model = (
+            args.model,
+            args.subcircuit or "",
+            parse_quantity(args.model_load, "A", "--model-load"),
+        )
+    elif args.subcircuit is not None:
+        raise BadInput("--subcircuit goes with --model FILE.cir")
+    if args.plot:
+        from benchseq.report.output import check_output
+
+        if not args.plot.lower().endswith(".png"):
+            raise BadInput(f"--plot {args.plot}: give a .png file name")
+        check_output(Path(args.plot), args.results)
+    with _result_notices():
+        for result in args.results:
+            _repair_for_reading(result)
+        comparisons = compare_files(args.results, model)
+    written = write_plot(comparisons, args.plot) if args.plot else []
+    if args.json:
+        _print_json(
+            {"comparisons": [c.to_dict() for c in comparisons], "plots": [str(p) for p in written]}
+        )
+        return EXIT_OK
+    console = _console()
+    for part in render_comparisons(comparisons, all_rows=args.all):
+        console.print(part)
+    for path in written:
+        console.print(f"plot written to [bold]{_escape(path)}[/]")
+    return EXIT_OK
+
+
 def cmd_scan(args: argparse.Namespace) -> int:
     from benchseq.drivers.session import scan
 
@@ -504,9 +544,7 @@ def build_parser() -> argparse.ArgumentParser:
         "show", help="summary, verdict and table of a stored run (or a calibration file)"
     )
     p.add_argument("result", help="result file (.h5)")
-    p.add_argument(
-        "--all", action="store_true", help="list every point (a long run is summarised)"
-    )
+    p.add_argument("--all", action="store_true", help="list every point (a long run is summarised)")
     p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
     p.set_defaults(func=cmd_show)
 
@@ -584,6 +622,33 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--json", action="store_true", help="print the files written as JSON")
     p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser(
+        "compare",
+        help="difference of runs point by point (or a run against a circuit model), with U (k = 2)",
+    )
+    p.add_argument(
+        "results",
+        nargs="+",
+        metavar="RESULT",
+        help="result files (.h5); the first is the reference",
+    )
+    p.add_argument("--plot", metavar="FILE.png", help="write both curves and the difference ± U")
+    p.add_argument(
+        "--model", metavar="FILE.cir", help="also compare with this netlist's prediction"
+    )
+    p.add_argument(
+        "--subcircuit", metavar="NAME", help="subcircuit of --model (pin, output, ground)"
+    )
+    p.add_argument(
+        "--model-load",
+        default="0 A",
+        metavar="CURRENT",
+        help="the board's own DC load on the output, added to the run's load (default 0 A)",
+    )
+    p.add_argument("--all", action="store_true", help="list every row (a long one is summarised)")
+    p.add_argument("--json", action="store_true", help="print every matched point as JSON")
+    p.set_defaults(func=cmd_compare)
 
     p = sub.add_parser("scan", help="list reachable VISA instruments and their *IDN?")
     p.add_argument(
