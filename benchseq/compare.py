@@ -407,6 +407,12 @@ def compare_files(
     return comparisons
 
 
+def report_comparisons(report: Any) -> list[Comparison]:
+    """The first run of a report (benchseq.report.model.Report) against each of the others."""
+    sides = [side_from_frame(s.label, str(s.path), s.frame, s.meta) for s in report.sources]
+    return [compare_sides(sides[0], other) for other in sides[1:]]
+
+
 # -- rendering --------------------------------------------------------------------------------
 def _cell(value: float, fmt: str) -> str:
     return format(value, fmt) if math.isfinite(value) else ""
