@@ -492,7 +492,7 @@ def render_comparisons(comparisons: Sequence[Comparison], all_rows: bool = False
         table = Table(title_justify="left")
         for name in TABLE_HEADERS:
             table.add_column(
-                name, justify="left" if name in ("operating point", "reading") else "right"
+                escape(name), justify="left" if name in ("operating point", "reading") else "right"
             )
         for cells in table_cells(rows):
             table.add_row(*(escape(c) for c in cells))

@@ -232,3 +232,43 @@ def test_plot_and_bad_input(
         code, out, err = _cli(capsys, "compare", *args)
         assert code == 2, (args, out, err)
         assert what in err and "Traceback" not in err
+
+
+NETLIST_PLAN = """
+title = "FERN_LDO33 four points"
+[device]
+name = "FERN_LDO33 regulator (netlist model, 3.3 V out)"
+absolute_max = "6 V"
+min_operating = "3.5 V"
+[sweep]
+dc = ["5 V"]
+ripple = ["100 mVpp"]
+frequency = { at = ["100 Hz", "1 kHz", "10 kHz", "100 kHz"] }
+[capture]
+max_time = "2 s"
+target_uncertainty = "0.2 dB"
+"""
+
+
+def test_a_run_on_the_netlist_device_agrees_with_the_netlist(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The simulated bench with the netlist device, compared with ngspice's prediction of
+    the same subcircuit (the scenario's 20 mA board load): differences within coverage."""
+    plan = tmp_path / "four.toml"
+    plan.write_text(NETLIST_PLAN, encoding="utf-8")
+    out = tmp_path / "four.h5"
+    code, _, err = _cli(capsys, "run", str(plan), "--bench", "sim:netlist-ldo", "--out", str(out))
+    assert code == 0, err
+    netlist = SCENARIOS / "fern-ldo.cir"
+    args = ["--model", str(netlist), "--subcircuit", "FERN_LDO33", "--model-load", "20 mA"]
+    code, printed, err = _cli(capsys, "compare", str(out), *args, "--json")
+    assert code == 0, err
+    data = json.loads(printed)["comparisons"][0]
+    assert data["other"]["model"] is True
+    values = [p for p in data["points"] if p["kind"] == "value"]
+    assert len(values) == 4
+    significant = sum(p["significant"] for p in values)
+    assert significant <= binom.ppf(0.999, len(values), CHANCE)
+    code, printed, _ = _cli(capsys, "compare", str(out), *args)
+    assert code == 0 and "taken as exact (u = 0)" in printed
