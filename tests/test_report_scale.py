@@ -98,3 +98,21 @@ def test_a_report_of_several_runs_shows_their_differences(
     assert "no partner: 0 points of eight.h5" in plain and "72 of twenty.h5" in plain
     md = write_report([files["eight"], files["twenty"]], "md", tmp_path / "two.md")
     assert any(p.name == "two-differences.png" for p in md)
+
+
+def test_pdf_and_png_carry_the_small_multiples(files: dict[str, Path], tmp_path: Path) -> None:
+    from matplotlib.image import imread
+
+    from benchseq.report.plots import png_bytes
+
+    report = gather([files["twenty"]])
+    pdf = write_report([files["twenty"]], "pdf", tmp_path / "long.pdf")[0]
+    assert pdf.read_bytes()[:5] == b"%PDF-"
+    pages = pdf.read_bytes().count(b"/Type /Page\n") + pdf.read_bytes().count(b"/Type /Page ")
+    assert pages >= 3  # summary, rejection panels, phase panels (then the tables)
+    png = write_report([files["twenty"]], "png", tmp_path / "long.png")[0]
+    height = imread(str(png)).shape[0]
+    import io
+
+    one = imread(io.BytesIO(png_bytes(rejection_figure(report)[0]))).shape[0]
+    assert height > one  # the rejection panels and the phase panels, one above the other
