@@ -310,7 +310,7 @@ def calibration_figures(loaded: Any) -> dict[str, Any]:
         return float(np.sum(w * x[ok]) / np.sum(w))
 
     meta = loaded.meta
-    return {
+    figures = {
         "points": int(gain.size),
         "span_hz": [float(v) for v in loaded.span],
         "gain_db_min": float(np.nanmin(gain)) if gain.size else math.nan,
@@ -326,6 +326,13 @@ def calibration_figures(loaded: Any) -> dict[str, Any]:
         "birge_ratio_magnitude": meta.get("birge_ratio_magnitude"),
         "birge_ratio_phase": meta.get("birge_ratio_phase"),
     }
+    return {  # JSON has no NaN: unknown figures are None
+        k: None if isinstance(v, float) and not math.isfinite(v) else v for k, v in figures.items()
+    }
+
+
+def _num(value: Any, fmt: str) -> str:
+    return "—" if value is None else format(float(value), fmt)
 
 
 def render_calibration_file(loaded: Any) -> list[Any]:
@@ -349,10 +356,11 @@ def render_calibration_file(loaded: Any) -> list[Any]:
         f"channels: pin CH{escape(str(pin.get('channel')))}, output "
         f"CH{escape(str(out.get('channel')))}; {fig['points']} points over "
         f"{escape(describe_band(*loaded.span))}",
-        f"match: gain {fig['gain_db_min']:+.4f} to {fig['gain_db_max']:+.4f} dB (weighted mean "
-        f"{fig['gain_db_weighted_mean']:+.4f} dB), phase {fig['phase_deg_min']:+.3f} to "
-        f"{fig['phase_deg_max']:+.3f}° (weighted mean {fig['phase_deg_weighted_mean']:+.3f}°); "
-        f"largest U {fig['largest_gain_U_db']:.4f} dB (k = {SHOWN_COVERAGE_FACTOR:g})",
+        f"match: gain {_num(fig['gain_db_min'], '+.4f')} to {_num(fig['gain_db_max'], '+.4f')} "
+        f"dB (weighted mean {_num(fig['gain_db_weighted_mean'], '+.4f')} dB), phase "
+        f"{_num(fig['phase_deg_min'], '+.3f')} to {_num(fig['phase_deg_max'], '+.3f')}° "
+        f"(weighted mean {_num(fig['phase_deg_weighted_mean'], '+.3f')}°); largest U "
+        f"{_num(fig['largest_gain_U_db'], '.4f')} dB (k = {SHOWN_COVERAGE_FACTOR:g})",
     ]
     birge = [
         f"{what} {float(value):.2f}"
