@@ -560,14 +560,26 @@ def comparison_figure(comparison: Comparison) -> Any:
     top.set_ylabel("rejection [dB]")
     bottom.set_ylabel("other − reference [dB]")
     bottom.axhline(0.0, color="#888888", linewidth=0.8)
+    shown = len(PALETTE)
     handles = [
         Line2D([], [], color=PALETTE[n % len(PALETTE)], label=plot_text(key))
-        for n, key in enumerate(keys[:12])
+        for n, key in enumerate(keys[:shown])
     ]
-    if len(keys) > 12:
+    if len(keys) > shown:
         handles.append(
-            Line2D([], [], linestyle="none", label=f"… {len(keys) - 12} more (colours repeat)")
+            Line2D([], [], linestyle="none",
+                   label=f"… {len(keys) - shown} more (colours repeat)")
+        )  # fmt: skip
+        significant = rows[rows["significant"]].copy()
+        significant["ratio"] = (significant["difference_db"].abs() / significant["u_c_db"]).fillna(
+            0
         )
+        for _, row in significant.sort_values("ratio", ascending=False).head(8).iterrows():
+            bottom.annotate(
+                plot_text(f"{row['key']}, {format_si(float(row['frequency']), 'Hz', 3)}"),
+                (row["frequency"], row["difference_db"]), xytext=(6, 4),
+                textcoords="offset points", fontsize="xx-small", color="#a23b3b",
+            )  # fmt: skip
     handles += [
         Line2D([], [], color="#444444", linestyle="-", marker="o", markersize=3,
                label=plot_text(f"reference: {comparison.reference.label}")),
