@@ -112,6 +112,14 @@ class Comparison:
             f"{values} values compared: {sig_values} differ significantly (|d| > {self.k:g}·u_c; "
             f"about {values * self.chance_fraction:.1f} expected by chance when the runs agree)",
         ]
+        for side in (self.reference, self.other):
+            status = str(side.meta.get("status", "complete")) if side.meta else "complete"
+            if status != "complete":
+                planned = side.meta.get("point_count", "?")
+                lines.append(
+                    f"{side.label} is a partial run ({status}): {len(side.frame)} of {planned} "
+                    "planned points stored; the comparison covers those only"
+                )
         if bounds:
             lines.append(
                 f"{bounds} differences involve a lower bound and are themselves only bounds: "
@@ -153,10 +161,15 @@ class Comparison:
     def to_dict(self) -> dict[str, Any]:
         ref_alone, other_alone = self.no_partner()
         return {
-            "reference": {"label": self.reference.label, "path": self.reference.path},
+            "reference": {
+                "label": self.reference.label,
+                "path": self.reference.path,
+                "status": self.reference.meta.get("status"),
+            },
             "other": {
                 "label": self.other.label,
                 "path": self.other.path,
+                "status": self.other.meta.get("status"),
                 "model": self.other.is_model,
             },
             "difference": "other minus reference, dB",
