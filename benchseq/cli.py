@@ -543,7 +543,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "show", help="summary, verdict and table of a stored run (or a calibration file)"
     )
-    p.add_argument("result", help="result file (.h5)")
+    p.add_argument("result", help="result file (.h5), or a calibration file (CAL.h5)")
     p.add_argument("--all", action="store_true", help="list every point (a long run is summarised)")
     p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
     p.set_defaults(func=cmd_show)
