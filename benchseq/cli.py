@@ -551,9 +551,11 @@ def _verdict_markup(verdict: Any) -> str:
 
 
 def cmd_show(args: argparse.Namespace) -> int:
-    from benchseq.display import points_table
+    from benchseq.overview import is_calibration_file, render_result
     from benchseq.store import read_meta, read_results
 
+    if is_calibration_file(args.result):
+        return _show_calibration(args)
     with _result_notices():
         _repair_for_reading(args.result)
         meta = read_meta(args.result)
@@ -570,21 +572,27 @@ def cmd_show(args: argparse.Namespace) -> int:
         )
         return EXIT_OK
     console = _console()
-    console.print(f"[bold]{_escape(meta.get('title', ''))}[/] — {_escape(meta.get('device', ''))}")
-    console.print(
-        f"status {_escape(meta.get('status'))}; started {_escape(meta.get('started'))}; "
-        f"{len(frame)} of {meta.get('point_count', '?')} points stored; bench {_escape(meta.get('bench_name', ''))}"
-    )
-    if meta.get("status") == "interrupted":
-        when = (meta.get("interrupted") or {}).get("last_point_at") or "never"
-        console.print(
-            f"[bold yellow]interrupted:[/] its process ended without finishing; last point "
-            f"stored {_escape(when)}; continue with: benchseq run --resume {_escape(args.result)}"
-        )
-    rows = frame.sort_values("point_id").to_dict(orient="records")
-    console.print(points_table(rows, title="points"))
-    if verdict is not None:
-        console.print(_verdict_markup(verdict))
+    for part in render_result(meta, frame, verdict, args.result, all_rows=args.all):
+        console.print(part)
+    return EXIT_OK
+
+
+def _show_calibration(args: argparse.Namespace) -> int:
+    """`show CAL.h5`: describe the channel-match calibration file."""
+    from benchseq.calibrate import calibration_summary, load_calibration
+    from benchseq.overview import calibration_figures, render_calibration_file
+
+    loaded = load_calibration(args.result)
+    if args.json:
+        summary = calibration_summary(loaded)
+        summary["kind"] = "channel-match calibration"
+        summary["meta"] = {k: v for k, v in loaded.meta.items() if not k.endswith("_text")}
+        summary["match"] = calibration_figures(loaded)
+        _print_json(summary)
+        return EXIT_OK
+    console = _console()
+    for part in render_calibration_file(loaded):
+        console.print(part)
     return EXIT_OK
 
 
@@ -613,6 +621,46 @@ def cmd_report(args: argparse.Namespace) -> int:
     console.print(f"{fmt} report written to [bold]{_escape(written[0])}[/]")
     for extra in written[1:]:
         console.print(f"  beside it: {_escape(extra)}")
+    return EXIT_OK
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from benchseq.compare import compare_files, render_comparisons, write_plot
+
+    model = None
+    if args.model is not None:
+        from benchseq.units import parse_quantity
+
+        model = (
+            args.model,
+            args.subcircuit or "",
+            parse_quantity(args.model_load, "A", "--model-load"),
+        )
+    elif args.subcircuit is not None:
+        raise BadInput("--subcircuit goes with --model FILE.cir")
+    if args.plot:
+        from benchseq.report.output import check_output
+
+        if not args.plot.lower().endswith(".png"):
+            raise BadInput(f"--plot {args.plot}: give a .png file name")
+        check_output(Path(args.plot), args.results)
+    with _result_notices():
+        for result in args.results:
+            _repair_for_reading(result)
+        comparisons = compare_files(args.results, model)
+    written = write_plot(comparisons, args.plot) if args.plot else []
+    if args.json:
+        _print_json(
+            {"comparisons": [c.to_dict() for c in comparisons], "plots": [str(p) for p in written]}
+        )
+        return EXIT_OK
+    console = _console()
+    for part in render_comparisons(comparisons, all_rows=args.all):
+        console.print(part)
+    for path in written:
+        console.print(f"plot written to [bold]{_escape(path)}[/]")
     return EXIT_OK
 
 
@@ -703,8 +751,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the outcome as JSON")
     p.set_defaults(func=cmd_run)
 
-    p = sub.add_parser("show", help="summary and table of a stored run")
-    p.add_argument("result", help="result file (.h5)")
+    p = sub.add_parser(
+        "show", help="summary, verdict and table of a stored run (or a calibration file)"
+    )
+    p.add_argument("result", help="result file (.h5), or a calibration file (CAL.h5)")
+    p.add_argument("--all", action="store_true", help="list every point (a long run is summarised)")
     p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
     p.set_defaults(func=cmd_show)
 
@@ -782,6 +833,33 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--json", action="store_true", help="print the files written as JSON")
     p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser(
+        "compare",
+        help="difference of runs point by point (or a run against a circuit model), with U (k = 2)",
+    )
+    p.add_argument(
+        "results",
+        nargs="+",
+        metavar="RESULT",
+        help="result files (.h5); the first is the reference",
+    )
+    p.add_argument("--plot", metavar="FILE.png", help="write both curves and the difference ± U")
+    p.add_argument(
+        "--model", metavar="FILE.cir", help="also compare with this netlist's prediction"
+    )
+    p.add_argument(
+        "--subcircuit", metavar="NAME", help="subcircuit of --model (pin, output, ground)"
+    )
+    p.add_argument(
+        "--model-load",
+        default="0 A",
+        metavar="CURRENT",
+        help="the board's own DC load on the output, added to the run's load (default 0 A)",
+    )
+    p.add_argument("--all", action="store_true", help="list every row (a long one is summarised)")
+    p.add_argument("--json", action="store_true", help="print every matched point as JSON")
+    p.set_defaults(func=cmd_compare)
 
     p = sub.add_parser("scan", help="list reachable VISA instruments and their *IDN?")
     p.add_argument(
