@@ -72,6 +72,7 @@ RECIPES: dict[str, Callable[[Folder], list[str]]] = {
     "replay": lambda f: ["replay", str(f.result), "--out", str(f.root / "replayed.h5")],
     "calibrate": lambda f: ["calibrate", "--plan", str(f.plan), "--out", str(f.root / "cal.h5")],
     "report": lambda f: ["report", str(f.result), "-o", str(f.root / "report.md")],
+    "compare": lambda f: ["compare", str(f.result), str(f.root / "replayed.h5")],
     # pyvisa-sim's own resources: no network, a bounded wait per resource
     "scan": lambda f: ["scan", "--visa-library", "@sim", "--timeout", "0.5"],
 }
@@ -85,6 +86,7 @@ REFUSED: dict[str, Callable[[Folder], list[str]]] = {
     "replay": lambda f: ["replay", str(f.root / "no-such-result.h5")],
     "calibrate": lambda f: ["calibrate", "--plan", str(f.root / "no-such-plan.toml")],
     "report": lambda f: ["report", str(f.root / "no-such-result.h5")],
+    "compare": lambda f: ["compare", str(f.result), str(f.root / "no-such-result.h5")],
     "scan": lambda f: ["scan", "not an address"],
 }
 
@@ -113,6 +115,8 @@ def test_every_json_command_has_a_case() -> None:
 def test_stdout_is_the_json_alone(command: str, folder: Folder) -> None:
     if command != "run" and not folder.result.exists():
         assert _benchseq(folder, RECIPES["run"](folder)).returncode == 0
+    if command == "compare" and not (folder.root / "replayed.h5").exists():
+        assert _benchseq(folder, RECIPES["replay"](folder)).returncode == 0
     done = _benchseq(folder, RECIPES[command](folder))
     assert "Traceback" not in done.stderr, done.stderr
     assert done.returncode == 0, done.stderr
