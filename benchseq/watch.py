@@ -234,8 +234,10 @@ def read_state(path: Path) -> dict[str, Any]:
         "mask": (
             {
                 "name": str(mask.name or ""),
-                "points": [[float(f), float(d)] for f, d in zip(
-                    mask.frequencies, mask.min_rejection_db, strict=True)],  # fmt: skip
+                "points": [
+                    [float(f), float(d)]
+                    for f, d in zip(mask.frequencies, mask.min_rejection_db, strict=True)
+                ],
             }
             if mask is not None
             else None
@@ -562,10 +564,11 @@ class _Resource:
 
 class _Handler(BaseHTTPRequestHandler):
     server: WatchServer
+
     def version_string(self) -> str:
         return "benchseq-watch"
 
-    def do_GET(self) -> None:  # noqa: N802 - http.server's naming
+    def do_GET(self) -> None:
         if not self._host_allowed():
             self._send(403, b"refused: unexpected Host header\n", "text/plain; charset=utf-8")
             return
@@ -584,10 +587,10 @@ class _Handler(BaseHTTPRequestHandler):
         self._send(200, fixed.body, fixed.content_type)
 
     def _refuse(self) -> None:
-        self._send(405, b"read-only: only GET is answered\n", "text/plain; charset=utf-8",
-                   {"Allow": "GET"})  # fmt: skip
+        body = b"read-only: only GET is answered\n"
+        self._send(405, body, "text/plain; charset=utf-8", {"Allow": "GET"})
 
-    do_POST = do_PUT = do_DELETE = do_PATCH = do_HEAD = do_OPTIONS = _refuse  # noqa: N815
+    do_POST = do_PUT = do_DELETE = do_PATCH = do_HEAD = do_OPTIONS = _refuse
 
     def _host_allowed(self) -> bool:
         if not self.server.loopback:
@@ -615,7 +618,7 @@ class _Handler(BaseHTTPRequestHandler):
         if self.command != "HEAD":
             self.wfile.write(body)
 
-    def log_message(self, format: str, *args: Any) -> None:  # noqa: A002
+    def log_message(self, format: str, *args: Any) -> None:
         pass  # a page polling every second would fill the terminal
 
 
