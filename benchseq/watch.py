@@ -151,6 +151,7 @@ def read_state(path: Path) -> dict[str, Any]:
         except (OSError, ValueError, KeyError, TypeError) as exc:
             raise BadInput(f"{path}: cannot read this result file ({exc})") from None
     notices = list(dict.fromkeys(str(w.message) for w in caught if w.category is ResultWarning))
+    frame.attrs = {}  # units and descriptions are not shown; pandas would copy them per step
     if "point_id" in frame.columns:  # a read that met an update's rename may repeat a point
         frame = frame.drop_duplicates("point_id", keep="first")
     count = meta.get("point_count")
@@ -276,6 +277,8 @@ class Watcher:
         self._json: bytes = b""
         self._signature: tuple[Any, ...] | None = None
         self._read_at = -math.inf
+        self._read_s = 0.0  # how long the last read took
+        self._probed_at = -math.inf  # when the writer's lock was last probed
 
     def first(self) -> dict[str, Any]:
         """Read once (raises BadInput for a missing or damaged file: before serving)."""
@@ -285,34 +288,43 @@ class Watcher:
             raise BadInput(f"{self.path} is a folder; give a result file (.h5)")
         refuse_non_regular(self.path)
         with self._lock:
-            self._store(read_state(self.path), _signature(self.path))
+            started = time.monotonic()
+            self._store(read_state(self.path), _signature(self.path), started)
         assert self._state is not None
         return self._state
 
     def state_json(self) -> bytes:
+        """The state as JSON: read again when the files changed (at most every
+        max(MIN_GAP_S, 2 × the last read's duration), so reading takes at most a third of
+        a core whatever the size), or, for a running file, when its writer is gone."""
+        from benchseq.writelock import writer_alive
+
         with self._lock:
             now = time.monotonic()
+            since = now - self._read_at
             signature = _signature(self.path)
             changed = signature != self._signature
             running = self._state is None or self._state.get("status") == "running"
-            due = (changed and now - self._read_at >= MIN_GAP_S) or (
-                running and now - self._read_at >= REFRESH_S
-            )
+            due = changed and since >= max(MIN_GAP_S, 2.0 * self._read_s)
+            if not due and running and now - max(self._read_at, self._probed_at) >= REFRESH_S:
+                self._probed_at = now  # nothing written: only the writer's end can change it
+                due = writer_alive(self.path) is False
             if due:
                 try:
-                    self._store(read_state(self.path), signature)
+                    self._store(read_state(self.path), signature, now)
                 except (BenchseqError, OSError, ValueError, KeyError, TypeError) as exc:
                     # keep showing the last good state; say why it is not newer
-                    self._read_at = now
+                    self._read_at = time.monotonic()
                     if self._state is not None:
                         state = dict(self._state, read_problem=str(exc))
                         self._json = _dumps(state)
             return self._json
 
-    def _store(self, state: dict[str, Any], signature: tuple[Any, ...]) -> None:
+    def _store(self, state: dict[str, Any], signature: tuple[Any, ...], started: float) -> None:
         self._state = state
         self._signature = signature
         self._read_at = time.monotonic()
+        self._read_s = self._read_at - started
         self._json = _dumps(state)
 
 
@@ -480,6 +492,9 @@ SCRIPT = r"""
             const u = 2 * p[2];
             el("line", { x1: x, x2: x, y1: py(p[1] - u), y2: py(p[1] + u), stroke: colour,
                          class: "bar" }, g);
+            for (const end of [p[1] - u, p[1] + u])
+              el("line", { x1: x - 3, x2: x + 3, y1: py(end), y2: py(end), stroke: colour,
+                           class: "cap" }, g);
           }
           el("circle", { cx: x, cy: py(p[1]), r: 3.5, fill: colour, class: "value",
                          "data-point": p[4] }, g);

@@ -393,3 +393,12 @@ def test_page_in_chromium_shows_points_as_they_are_stored(tmp_path: Path) -> Non
     assert facts["bars"] == int((~frame["is_bound"] & frame["uncertainty_db"].notna()).sum())
     assert facts["mask"] == 1 and facts["pwned"] is None
     assert f"point {int(frame['point_id'].iloc[-1])} at" in facts["latest"]
+
+
+def test_a_run_whose_writer_is_gone_reads_as_interrupted(tmp_path: Path) -> None:
+    path = write_result(tmp_path / "cut.h5", [row(0, 1e3, 50.0), row(1, 1e4, 40.0)], status=None)
+    with serving(path) as server:
+        state = _state(server)
+    assert (state["status"], state["status_text"]) == ("interrupted", "interrupted")
+    assert state["finish"] is None and "interrupted" in state["finish_text"]
+    assert "resume" in state["reason"]
