@@ -654,6 +654,15 @@ class WatchServer(ThreadingHTTPServer):
         }
         super().__init__((host.strip("[]"), port), _Handler)
 
+    def handle_error(self, request: Any, client_address: Any) -> None:
+        """A browser that goes away mid-answer is normal: no traceback, one line otherwise."""
+        import sys
+
+        exc = sys.exc_info()[1]
+        if isinstance(exc, ConnectionError | TimeoutError):
+            return
+        sys.stderr.write(f"watch: a request from {client_address[0]} failed: {exc!r}\n")
+
     @property
     def url(self) -> str:
         host, port = self.server_address[:2]
