@@ -239,7 +239,9 @@ def test_serving_writes_nothing_escapes_and_answers_get_only(tmp_path: Path) -> 
         assert code == 200 and "script-src 'self'" in headers["Content-Security-Policy"]
         text = page.decode("utf-8")
         assert HOSTILE_TITLE not in text and "<img" not in text
-        assert html.escape(HOSTILE_TITLE) in text  # escaped by the standard library's rules
+        # the five characters HTML escapes in text and attributes (HTML Living Standard
+        # §13.1.2; Python's html.escape with quote=True)
+        assert html.escape(HOSTILE_TITLE) in text
         state = _state(server)
         assert state["title"] == HOSTILE_TITLE  # JSON carries the text; the page sets it as text
         assert [f["flag"] for f in state["latest"]["flags"]] == HOSTILE_FLAG.split()
@@ -250,8 +252,10 @@ def test_serving_writes_nothing_escapes_and_answers_get_only(tmp_path: Path) -> 
         for resource in ("watch.js", "watch.css"):
             assert _get(server.url + resource)[0] == 200
         assert _get(server.url + "no-such-page")[0] == 404
+        # a Host that is not this machine's loopback name: refused (DNS rebinding; common practice)
         assert _get(server.url, {"Host": "attacker.example:80"})[0] == 403
         assert _get(server.url, {"Host": f"localhost:{server.server_address[1]}"})[0] == 200
+        # a method the resource does not support: 405 with an Allow header (RFC 9110 §15.5.6)
         for method in ("POST", "PUT", "DELETE", "PATCH", "HEAD", "OPTIONS"):
             request = urllib.request.Request(server.url + "state.json", data=b"x", method=method)
             with pytest.raises(urllib.error.HTTPError) as refused:
