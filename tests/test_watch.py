@@ -239,8 +239,9 @@ def test_serving_writes_nothing_escapes_and_answers_get_only(tmp_path: Path) -> 
         assert code == 200 and "script-src 'self'" in headers["Content-Security-Policy"]
         text = page.decode("utf-8")
         assert HOSTILE_TITLE not in text and "<img" not in text
-        # the five characters HTML escapes in text and attributes (HTML Living Standard
-        # §13.1.2; Python's html.escape with quote=True)
+        # & < > " ' as character references, so the title is text and no tag or attribute
+        # (HTML Living Standard, "Serialising HTML fragments", escaping a string; from
+        # memory) — Python's html.escape with quote=True is the reference
         assert html.escape(HOSTILE_TITLE) in text
         state = _state(server)
         assert state["title"] == HOSTILE_TITLE  # JSON carries the text; the page sets it as text
