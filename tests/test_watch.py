@@ -174,6 +174,8 @@ def test_state_follows_a_run_point_by_point(tmp_path: Path) -> None:
                 seen.append(state["stored"])
                 assert state["status"] == "running" and state["status_text"] == "in progress"
                 assert state["planned"] == POINTS
+                # two points of this session give a pace; one does not
+                assert (state["finish"] is not None) == (2 <= done < POINTS), state["finish_text"]
                 assert state["latest"]["point_id"] == int(read_results(out)["point_id"].iloc[-1])
                 page = _get(server.url)[1].decode("utf-8")
                 assert f'<span id="stored">{done}</span>' in page
