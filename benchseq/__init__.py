@@ -6,9 +6,14 @@ first use, so ``import benchseq`` stays light."""
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 __version__ = "0.1.0"
+
+# A library's logger: silent unless the application attaches a handler (the command line
+# does; a notebook may). benchseq never configures the root logger.
+logging.getLogger("benchseq").addHandler(logging.NullHandler())
 
 _API = (
     "RunResult",

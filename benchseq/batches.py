@@ -22,10 +22,14 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from benchseq import analysis
+
+if TYPE_CHECKING:
+    from benchseq.drivers.scope import Waveform
 
 PROBE_SHARE = 0.5  # the first batch takes this share of the predicted triggered records
 RECORD_GRAIN = 4  # a noise-bound prediction is split into at least this many records
@@ -90,7 +94,7 @@ def predicted_plan(
     """The least capture meeting ``target_db`` under ``noise``, with records short enough
     (a RECORD_GRAIN-th of the need, or the shortest holding min_cycles) that top-ups of
     whole records land close to what the point turns out to need."""
-    kwargs = dict(
+    kwargs: dict[str, Any] = dict(
         min_cycles=min_cycles,
         max_time_s=max_time_s,
         noise_sigma=noise.white_sigma,
@@ -152,11 +156,11 @@ def probe_records(plan: analysis.CapturePlan) -> int:
     return max(1, int(plan.records * plan.averages * PROBE_SHARE))
 
 
-def _scaling(wave: object) -> tuple[float, float]:
+def _scaling(wave: Waveform) -> tuple[float, float]:
     """(volts per code at the probe tip, volts at code 0 at the tip) of a driver Waveform."""
-    vpc = float(wave.volts_per_code)  # type: ignore[attr-defined]
-    probe = float(wave.probe)  # type: ignore[attr-defined]
-    offset = float(wave.volts_at_zero - wave.code_offset * wave.volts_per_code)  # type: ignore[attr-defined]
+    vpc = float(wave.volts_per_code)
+    probe = float(wave.probe)
+    offset = float(wave.volts_at_zero - wave.code_offset * wave.volts_per_code)
     return vpc * probe, offset * probe
 
 
@@ -198,11 +202,11 @@ class Pool:
         self.batches += 1
         self.interval = float(interval)
 
-    def _add_one(self, k: int, wave: object, weight: int) -> None:
+    def _add_one(self, k: int, wave: Waveform, weight: int) -> None:
         step, offset = _scaling(wave)
-        codes = np.asarray(wave.codes, dtype=np.int64)  # type: ignore[attr-defined]
-        low = int(wave.code_min) * weight  # type: ignore[attr-defined]
-        high = int(wave.code_max) * weight  # type: ignore[attr-defined]
+        codes = np.asarray(wave.codes, dtype=np.int64)
+        low = int(wave.code_min) * weight
+        high = int(wave.code_max) * weight
         if k == len(self._sums):
             self._sums.append(codes * weight)
             self._step.append(step)

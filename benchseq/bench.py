@@ -176,6 +176,9 @@ class Bench:
     # again to make the bench safe (lab.outage_patience)
     outage_patience: float = 300.0
     extra: dict[str, Any] = field(default_factory=dict)
+    # [after_run]: a program started when a run ends, in any state (benchseq.afterrun)
+    after_run: tuple[str, ...] | None = None
+    after_run_timeout: float = 60.0
 
     @property
     def is_simulated(self) -> bool:
@@ -392,6 +395,7 @@ def parse_bench(
         load_resistance=load_resistance,
     )
     pin_load.done()
+    after_run, after_run_timeout = _after_run(top.section("after_run", required=False))
     top.done()
 
     for role, spec in instruments.items():
@@ -415,7 +419,36 @@ def parse_bench(
         pin=pin,
         simulation=simulation,
         outage_patience=outage_patience,
+        after_run=after_run,
+        after_run_timeout=after_run_timeout,
     )
+
+
+def _after_run(section: Section | None) -> tuple[tuple[str, ...] | None, float]:
+    """[after_run]: ``command``, a program and its arguments as a list of text (started
+    as it is, no shell), and ``timeout``, how long it may take (default 60 s, 1 s to 10 min)."""
+    from benchseq.afterrun import DEFAULT_TIMEOUT_S
+
+    if section is None:
+        return None, DEFAULT_TIMEOUT_S
+    command = section.raw("command", default=None)
+    timeout = section.quantity(
+        "timeout", "s", default=DEFAULT_TIMEOUT_S, **_within(section, "timeout")
+    )
+    section.done()  # a misspelt key is named before a missing command
+    if command is None:
+        raise section.error("command", "missing (required)")
+    if not (
+        isinstance(command, list)
+        and command
+        and all(isinstance(part, str) and part and "\x00" not in part for part in command)
+    ):
+        raise section.error(
+            "command",
+            "expected a list of text: the program, then its arguments, "
+            'e.g. ["/usr/local/bin/lab-notify", "--room", "bay 2"] (no shell is used)',
+        )
+    return tuple(command), timeout
 
 
 def _amplitude_pp(section: Section, key: str) -> float:

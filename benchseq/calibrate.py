@@ -491,11 +491,13 @@ def condition_mismatches(
             f"bandwidth limit: calibrated {_bandwidth_text(was_bw)}, "
             f"this bench {_bandwidth_text(is_bw)}"
         )
-    known = identities is not None and "scope" in identities and cal.get("scope_identity")
-    if known and _identity_key(identities["scope"]) != _identity_key(cal["scope_identity"]):
-        found.append(
-            f"scope: calibrated on '{cal['scope_identity']}', this run uses '{identities['scope']}'"
-        )
+    scope = identities.get("scope") if identities is not None else None
+    if (
+        scope is not None
+        and cal.get("scope_identity")
+        and _identity_key(scope) != _identity_key(cal["scope_identity"])
+    ):
+        found.append(f"scope: calibrated on '{cal['scope_identity']}', this run uses '{scope}'")
     return found
 
 

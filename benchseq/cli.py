@@ -6,13 +6,18 @@ from __future__ import annotations
 import argparse
 import contextlib
 import json
+import logging
+import os
 import sys
 import warnings
 from collections.abc import Iterator, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from benchseq import __version__
 from benchseq.errors import BadInput, BenchseqError
+
+if TYPE_CHECKING:
+    from benchseq.display import RunDisplay
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -130,7 +135,8 @@ class _LiveDisplay:
     """Event sink that opens a RunDisplay on the first event and closes it at the end."""
 
     def __init__(self, console: Any, quiet: bool = False) -> None:
-        self.console, self.quiet, self.display = console, quiet, None
+        self.console, self.quiet = console, quiet
+        self.display: RunDisplay | None = None
 
     def __call__(self, event: Any) -> None:
         from benchseq.display import RunDisplay
@@ -153,6 +159,57 @@ class _LiveDisplay:
             self.display = None
 
 
+class _ConsoleFilter(logging.Filter):
+    """What the terminal's log handler leaves out: the run's own lines while the live
+    display shows them, and what is meant for the run log file only."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.live = False
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if getattr(record, "run_log_only", False):
+            return False
+        return not (self.live and record.name == "benchseq.run")
+
+
+def _is_terminal(console: Any) -> bool:
+    """True when the console writes to a terminal (its stream's isatty; FORCE_COLOR and the
+    like colour the output but do not make a redirected run draw a live display)."""
+    isatty = getattr(console.file, "isatty", None)
+    try:
+        return bool(isatty()) if isatty is not None else False
+    except ValueError:  # a closed stream
+        return False
+
+
+class _Progress:
+    """Event sink of a run: its log lines (benchseq.runlog) always; on a terminal, and
+    unless --quiet, the live display too (the terminal's log handler then leaves the lines
+    to it). Without a terminal (output redirected) the lines are the progress."""
+
+    def __init__(self, console: Any, args: argparse.Namespace) -> None:
+        from benchseq.runlog import ProgressLog
+
+        self.log = ProgressLog()
+        live = not getattr(args, "quiet", False) and _is_terminal(console)
+        self.display = _LiveDisplay(console) if live else None
+        self.filter: _ConsoleFilter | None = getattr(args, "log_filter", None)
+        if self.filter is not None:
+            self.filter.live = live
+
+    def __call__(self, event: Any) -> None:
+        self.log(event)
+        if self.display is not None:
+            self.display(event)
+
+    def close(self) -> None:
+        if self.display is not None:
+            self.display.close()
+        if self.filter is not None:
+            self.filter.live = False
+
+
 def cmd_replay(args: argparse.Namespace) -> int:
     from pathlib import Path
 
@@ -167,20 +224,20 @@ def cmd_replay(args: argparse.Namespace) -> int:
             raise BadInput(
                 "--reanalyse recomputes the stored points; it takes no --plan or --device"
             )
-        outcome = reanalyse(args.result, args.out, force=args.force)
+        redone = reanalyse(args.result, args.out, force=args.force)
         if args.json:
-            _print_json(outcome.to_dict())
+            _print_json(redone.to_dict())
         else:
-            _console().print(render_reanalysis(outcome))
-            _console().print(f"results: [bold]{_escape(outcome.path)}[/]")
+            _console().print(render_reanalysis(redone))
+            _console().print(f"results: [bold]{_escape(redone.path)}[/]")
         return EXIT_OK
 
     from benchseq.replay import render_comparison, replay
     from benchseq.stopping import StopControl
 
-    console = _console()
+    console = _console(stderr=args.json)
     stop = StopControl()
-    sink = _LiveDisplay(console, quiet=args.json)
+    sink = _Progress(console, args)
     with stop.installed():
         try:
             outcome = replay(
@@ -212,7 +269,7 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
 
     console = _console(stderr=args.json)
     stop = StopControl()
-    sink = _LiveDisplay(console)
+    sink = _Progress(console, args)
 
     def confirm(message: str) -> bool:
         console.print(_escape(message))
@@ -242,26 +299,164 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+class _RunEnding:
+    """How `run` ended, for its run log (RESULT.log beside the result) and its after-run
+    command: both are set up here, the command started on every way out (benchseq.afterrun)."""
+
+    def __init__(self, args: argparse.Namespace) -> None:
+        self.args = args
+        self.path: Any = None
+        self.status, self.reason, self.verdict = "failed", "", ""
+        self.not_safe: list[str] = []
+        self.handler: logging.FileHandler | None = None
+        self._command: tuple[list[str], float | None] | None = None
+
+    def open_log(self, path: Any) -> None:
+        """The run log beside ``path``: replaced by a new run, appended to on --resume; the
+        file is created with the first line (so a run refused before it began leaves none)."""
+        from benchseq.runlog import LineFormatter, run_log_path
+
+        self.path = path
+        handler = logging.FileHandler(
+            run_log_path(path), mode="a" if self.args.resume else "w", encoding="utf-8", delay=True
+        )
+        handler.setFormatter(LineFormatter())
+        handler.setLevel(logging.DEBUG if self.args.verbose else logging.INFO)
+        logging.getLogger("benchseq").addHandler(handler)
+        self.handler = handler
+
+    def failed(self, exc: BaseException) -> int:
+        """The exit code ``main`` gives for ``exc``; noted in the run log if it began."""
+        if isinstance(exc, BadInput):
+            self.status, code = "refused", EXIT_BAD_INPUT
+        elif isinstance(exc, BenchseqError):
+            self.status, code = "failed", exc.exit_code
+        elif isinstance(exc, KeyboardInterrupt):
+            self.status, code = "stopped", EXIT_FAILURE
+        else:
+            self.status, code = "failed", EXIT_FAILURE
+        self.reason = str(exc) or type(exc).__name__
+        if self.handler is not None and self.handler.stream is not None:
+            logging.getLogger("benchseq.run").error(
+                "run %s: %s", self.status, self.reason, extra={"run_log_only": True}
+            )
+        return code
+
+    def close(self, code: int) -> None:
+        """Start the after-run command (if any), then let go of the run log."""
+        handler, self.handler = self.handler, None
+        if handler is not None and handler.stream is None:  # nothing began: no log file
+            logging.getLogger("benchseq").removeHandler(handler)
+            handler = None
+        try:
+            self._after_run(code, handler)
+        finally:
+            if handler is not None:
+                logging.getLogger("benchseq").removeHandler(handler)
+                handler.close()
+
+    def _after_run(self, code: int, handler: logging.FileHandler | None) -> None:
+        from benchseq.afterrun import DEFAULT_TIMEOUT_S, ending_environment, run_after_command
+
+        argv, timeout = self.command()
+        if not argv:
+            return
+        variables = ending_environment(
+            result=os.path.abspath(self.path) if self.path else "",
+            status=self.status,
+            verdict=self.verdict,
+            exit_code=code,
+            reason=self.reason,
+            not_safe=self.not_safe,
+            run_log=handler.baseFilename if handler is not None else "",
+        )
+        run_after_command(argv, variables, timeout or DEFAULT_TIMEOUT_S)
+
+    def command(self) -> tuple[list[str], float | None]:
+        """--after-run, else the bench's [after_run] (the stored bench on --resume); none
+        when neither is given or the bench cannot be read (its error is reported already).
+        Read once: a new run's bench when it starts, a resumed run's at its end."""
+        if self._command is None:
+            self._command = self._read_command()
+        return self._command
+
+    def _read_command(self) -> tuple[list[str], float | None]:
+        import shlex
+
+        bench = None
+        try:
+            if self.args.resume:
+                from benchseq.bench import parse_bench
+                from benchseq.store import read_meta
+                from benchseq.tomlfile import parse_toml_text
+
+                meta = read_meta(self.args.resume)
+                text, data = parse_toml_text(
+                    meta["bench_text"], f"{self.args.resume} (stored bench)"
+                )
+                bench = parse_bench(data, str(meta["bench_source"]), text)
+            else:
+                from benchseq.bench import load_bench
+
+                bench = load_bench(self.args.bench)
+        except Exception:  # a bench that cannot be read names no command
+            bench = None
+        timeout = bench.after_run_timeout if bench is not None else None
+        if self.args.after_run:
+            return shlex.split(self.args.after_run), timeout
+        if bench is not None and bench.after_run:
+            return list(bench.after_run), timeout
+        return [], timeout
+
+
+def _run_path(args: argparse.Namespace) -> Any:
+    """The result file of this run: --resume's, --out, or the plan's default name."""
+    from pathlib import Path
+
+    from benchseq.plan import load_plan
+    from benchseq.runner import default_output
+
+    if args.resume:
+        return Path(args.resume)
+    if not args.plan:
+        raise BadInput("give a plan file (or --resume RESULT.h5)")
+    return Path(args.out) if args.out else default_output(load_plan(args.plan))
+
+
 def cmd_run(args: argparse.Namespace) -> int:
+    ending = _RunEnding(args)
+    if not args.resume:
+        ending.command()  # the bench's after-run command as the run starts
+    code = EXIT_FAILURE
+    try:
+        ending.open_log(_run_path(args))
+        code = _run(args, ending)
+        return code
+    except BaseException as exc:
+        code = ending.failed(exc)
+        raise
+    finally:
+        ending.close(code)
+
+
+def _run(args: argparse.Namespace, ending: _RunEnding) -> int:
     from benchseq.display import duration_text
     from benchseq.runner import resume_run, start_run
     from benchseq.stopping import StopControl
 
-    console = _console()
+    console = _console(stderr=args.json)
     stop = StopControl()
-    emit = _LiveDisplay(console)
+    emit = _Progress(console, args)
 
     with stop.installed(), _result_notices():
         try:
             if args.resume:
                 outcome, path = resume_run(args.resume, args.plan, args.bench, emit=emit, stop=stop)
             else:
-                if not args.plan:
-                    raise BadInput("give a plan file (or --resume RESULT.h5)")
                 outcome, path = start_run(
                     args.plan,
                     args.bench,
-                    args.out,
+                    str(ending.path),
                     force=args.force,
                     keep_waveforms=args.keep_waveforms,
                     seed=args.seed,
@@ -271,8 +466,19 @@ def cmd_run(args: argparse.Namespace) -> int:
         finally:
             emit.close()
     if outcome is None:
-        console.print(f"{_escape(path)} is already complete; nothing to do.")
+        ending.status, ending.reason = "complete", "already complete; nothing to do"
+        if args.json:
+            _print_json({"status": "complete", "reason": ending.reason, "file": str(path)})
+        else:
+            console.print(f"{_escape(path)} is already complete; nothing to do.")
         return EXIT_OK
+    from benchseq.store import read_meta, read_results
+
+    with _result_notices():
+        verdict = _verdict(read_meta(path), read_results(path), str(path))
+    ending.status, ending.reason = outcome.status, outcome.reason
+    ending.not_safe = list(outcome.not_safe)
+    ending.verdict = verdict.status if verdict is not None else ""
     if args.json:
         _print_json(
             {
@@ -285,28 +491,27 @@ def cmd_run(args: argparse.Namespace) -> int:
                 "bench_time_s": outcome.bench_time,
                 "safe_state": list(outcome.safe_state),
                 "not_safe": list(outcome.not_safe),
+                "verdict": ending.verdict or None,
             }
         )
     else:
         colour = {"complete": "green", "stopped": "yellow"}.get(outcome.status, "red")
         console.print(f"[bold {colour}]run {outcome.status}[/]: {_escape(outcome.reason)}")
-        console.print(
-            f"points measured this session: {outcome.measured} "
-            f"(lower bounds: {outcome.bounds}, flagged: {outcome.flagged}); "
-            f"bench time {duration_text(outcome.bench_time)}"
-        )
-        console.print("safe state: " + _escape("; ".join(outcome.safe_state)))
-        from benchseq.store import read_meta, read_results
-
-        with _result_notices():
-            verdict = _verdict(read_meta(path), read_results(path), str(path))
+        if not args.quiet:
+            console.print(
+                f"points measured this session: {outcome.measured} "
+                f"(lower bounds: {outcome.bounds}, flagged: {outcome.flagged}); "
+                f"bench time {duration_text(outcome.bench_time)}"
+            )
+            console.print("safe state: " + _escape("; ".join(outcome.safe_state)))
         if verdict is not None and verdict.status != "no mask":
             console.print(_verdict_markup(verdict))
-        console.print(f"results: [bold]{_escape(path)}[/]")
-        if outcome.status != "complete":
-            console.print(f"continue with: benchseq run --resume {_escape(path)}")
-        console.print(f"summary: benchseq show {_escape(path)}")
-        console.print(f"lab report: benchseq report {_escape(path)}")
+        if not args.quiet:
+            console.print(f"results: [bold]{_escape(path)}[/]")
+            if outcome.status != "complete":
+                console.print(f"continue with: benchseq run --resume {_escape(path)}")
+            console.print(f"summary: benchseq show {_escape(path)}")
+            console.print(f"lab report: benchseq report {_escape(path)}")
     if outcome.not_safe:  # never exit 0 with a bench that may still be energised
         _not_safe_alarm(outcome.not_safe, stderr=args.json)
         return EXIT_FAILURE
@@ -346,9 +551,11 @@ def _verdict_markup(verdict: Any) -> str:
 
 
 def cmd_show(args: argparse.Namespace) -> int:
-    from benchseq.display import points_table
+    from benchseq.overview import is_calibration_file, render_result
     from benchseq.store import read_meta, read_results
 
+    if is_calibration_file(args.result):
+        return _show_calibration(args)
     with _result_notices():
         _repair_for_reading(args.result)
         meta = read_meta(args.result)
@@ -365,21 +572,27 @@ def cmd_show(args: argparse.Namespace) -> int:
         )
         return EXIT_OK
     console = _console()
-    console.print(f"[bold]{_escape(meta.get('title', ''))}[/] — {_escape(meta.get('device', ''))}")
-    console.print(
-        f"status {_escape(meta.get('status'))}; started {_escape(meta.get('started'))}; "
-        f"{len(frame)} of {meta.get('point_count', '?')} points stored; bench {_escape(meta.get('bench_name', ''))}"
-    )
-    if meta.get("status") == "interrupted":
-        when = (meta.get("interrupted") or {}).get("last_point_at") or "never"
-        console.print(
-            f"[bold yellow]interrupted:[/] its process ended without finishing; last point "
-            f"stored {_escape(when)}; continue with: benchseq run --resume {_escape(args.result)}"
-        )
-    rows = frame.sort_values("point_id").to_dict(orient="records")
-    console.print(points_table(rows, title="points"))
-    if verdict is not None:
-        console.print(_verdict_markup(verdict))
+    for part in render_result(meta, frame, verdict, args.result, all_rows=args.all):
+        console.print(part)
+    return EXIT_OK
+
+
+def _show_calibration(args: argparse.Namespace) -> int:
+    """`show CAL.h5`: describe the channel-match calibration file."""
+    from benchseq.calibrate import calibration_summary, load_calibration
+    from benchseq.overview import calibration_figures, render_calibration_file
+
+    loaded = load_calibration(args.result)
+    if args.json:
+        summary = calibration_summary(loaded)
+        summary["kind"] = "channel-match calibration"
+        summary["meta"] = {k: v for k, v in loaded.meta.items() if not k.endswith("_text")}
+        summary["match"] = calibration_figures(loaded)
+        _print_json(summary)
+        return EXIT_OK
+    console = _console()
+    for part in render_calibration_file(loaded):
+        console.print(part)
     return EXIT_OK
 
 
@@ -408,6 +621,46 @@ def cmd_report(args: argparse.Namespace) -> int:
     console.print(f"{fmt} report written to [bold]{_escape(written[0])}[/]")
     for extra in written[1:]:
         console.print(f"  beside it: {_escape(extra)}")
+    return EXIT_OK
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from benchseq.compare import compare_files, render_comparisons, write_plot
+
+    model = None
+    if args.model is not None:
+        from benchseq.units import parse_quantity
+
+        model = (
+            args.model,
+            args.subcircuit or "",
+            parse_quantity(args.model_load, "A", "--model-load"),
+        )
+    elif args.subcircuit is not None:
+        raise BadInput("--subcircuit goes with --model FILE.cir")
+    if args.plot:
+        from benchseq.report.output import check_output
+
+        if not args.plot.lower().endswith(".png"):
+            raise BadInput(f"--plot {args.plot}: give a .png file name")
+        check_output(Path(args.plot), args.results)
+    with _result_notices():
+        for result in args.results:
+            _repair_for_reading(result)
+        comparisons = compare_files(args.results, model)
+    written = write_plot(comparisons, args.plot) if args.plot else []
+    if args.json:
+        _print_json(
+            {"comparisons": [c.to_dict() for c in comparisons], "plots": [str(p) for p in written]}
+        )
+        return EXIT_OK
+    console = _console()
+    for part in render_comparisons(comparisons, all_rows=args.all):
+        console.print(part)
+    for path in written:
+        console.print(f"plot written to [bold]{_escape(path)}[/]")
     return EXIT_OK
 
 
@@ -522,11 +775,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="overwrite an existing result file")
     p.add_argument("--keep-waveforms", action="store_true", help="store raw scope records")
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated bench (default 0)")
+    p.add_argument(
+        "--after-run",
+        metavar="COMMAND",
+        help="program (and arguments, split as a POSIX shell would, but run without one) to "
+        "start when the run ends in any state; replaces the bench's [after_run] command",
+    )
     p.add_argument("--json", action="store_true", help="print the outcome as JSON")
     p.set_defaults(func=cmd_run)
 
-    p = sub.add_parser("show", help="summary and table of a stored run")
-    p.add_argument("result", help="result file (.h5)")
+    p = sub.add_parser(
+        "show", help="summary, verdict and table of a stored run (or a calibration file)"
+    )
+    p.add_argument("result", help="result file (.h5), or a calibration file (CAL.h5)")
+    p.add_argument("--all", action="store_true", help="list every point (a long run is summarised)")
     p.add_argument("--json", action="store_true", help="print metadata and points as JSON")
     p.set_defaults(func=cmd_show)
 
@@ -605,6 +867,33 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the files written as JSON")
     p.set_defaults(func=cmd_report)
 
+    p = sub.add_parser(
+        "compare",
+        help="difference of runs point by point (or a run against a circuit model), with U (k = 2)",
+    )
+    p.add_argument(
+        "results",
+        nargs="+",
+        metavar="RESULT",
+        help="result files (.h5); the first is the reference",
+    )
+    p.add_argument("--plot", metavar="FILE.png", help="write both curves and the difference ± U")
+    p.add_argument(
+        "--model", metavar="FILE.cir", help="also compare with this netlist's prediction"
+    )
+    p.add_argument(
+        "--subcircuit", metavar="NAME", help="subcircuit of --model (pin, output, ground)"
+    )
+    p.add_argument(
+        "--model-load",
+        default="0 A",
+        metavar="CURRENT",
+        help="the board's own DC load on the output, added to the run's load (default 0 A)",
+    )
+    p.add_argument("--all", action="store_true", help="list every row (a long one is summarised)")
+    p.add_argument("--json", action="store_true", help="print every matched point as JSON")
+    p.set_defaults(func=cmd_compare)
+
     p = sub.add_parser("scan", help="list reachable VISA instruments and their *IDN?")
     p.add_argument(
         "address",
@@ -628,23 +917,106 @@ def build_parser() -> argparse.ArgumentParser:
     )
     q.set_defaults(func=cmd_sim_serve)
     _add_watch_parser(sub)
+    _verbosity_options(parser, sub)
     return parser
+
+
+def _verbosity_options(parser: argparse.ArgumentParser, sub: Any) -> None:
+    """-q/--quiet and -v/--verbose, before the command or after it (benchseq -v run ...,
+    benchseq run ... -v)."""
+    for target, default in [(parser, False), *((c, argparse.SUPPRESS) for c in _commands(sub))]:
+        group = target.add_mutually_exclusive_group()
+        group.add_argument(
+            "-q",
+            "--quiet",
+            action="store_true",
+            default=default,
+            help="warnings and the final verdict only",
+        )
+        group.add_argument(
+            "-v",
+            "--verbose",
+            action="store_true",
+            default=default,
+            help="debug detail too (instrument settings read back, capture decisions)",
+        )
+
+
+def _commands(sub: Any) -> list[argparse.ArgumentParser]:
+    """Every command's parser, nested ones (sim serve) included."""
+    found = []
+    for command in dict.fromkeys(sub.choices.values()):
+        found.append(command)
+        for action in command._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                found += _commands(action)
+    return found
+
+
+class _StderrHandler(logging.StreamHandler):  # type: ignore[type-arg]
+    """A handler writing to whatever sys.stderr is when a record comes (the live display
+    redirects it, to print lines above itself)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+
+    @property  # type: ignore[override]
+    def stream(self) -> Any:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value: Any) -> None:
+        pass
+
+
+def _attach_console_log(args: argparse.Namespace) -> tuple[logging.Handler, int]:
+    """The terminal's log handler (stderr) on the ``benchseq`` logger, at the level -q/-v
+    give; returns it and the logger's previous level, to put back."""
+    from benchseq.runlog import LineFormatter
+
+    package = logging.getLogger("benchseq")
+    previous = package.level
+    package.setLevel(logging.DEBUG if args.verbose else logging.INFO)
+    handler = _StderrHandler()
+    handler.setFormatter(LineFormatter())
+    handler.setLevel(
+        logging.WARNING if args.quiet else logging.DEBUG if args.verbose else logging.INFO
+    )
+    args.log_filter = _ConsoleFilter()
+    handler.addFilter(args.log_filter)
+    package.addHandler(handler)
+    return handler, previous
+
+
+def _json_error(args: argparse.Namespace, error: object, code: int) -> int:
+    """With --json, stdout still carries JSON when a command fails: the error and the
+    exit code (the message itself went to stderr as without --json)."""
+    if getattr(args, "json", False):
+        _print_json({"error": str(error), "exit_code": code})
+    return code
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    if args.quiet and args.verbose:
+        parser.error("-q/--quiet and -v/--verbose exclude each other")
     if not getattr(args, "func", None):
         parser.print_help()
         return EXIT_BAD_INPUT
+    handler, level = _attach_console_log(args)
     try:
         return int(args.func(args))
     except BadInput as exc:
         _console(stderr=True).print(f"[bold red]error:[/] {_escape(exc)}")
-        return EXIT_BAD_INPUT
+        return _json_error(args, exc, EXIT_BAD_INPUT)
     except BenchseqError as exc:
         _console(stderr=True).print(f"[bold red]failed:[/] {_escape(exc)}")
-        return exc.exit_code
+        return _json_error(args, exc, exc.exit_code)
     except KeyboardInterrupt:
         _console(stderr=True).print("interrupted")
-        return EXIT_FAILURE
+        return _json_error(args, "interrupted", EXIT_FAILURE)
+    finally:
+        package = logging.getLogger("benchseq")
+        package.removeHandler(handler)
+        package.setLevel(level)

@@ -71,10 +71,13 @@ def points_table(rows: list[dict[str, Any]], title: str = "latest points") -> Ta
     a coherent capture), rejection with U = k·u (k = 2), and input-referred rejection
     when the plan declares the device's gain."""
     inputs = _has_input_referred(rows)
+    loads = any(math.isfinite(float(r.get("load_current", float("nan")))) for r in rows)
     table = Table(title=title, title_justify="left", expand=False)
     table.add_column("#", justify="right")
     table.add_column("frequency (planned)", justify="right")
     table.add_column("DC", justify="right")
+    if loads:
+        table.add_column("load", justify="right")
     table.add_column("pin ripple", justify="right")
     table.add_column("rejection (output-referred)" if inputs else "rejection", justify="right")
     table.add_column(f"± U (k = {SHOWN_COVERAGE_FACTOR:g})", justify="right")
@@ -87,6 +90,7 @@ def points_table(rows: list[dict[str, Any]], title: str = "latest points") -> Ta
             str(row["point_id"]),
             frequency_text(row),
             f"{row['dc_level']:.3g} V",
+            *([format_si(float(row.get("load_current", float("nan"))), "A", 3)] if loads else []),
             format_si(2 * pin, "Vpp", 3),
             rejection_text(row),
             expanded_text(float(row.get("uncertainty_db", float("nan")))),

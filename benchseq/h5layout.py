@@ -242,8 +242,8 @@ def _group_columns(group: h5py.Group, where: str) -> list[Column]:
     try:
         names = json.loads(group.attrs["columns"])
         return [
-            Column(n, str(group[n].attrs["kind"]), units_of(group[n]),
-                   str(group[n].attrs["description"]))
+            Column.from_stored(n, str(group[n].attrs["kind"]), units_of(group[n]),
+                               str(group[n].attrs["description"]))
             for n in names
         ]  # fmt: skip
     except (KeyError, ValueError, TypeError) as exc:

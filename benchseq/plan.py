@@ -351,7 +351,7 @@ def _clean(values: np.ndarray) -> np.ndarray:
     return np.array([float(f"{v:.{_CLEAN_DIGITS}g}") for v in values], dtype=float)
 
 
-def _unique_sorted(values: Sequence[float]) -> np.ndarray:
+def _unique_sorted(values: Sequence[float] | np.ndarray) -> np.ndarray:
     """Sorted, with values equal within 1e-9 relative merged (the first one kept)."""
     ordered = np.sort(np.asarray(values, dtype=float))
     if ordered.size == 0:
@@ -520,13 +520,13 @@ def _band(band: Section) -> list[float]:
                 raise band.error(other, "a band with 'at' lists its frequencies; drop this key")
         items = band.items_list("at")
         where = _list_section(band, "at")
-        values = []
+        listed: list[float] = []
         for i, item in enumerate(items):
             frequency = where.parse_value(item, "Hz", i)
             if not frequency > 0:
                 raise where.error(i, f"a frequency must be greater than zero, got {item!r}")
-            values.append(where.check_range(i, frequency, item, FREQUENCY_RANGE))
-        return values
+            listed.append(where.check_range(i, frequency, item, FREQUENCY_RANGE))
+        return listed
     kinds = [k for k in ("per_decade", "step", "points") if band.has(k)]
     if len(kinds) != 1:
         raise FileKeyError(

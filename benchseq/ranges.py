@@ -109,6 +109,7 @@ BENCH_RANGES: dict[str, Range] = {
     "pin.capacitor_esr": Range(0.0, 1e3, "Ω"),
     "pin.load_current": Range(0.0, 100.0, "A"),
     "pin.load_resistance": _RESISTOR,
+    "after_run.timeout": Range(1.0, 600.0, "s"),
 }
 
 

@@ -14,7 +14,7 @@ import zlib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, cast
 
 import numpy as np
 
@@ -77,6 +77,11 @@ class Column:
             raise ValueError(f"column {self.name!r}: kind must be one of {sorted(_DTYPES)}")
         if not self.name or "/" in self.name or self.name.startswith("."):
             raise ValueError(f"column name {self.name!r} cannot name an HDF5 dataset")
+
+    @classmethod
+    def from_stored(cls, name: str, kind: str, unit: str, description: str) -> Column:
+        """A column as read back from a file; a kind outside Kind is refused as above."""
+        return cls(name, cast(Kind, kind), unit, description)
 
 
 @dataclass(frozen=True)
@@ -202,7 +207,7 @@ def _columns_to_json(columns: Sequence[Column] | None) -> list[list[str]] | None
 
 
 def _columns_from_json(items: Any) -> list[Column] | None:
-    return None if items is None else [Column(*map(str, item)) for item in items]
+    return None if items is None else [Column.from_stored(*map(str, item)) for item in items]
 
 
 def _with_point_id(columns: Sequence[Column]) -> list[Column]:

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import logging
 import platform
 import uuid
 import warnings
@@ -27,6 +28,9 @@ from benchseq.records import (
 from benchseq.sequencer import EventSink, RunOutcome, Sequencer
 from benchseq.stopping import StopControl
 from benchseq.tomlfile import parse_toml_text
+
+# the run's own lines (benchseq.runlog logs its progress there too)
+log = logging.getLogger("benchseq.run")
 
 
 class RefusedPlan(BadInput):
@@ -281,6 +285,14 @@ def run_prepared(
         force=force or is_pointless_abort(path),
         truth_columns=TRUTH_COLUMNS if bench.is_simulated else None,
     )
+    log.info(
+        "run started: %s, %d point%s, bench %s; results %s",
+        plan.source,
+        report.point_count,
+        "" if report.point_count == 1 else "s",
+        bench.name,
+        path,
+    )
     outcome = _run_on_bench(
         plan,
         bench,
@@ -465,6 +477,7 @@ def resume_run(
     else:
         calibration = None
     writer = RunWriter.resume(path)
+    log.info("---- run resumed: %s (%d points stored before) ----", path, len(writer.stored_ids))
     seed = int(meta.get("seed", 0))
     outcome = _run_on_bench(
         plan,

@@ -7,6 +7,7 @@ prints: it emits events that the CLI renders.
 
 from __future__ import annotations
 
+import logging
 import math
 import time
 import traceback
@@ -36,6 +37,8 @@ INITIAL_REJECTION_GUESS_DB = 40.0
 CORNER_SEED_KEY = 2**40  # simulator noise key of the AC-corner measurement (points: id·16+try)
 COUPLING_SETTLE_S = 0.3  # after switching a channel between AC and DC coupling
 DEFAULT_NOISE_GUESS = 200e-6  # V rms per sample, until a capture shows the real noise
+
+log = logging.getLogger(__name__)  # debug detail of the capture decisions (benchseq -v)
 
 
 @dataclass
@@ -579,6 +582,13 @@ class Sequencer:
         probe = batches.batch(
             plan, batches.probe_records(plan), timebase.max_averages, timebase.rearm_time
         )
+        log.debug(
+            "point %d: capture at %.6g Hz (%.4g cycles per record), %d samples at %.3g s, "
+            "%d averages x %d records first; expected u %.3g dB (target %.3g dB)",
+            point_id, plan.frequency, plan.cycles, plan.record_length, plan.sample_interval,
+            probe.averages, probe.records, plan.expected_uncertainty_db,
+            rules.target_uncertainty_db,
+        )  # fmt: skip
         pin_range = self._range_for(self.bench.scope.pin, target)
         noise = carry.noise.white_sigma if carry.noise is not None else 0.0
         out_range = (
@@ -601,6 +611,10 @@ class Sequencer:
             ):
                 break
             trims += 1
+            log.debug(
+                "point %d: pin ripple %.4g V peak against %.4g V: generator trimmed (%d)",
+                point_id, measured_pin, target, trims,
+            )  # fmt: skip
             self.activity = "trim"
             actual_pp = s.generator.set_amplitude_pp(
                 self._clamp_generator(actual_pp * target / measured_pin)
@@ -636,6 +650,10 @@ class Sequencer:
             if more.capped or more.detecting:  # whole scope averages may round the count up:
                 extra = batches.within(extra, more.records, timebase)  # keep to max_time
             granule = extra.records
+            log.debug(
+                "point %d: top-up of %d records (%d averages)%s",
+                point_id, extra.records, extra.averages, ", capped by max_time" if capped else "",
+            )  # fmt: skip
             pin_range, out_range, _, used, waves = self._capture_ranged(
                 extra, actual_frequency, pin_range, out_range, flags
             )
@@ -853,8 +871,9 @@ class Sequencer:
 
     def _acquire(
         self, plan: analysis.CapturePlan, pin_range: float, out_range: float
-    ) -> tuple[Any, Any]:
-        """One capture of both channels per ``plan``; returns (pin, output) as (volts, codes)."""
+    ) -> tuple[list[Any], list[Any], float]:
+        """One capture of both channels per ``plan``; returns the pin and output waveforms as
+        read (one per record) and their sample interval."""
         scope = self.session.scope
         pin_ch, out_ch = self.bench.scope.pin, self.bench.scope.output
         bandwidth = self.bench.scope.bandwidth_limit

@@ -559,15 +559,18 @@ class RunWriter:
         with open(self.journal_file, "rb") if scan else contextlib.nullcontext() as handle:
             for record in scan.records if scan else []:
                 body = record.body
-                pid = body.get("id")
-                if body.get("kind") != "point" or pid in known or pid in new_ids:
+                if body.get("kind") != "point":
                     continue
-                new_ids.add(int(pid))
+                pid = int(body["id"])
+                if pid in known or pid in new_ids:
+                    continue
+                new_ids.add(pid)
                 rows.append(body["row"])
                 if body.get("truth") is not None and truth is not None:
                     truth_rows.append(body["truth"])
                 if body.get("waveforms"):
-                    _append_waveforms(h5, int(pid), body["waveforms"], jr.read_blob(handle, record))
+                    assert handle is not None  # records come only from an open journal
+                    _append_waveforms(h5, pid, body["waveforms"], jr.read_blob(handle, record))
         _append_rows(points, self.columns, rows)
         if truth is not None and self.truth_columns:
             _append_rows(truth, self.truth_columns, truth_rows)

@@ -19,6 +19,7 @@ Rules (common practice for unattended sweeps, and the planning experiments):
 from __future__ import annotations
 
 import dataclasses
+import logging
 import math
 import time
 from collections.abc import Callable
@@ -46,6 +47,8 @@ MAX_ERROR_ENTRIES = 20  # an error queue that never empties is itself a fault
 AMBIGUOUS = (InstrumentTimeout, ConnectionLost, GarbledReply, TruncatedBlock)
 PASSING_CODES = (-499, -300)  # SCPI-99 vol. 2 ch. 21: -3xx device-specific, -4xx query errors
 SEND_ATTEMPTS = 2  # a command met by a passing error entry is sent at most this often
+
+log = logging.getLogger(__name__)  # each setting and its read-back (benchseq -v)
 
 
 def is_passing(exc: BaseException) -> bool:
@@ -287,8 +290,10 @@ class Instrument:
     ) -> Any:
         self.send_checked(command)
         if query is None:
+            log.debug("%s: %s", self.resource, command)
             return None
         actual = parse(self.transport.query(query), self.resource, query)
+        log.debug("%s: %s; %s reads back %r", self.resource, command, query, actual)
         if remember:
             self._state[slot] = Setting(command, query, actual, parse, enables)
         return actual

@@ -46,11 +46,16 @@ class PinImpedance:
 
 
 class Device(Protocol):
-    """What the simulated bench needs from a device model."""
+    """What the simulated bench needs from a device model (read-only: frozen dataclasses
+    satisfy it)."""
 
-    kind: str
-    pin: PinImpedance
-    board_load_current: float  # A, drawn from the output by the device's own board
+    @property
+    def kind(self) -> str: ...
+    @property
+    def pin(self) -> PinImpedance: ...
+    @property
+    def board_load_current(self) -> float:
+        """A, drawn from the output by the device's own board."""
 
     def transfer(self, f: np.ndarray, op: OperatingPoint) -> np.ndarray:
         """V_out / V_pin (complex) at each frequency (Hz)."""
@@ -64,7 +69,9 @@ class Device(Protocol):
     def noise_density(self, f: np.ndarray, op: OperatingPoint) -> np.ndarray:
         """Output noise density (V/√Hz) at each frequency, before the noise bandwidth."""
 
-    noise_bandwidth: float  # Hz, single-pole corner of the output noise
+    @property
+    def noise_bandwidth(self) -> float:
+        """Hz, single-pole corner of the output noise."""
 
 
 def rejection_db(device: Device, f: np.ndarray, op: OperatingPoint) -> np.ndarray:

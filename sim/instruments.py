@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 from bisect import bisect_left
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Literal
 
 import numpy as np
 
@@ -85,7 +85,7 @@ class Generator(ScpiInstrument):
             "OUTPut#[:STATe]", True, lambda s, a: self._on(s) and str(int(self.settings.output))
         )
 
-    def _on(self, suffixes: list[int]) -> bool:
+    def _on(self, suffixes: list[int]) -> Literal[True]:
         _check_channel(suffixes, 1)
         return True
 
@@ -230,7 +230,7 @@ class Supply(ScpiInstrument):
         self.add("MEASure#[:SCALar]:CURRent[:DC]", True, self._measure_current)
         self.add("STATus:QUEStionable:CONDition", True, lambda x, a: str(self.questionable()))
 
-    def _on(self, suffixes: list[int]) -> bool:
+    def _on(self, suffixes: list[int]) -> Literal[True]:
         _check_channel(suffixes, 1)
         return True
 
@@ -335,7 +335,7 @@ class Load(ScpiInstrument):
         self.add("MEASure#[:SCALar]:CURRent[:DC]", True, self._measure_current)
         self.add("MEASure#[:SCALar]:VOLTage[:DC]", True, self._measure_voltage)
 
-    def _on(self, suffixes: list[int]) -> bool:
+    def _on(self, suffixes: list[int]) -> Literal[True]:
         _check_channel(suffixes, 1)
         return True
 

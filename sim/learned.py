@@ -102,7 +102,7 @@ class Pchip:
         return d
 
     def __call__(self, xq: np.ndarray | float) -> np.ndarray:
-        xq = np.clip(np.asarray(xq, dtype=float), self.x[0], self.x[-1])
+        xq = np.asarray(xq, dtype=float).clip(self.x[0], self.x[-1])
         if self.x.size == 1:
             return np.full(xq.shape, self.y[0])
         i = np.clip(np.searchsorted(self.x, xq, side="right") - 1, 0, self.x.size - 2)
@@ -254,7 +254,7 @@ class LearnedDevice:
     _nearest_cache: dict[tuple[float, float], int] = field(default_factory=dict, repr=False)
 
     @property
-    def pin(self) -> PinImpedance:  # type: ignore[override]
+    def pin(self) -> PinImpedance:
         return self.standin.pin
 
     @property

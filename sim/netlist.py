@@ -19,6 +19,13 @@ Results are cached per (netlist hash, subcircuit, temperature, operating point) 
 small-signal part, per frequency. Operating points are resolved to 1 µV and 1 nA: the
 simulator's DC iteration then settles on one ngspice run per operating point.
 
+Large-signal mode (opt-in, ``[device.large_signal]``): at the points its conditions choose,
+a transient analysis drives the pin with DC plus the ripple the injector delivers there (its
+fundamental and any harmonics, as periodic sources) for a bounded number of cycles, and the
+output's last whole cycles give the output's harmonics and mean level: dropout, clipping and
+slew of the device then reach the scope as on the board. Cached per operating point,
+frequency and pin ripple.
+
 Never imports benchseq.injector or benchseq.analysis.
 """
 
@@ -36,6 +43,7 @@ from collections import OrderedDict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -62,7 +70,58 @@ class NetlistInvalid(BadInput):
 
 
 class NetlistNotConverged(MeasurementFailure):
-    """ngspice found no DC operating point (or no small-signal solution) at one point."""
+    """ngspice found no DC operating point (or no small-signal or transient solution) at one
+    point."""
+
+
+LARGE_SIGNAL_HARMONICS = 63  # output harmonics kept from a transient analysis
+RIPPLE_RESOLUTION = 1e-7  # V: pin ripple phasors of a transient analysis are resolved to this
+
+
+@dataclass(frozen=True)
+class LargeSignal:
+    """Which points get a transient analysis, and how long it runs (``[device.large_signal]``).
+
+    A point is chosen when every condition holds: pin ripple at or above ``min_ripple`` (V
+    peak), generator frequency within [``frequency_from``, ``frequency_to``], pin DC at or below
+    ``pin_dc_below``. The analysis runs max(``settle_cycles``, ``settle`` · f) cycles, at most
+    ``max_cycles`` − ``analysed_cycles``, then ``analysed_cycles`` whole cycles are kept, with
+    a time step of at most one ``steps_per_cycle``-th of a period.
+    """
+
+    enabled: bool = True
+    min_ripple: float = 0.0  # V peak at the pin
+    frequency_from: float = 0.0  # Hz
+    frequency_to: float = math.inf  # Hz
+    pin_dc_below: float = math.inf  # V
+    settle: float = 5e-3  # s simulated before the analysed cycles (bounded by max_cycles)
+    settle_cycles: int = 5
+    max_cycles: int = 400
+    analysed_cycles: int = 2
+    steps_per_cycle: int = 256
+
+    def applies(self, frequency: float, pin_peak: float, pin_dc: float) -> bool:
+        return (
+            self.enabled
+            and pin_peak > 0
+            and pin_peak >= self.min_ripple
+            and self.frequency_from <= frequency <= self.frequency_to
+            and pin_dc <= self.pin_dc_below
+        )
+
+    def settle_count(self, frequency: float) -> int:
+        """Whole cycles simulated before the analysed ones at ``frequency``."""
+        wanted = max(self.settle_cycles, math.ceil(self.settle * frequency - 1e-9))
+        return max(1, min(wanted, self.max_cycles - self.analysed_cycles))
+
+
+@dataclass(frozen=True)
+class LargeSignalOutput:
+    """One transient analysis: output harmonics 1..K (V peak phasors at k·f, phase zero where
+    the pin's fundamental peaks) and the output's mean level over the analysed cycles."""
+
+    harmonics: np.ndarray
+    mean: float
 
 
 @dataclass(frozen=True)
@@ -208,6 +267,57 @@ def deck_text(
     return "\n".join(lines) + "\n"
 
 
+def transient_deck(
+    spec: NetlistSpec,
+    pin_dc: float,
+    output_current: float,
+    frequency: float,
+    pin_harmonics: Sequence[complex],
+    settle_cycles: int,
+    analysed_cycles: int,
+    steps_per_cycle: int,
+) -> str:
+    """The transient deck: the pin driven by DC plus one sine source per harmonic of the pin
+    ripple (in series; A·cos(kωt + θ) written as SIN with phase θ + 90°), the DC current sink
+    on the output, ``tran`` from the operating point with the step at most T/steps_per_cycle,
+    kept from ``settle_cycles`` periods on, resampled on that grid (``linearize``) and
+    written with 16 digits."""
+    period = 1.0 / frequency
+    step = period / steps_per_cycle
+    start = settle_cycles * period
+    stop = (settle_cycles + analysed_cycles) * period
+    used = [(k, h) for k, h in enumerate(pin_harmonics, start=1) if abs(h) > 0]
+    lines = ["benchseq netlist device, transient", f'.include "{spec.path}"']
+    for n, (k, h) in enumerate(used):
+        top = PIN_NODE if n == 0 else f"bsq_h{n}"
+        bottom = "0" if n == len(used) - 1 else f"bsq_h{n + 1}"
+        name = SOURCE if n == 0 else f"vbsq_h{n}"
+        offset = _number(pin_dc) if n == 0 else "0"
+        dc = f"DC {_number(pin_dc)} " if n == 0 else ""
+        phase = math.degrees(math.atan2(h.imag, h.real)) + 90.0
+        lines.append(
+            f"{name} {top} {bottom} {dc}SIN({offset} {_number(abs(h))} "
+            f"{_number(k * frequency)} 0 0 {_number(phase)})"
+        )
+    lines += [
+        f"ibsq_load {OUTPUT_NODE} 0 DC {_number(output_current)}",
+        f"xbsq_dut {PIN_NODE} {OUTPUT_NODE} 0 {spec.subcircuit}",
+    ]
+    if spec.temperature is not None:
+        lines.append(f".options temp={_number(spec.temperature)}")
+    lines += [
+        ".control",
+        "set numdgt=16",
+        f"tran {_number(step)} {_number(stop)} {_number(start)} {_number(step)}",
+        f"linearize v({OUTPUT_NODE})",
+        f"wrdata tran.txt v({OUTPUT_NODE})",
+        "quit",
+        ".endc",
+        ".end",
+    ]
+    return "\n".join(lines) + "\n"
+
+
 @dataclass(frozen=True)
 class _Run:
     stdout: str
@@ -216,7 +326,20 @@ class _Run:
     ac_rows: np.ndarray | None
 
 
-def _run(spec: NetlistSpec, deck: str) -> _Run:
+def _read_rows(path: Path) -> np.ndarray | None:
+    """The numeric rows of a ``wrdata`` file (header lines skipped), or None without one."""
+    if not path.exists():
+        return None
+    parsed = []
+    for line in path.read_text(encoding="ascii", errors="replace").splitlines():
+        try:
+            parsed.append([float(x) for x in line.split()])
+        except ValueError:
+            continue  # a header line (repeated by appendwrite)
+    return np.array([r for r in parsed if r])
+
+
+def _run(spec: NetlistSpec, deck: str, output: str = "ac.txt") -> _Run:
     executable = ngspice_executable()
     with tempfile.TemporaryDirectory(prefix="benchseq-netlist-") as tmp:
         file = Path(tmp) / "deck.cir"
@@ -237,16 +360,7 @@ def _run(spec: NetlistSpec, deck: str) -> _Run:
             ) from None
         except OSError as exc:
             raise NgspiceMissing(f"ngspice ({executable}) could not be started: {exc}") from None
-        rows = None
-        out = Path(tmp) / "ac.txt"
-        if out.exists():
-            parsed = []
-            for line in out.read_text(encoding="ascii", errors="replace").splitlines():
-                try:
-                    parsed.append([float(x) for x in line.split()])
-                except ValueError:
-                    continue  # a header line (repeated by appendwrite)
-            rows = np.array([r for r in parsed if r])
+        rows = _read_rows(Path(tmp) / output)
     return _Run(run.stdout, run.stderr, run.returncode, rows)
 
 
@@ -268,6 +382,21 @@ def _error_lines(text: str, limit: int = 6) -> str:
         if line.strip() and ("error" in line.lower() or "could not" in line.lower())
     ]
     return "; ".join(picked[:limit]) or text.strip()[-400:]
+
+
+def _transient_reason(run: _Run, limit: int = 3) -> str:
+    """ngspice's own words on why a transient analysis stopped (distinct lines), else its
+    error lines."""
+    picked: list[str] = []
+    for line in (run.stderr + "\n" + run.stdout).splitlines():
+        text = line.strip()
+        if (
+            text
+            and text not in picked
+            and (_NO_CONVERGENCE.search(text) or "singular matrix" in text.lower())
+        ):
+            picked.append(text)
+    return "; ".join(picked[:limit]) or _error_lines(run.stderr + run.stdout)
 
 
 def _parse_failed(run: _Run) -> bool:
@@ -293,7 +422,9 @@ class _Cache:
         self.lock = threading.Lock()
         self.ops: OrderedDict[tuple, OperatingSolution] = OrderedDict()
         self.ac: OrderedDict[tuple, tuple[complex, complex]] = OrderedDict()
+        self.tran: OrderedDict[tuple, LargeSignalOutput] = OrderedDict()
         self.runs = 0  # ngspice runs made (for benchmarks and tests)
+        self.transient_runs = 0  # of which transient analyses
 
     def keep(self, table: OrderedDict, key: tuple, value: object) -> None:
         table[key] = value
@@ -403,6 +534,94 @@ class NetlistSolver:
             for f, answer in answers.items():
                 CACHE.keep(CACHE.ac, (*key, f), answer)
 
+    def large_signal(
+        self,
+        pin_dc: float,
+        output_current: float,
+        frequency: float,
+        pin_harmonics: Sequence[complex] | np.ndarray,
+        settings: LargeSignal,
+    ) -> LargeSignalOutput:
+        """The output's harmonics and mean level from a transient analysis with the pin at
+        DC plus ``pin_harmonics`` (V peak phasors at k·``frequency``, phase zero at t = 0)."""
+        if not (frequency > 0 and math.isfinite(frequency)):
+            raise ValueError("the frequency must be positive and finite")
+        v, i = _resolve(pin_dc, output_current)
+        harmonics = np.asarray(pin_harmonics, dtype=complex)
+        if harmonics.size == 0 or abs(harmonics[0]) == 0:
+            raise ValueError("a transient analysis needs a pin ripple")
+        # time invariance: solve with the fundamental as sin(ωt) (the pin starts at its DC
+        # level, no step at t = 0), turn the answer back
+        turn = 1j * harmonics[0] / abs(harmonics[0])
+        order = np.arange(1, harmonics.size + 1)
+        aligned = harmonics * turn.conjugate() ** order
+        resolved = tuple(
+            complex(round(h.real / RIPPLE_RESOLUTION), round(h.imag / RIPPLE_RESOLUTION))
+            for h in aligned
+        )
+        while len(resolved) > 1 and resolved[-1] == 0:
+            resolved = resolved[:-1]
+        settle = settings.settle_count(frequency)
+        grid = (settle, settings.analysed_cycles, settings.steps_per_cycle)
+        key = (*self._base, v, i, float(frequency), resolved, grid)
+        with CACHE.lock:
+            found = CACHE.tran.get(key)
+        if found is None:
+            drive = [complex(h.real, h.imag) * RIPPLE_RESOLUTION for h in resolved]
+            found = self._transient(v, i, float(frequency), drive, settings, settle)
+            with CACHE.lock:
+                CACHE.keep(CACHE.tran, key, found)
+        count = found.harmonics.size
+        return LargeSignalOutput(
+            harmonics=found.harmonics * turn ** np.arange(1, count + 1), mean=found.mean
+        )
+
+    def _transient(
+        self,
+        v: float,
+        i: float,
+        frequency: float,
+        drive: list[complex],
+        settings: LargeSignal,
+        settle: int,
+    ) -> LargeSignalOutput:
+        cycles, per_cycle = settings.analysed_cycles, settings.steps_per_cycle
+        deck = transient_deck(self.spec, v, i, frequency, drive, settle, cycles, per_cycle)
+        run = _run(self.spec, deck, output="tran.txt")
+        with CACHE.lock:
+            CACHE.runs += 1
+            CACHE.transient_runs += 1
+        point = (
+            f"{describe_point(v, i)}, {frequency:.6g} Hz, pin ripple "
+            f"{2.0 * abs(drive[0]) * 1e3:.6g} mVpp"
+        )
+        if _parse_failed(run):
+            raise NetlistInvalid(
+                f"{self.spec.where}: ngspice cannot use it: {_error_lines(run.stderr)}"
+            )
+        wanted = cycles * per_cycle
+        rows = run.ac_rows
+        if (
+            _not_converged(run)
+            or rows is None
+            or rows.ndim != 2
+            or rows.shape[0] < wanted
+            or rows.shape[1] < 2
+            or not np.all(np.isfinite(rows[:wanted, 1]))
+        ):
+            raise NetlistNotConverged(
+                f"{self.spec.where}: the transient analysis at {point} did not complete "
+                f"(ngspice: {_transient_reason(run)}). Check the circuit's "
+                "behaviour over the ripple's swing there (a node without a DC path, a "
+                "discontinuous model, a supply below the circuit's range), or narrow the "
+                "points [device.large_signal] chooses."
+            )
+        wave = rows[:wanted, 1]
+        spectrum = np.fft.rfft(wave) / wanted
+        count = min(LARGE_SIGNAL_HARMONICS, per_cycle // 2 - 1)
+        harmonics = 2.0 * spectrum[cycles : (count + 1) * cycles : cycles]
+        return LargeSignalOutput(harmonics=harmonics, mean=float(spectrum[0].real))
+
 
 # -- the device ------------------------------------------------------------------------------------
 class _OperatingPin:
@@ -426,13 +645,14 @@ class NetlistDevice:
     flicker_corner: float = 0.0  # Hz
     noise_bandwidth: float = 100e3  # Hz
     kind: str = "netlist"
+    large_signal_settings: LargeSignal | None = None  # None: small-signal everywhere
     last_point: OperatingPoint = field(default_factory=lambda: OperatingPoint(0.0, 0.0))
 
     def __post_init__(self) -> None:
         self.solver = NetlistSolver(self.spec)
 
     @property
-    def pin(self) -> PinImpedance:  # type: ignore[override]
+    def pin(self) -> PinImpedance:
         return _OperatingPin(self)  # type: ignore[return-value]
 
     def check(self) -> None:
@@ -479,6 +699,57 @@ class NetlistDevice:
         f = np.maximum(np.asarray(f, dtype=float), 1e-3)
         return self.white_noise * np.sqrt(1.0 + self.flicker_corner / f)
 
+    def large_signal(
+        self, frequency: float, pin_harmonics: np.ndarray, op: OperatingPoint
+    ) -> LargeSignalOutput | None:
+        """The output from a transient analysis, where ``[device.large_signal]`` chooses this
+        point (pin ripple ``pin_harmonics`` at k·``frequency``); None elsewhere (the
+        small-signal answer stands)."""
+        settings = self.large_signal_settings
+        if settings is None or op.pin_dc <= 0 or len(pin_harmonics) == 0:
+            return None
+        if not settings.applies(frequency, abs(complex(pin_harmonics[0])), op.pin_dc):
+            return None
+        return self.solver.large_signal(
+            op.pin_dc, self._current(op), frequency, pin_harmonics, settings
+        )
+
+
+def large_signal_from_section(section: Section) -> LargeSignal:
+    """``[device.large_signal]``: see LargeSignal (ripple as an amplitude, e.g. "500 mVpp")."""
+    values: dict[str, object] = {"enabled": section.flag("enabled", default=True)}
+    if section.has("ripple_above"):
+        values["min_ripple"] = section.amplitude("ripple_above").peak
+    for key in ("frequency_from", "frequency_to"):
+        if section.has(key):
+            values[key] = section.quantity(key, "Hz", positive=True)
+    if section.has("pin_dc_below"):
+        values["pin_dc_below"] = section.quantity("pin_dc_below", "V", positive=True)
+    if section.has("settle"):
+        values["settle"] = section.quantity("settle", "s", nonnegative=True)
+    values["settle_cycles"] = section.integer("settle_cycles", default=5, minimum=1, maximum=10_000)
+    values["analysed_cycles"] = section.integer(
+        "analysed_cycles", default=2, minimum=1, maximum=100
+    )
+    values["max_cycles"] = section.integer("max_cycles", default=400, minimum=2, maximum=100_000)
+    values["steps_per_cycle"] = section.integer(
+        "steps_per_cycle", default=256, minimum=32, maximum=4096
+    )
+    section.done()
+    settings = LargeSignal(**values)  # type: ignore[arg-type]
+    if settings.frequency_from > settings.frequency_to:
+        raise section.error(
+            "frequency_from",
+            f"{settings.frequency_from:g} Hz is above frequency_to ({settings.frequency_to:g} Hz)",
+        )
+    if settings.max_cycles <= settings.analysed_cycles:
+        raise section.error(
+            "max_cycles",
+            f"{settings.max_cycles} leaves no settling cycles before the "
+            f"{settings.analysed_cycles} analysed ones",
+        )
+    return settings
+
 
 def netlist_device_from_section(section: Section, folder: Path) -> NetlistDevice:
     """A NetlistDevice from a scenario's [device] table (model = "netlist"); the netlist is
@@ -486,7 +757,7 @@ def netlist_device_from_section(section: Section, folder: Path) -> NetlistDevice
     name = section.text("netlist")
     subcircuit = section.text("subcircuit")
     temperature = section.number("temperature_c", default=None)
-    values: dict[str, float] = {}
+    values: dict[str, Any] = {}  # keyword arguments of NetlistDevice
     if section.has("board_load_current"):
         values["board_load_current"] = section.quantity("board_load_current", "A", nonnegative=True)
     if section.has("white_noise_nv_per_root_hz"):
@@ -494,8 +765,10 @@ def netlist_device_from_section(section: Section, folder: Path) -> NetlistDevice
     for key in ("flicker_corner", "noise_bandwidth"):
         if section.has(key):
             values[key] = section.quantity(key, "Hz", nonnegative=True)
+    large = section.section("large_signal", required=False)
+    settings = large_signal_from_section(large) if large is not None else None
     section.done()
     spec = read_netlist(folder / name, subcircuit, section.source, temperature)
-    device = NetlistDevice(spec, **values)
+    device = NetlistDevice(spec, large_signal_settings=settings, **values)
     device.check()
     return device

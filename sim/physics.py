@@ -5,6 +5,11 @@ would exceed its slew rate, its output swing or its current limit, one period of
 is built in the time domain, limited sample by sample (slew limiter, swing clip, current
 clamp), and its harmonics carried to the pin through the passive path behind the op-amp:
 overdriving distorts and shrinks the pin waveform as on a bench.
+
+A device with ``large_signal(frequency, pin_harmonics, op)`` (a netlist with
+``[device.large_signal]``) may answer a point with the output's harmonics and mean level
+from a transient analysis driven by the pin ripple; the output then carries the device's own
+dropout, clipping and slew, and the truth's transfer is the fundamental's ratio.
 """
 
 from __future__ import annotations
@@ -48,6 +53,7 @@ class PointPhysics:
     swing_limited: bool
     current_limited: bool
     peak_output_current: float  # A, op-amp output, DC + ripple
+    large_signal: bool = False  # the output came from the device's transient analysis
 
 
 def _slew_limit(wave: np.ndarray, max_step: float) -> np.ndarray:
@@ -147,21 +153,37 @@ def solve_point(
         freqs = np.array([frequency])
         opamp_h = np.array([opamp1])
         pin_h = ac.pin_per_emf * emf
-    transfer = device.transfer(freqs, op)
+    transient = getattr(device, "large_signal", None)
+    answer = transient(frequency, pin_h, op) if transient is not None and emf_peak > 0 else None
+    if answer is None:
+        transfer = device.transfer(freqs, op)
+        output_h = pin_h * transfer
+        fundamental = complex(transfer[0])
+        output_dc = device.output_dc(op)
+    else:
+        count = max(answer.harmonics.size, pin_h.size)
+        freqs = frequency * np.arange(1, count + 1)
+        pin_h = np.concatenate([pin_h, np.zeros(count - pin_h.size, dtype=complex)])
+        opamp_h = np.concatenate([opamp_h, np.zeros(count - opamp_h.size, dtype=complex)])
+        output_h = np.zeros(count, dtype=complex)
+        output_h[: answer.harmonics.size] = answer.harmonics
+        fundamental = complex(output_h[0] / pin_h[0])
+        output_dc = answer.mean
     return PointPhysics(
         frequency=frequency,
         emf=emf,
         supply=supply,
         dc=dc,
         op=op,
-        output_dc=device.output_dc(op),
+        output_dc=output_dc,
         harmonic_frequencies=freqs,
         opamp_harmonics=opamp_h,
         pin_harmonics=pin_h,
-        output_harmonics=pin_h * transfer,
-        transfer=complex(transfer[0]),
+        output_harmonics=output_h,
+        transfer=fundamental,
         slew_limited=bool(slew and emf_peak > 0),
         swing_limited=bool(swing and emf_peak > 0),
         current_limited=bool(over_current or dc.current_limited),
         peak_output_current=peak_current,
+        large_signal=answer is not None,
     )

@@ -268,7 +268,7 @@ def parse_scenario(data: dict, source: str, folder: Path | None = None) -> Scena
         load_max_current=load_max,
         faults=faults,
         bias_settling=bias_settling,
-        **extras,  # type: ignore[arg-type]
+        **extras,
     )
 
 

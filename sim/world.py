@@ -261,7 +261,7 @@ class SimulatedBench:
         return SupplyOutput(s.voltage - current * truth.output_resistance, current, False)
 
     def output_current(self) -> float:
-        return self.device.board_load_current + self.load.drawn  # type: ignore[attr-defined]
+        return self.device.board_load_current + self.load.drawn
 
     def physics(self) -> PointPhysics:
         """The physics at the present instrument settings (cached until one changes)."""

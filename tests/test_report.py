@@ -188,14 +188,14 @@ def test_csv_of_several_files_and_new_columns(
 # -- PDF and PNG ------------------------------------------------------------------------------
 def test_pdf_pages(demo_file: Path, edge_files: dict[str, Path], tmp_path: Path) -> None:
     """Summary+rejection, phase, points (16 rows fit one page), conditions, flags+safety: 5;
-    two files add one points page and one conditions page each: 7."""
+    two files add one points page and one conditions page each, and their differences: 8."""
     one = write_report([demo_file], "pdf", tmp_path / "one.pdf")[0].read_bytes()
     assert one.startswith(b"%PDF-")
     assert len(PDF_PAGE.findall(one)) == 5
     two = write_report([demo_file, edge_files["bounds"]], "pdf", tmp_path / "two.pdf")[
         0
     ].read_bytes()
-    assert two.startswith(b"%PDF-") and len(PDF_PAGE.findall(two)) == 7
+    assert two.startswith(b"%PDF-") and len(PDF_PAGE.findall(two)) == 8
 
 
 def test_png_is_the_stacked_plots(

@@ -174,27 +174,28 @@ def proxy(served: Served) -> Iterator[OutageProxy]:
 
 
 def _start(served: Served, bench: Path, out: Path) -> tuple[subprocess.Popen[bytes], Path]:
+    """`benchseq run --json`: stdout (the outcome alone) to OUT.stdout, stderr (the run's
+    lines, warnings, the alarm) to OUT.stderr."""
     text = out.with_suffix(".stdout")
-    with open(text, "wb") as sink:
+    with open(text, "wb") as sink, open(text.with_suffix(".stderr"), "wb") as err:
         proc = subprocess.Popen(
             [sys.executable, "-m", "benchseq", "run", str(_plan_file(served.folder)),
              "--bench", str(bench), "--out", str(out), "--json"],
-            stdout=sink, stderr=subprocess.STDOUT, cwd=served.folder,
+            stdout=sink, stderr=err, cwd=served.folder,
             env={**os.environ, "COLUMNS": "200"},
         )  # fmt: skip
     return proc, text
 
 
 def _finish(proc: subprocess.Popen[bytes], text: Path) -> tuple[str, dict[str, Any]]:
+    """What the run wrote to stderr, and its outcome: stdout parsed whole as JSON."""
     try:
         proc.wait(timeout=RUN_LIMIT_S)
     finally:
         _end(proc)
-    output = text.read_text(encoding="utf-8")
+    output = text.with_suffix(".stderr").read_text(encoding="utf-8")
     assert "Traceback" not in output, output
-    start = output.rindex('{\n  "status"')
-    end = output.index("\n}\n", start) + 2
-    return output, json.loads(output[start:end])
+    return output, json.loads(text.read_text(encoding="utf-8"))
 
 
 def _points_in_journal(out: Path) -> int:

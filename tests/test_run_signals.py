@@ -160,20 +160,24 @@ def _start(served: Served, out: Path, resume: bool = False) -> tuple[subprocess.
     else:
         argv = [str(plan), "--bench", str(served.bench), "--out", str(out)]
     text = out.with_name(out.stem + ("-resume" if resume else "") + ".stdout")
-    with open(text, "wb") as sink:
+    with open(text, "wb") as sink, open(text.with_suffix(".stderr"), "wb") as err:
         proc = subprocess.Popen(
             [sys.executable, "-m", "benchseq", "run", *argv, "--json"],
-            stdout=sink, stderr=subprocess.STDOUT, cwd=served.folder,
+            stdout=sink, stderr=err, cwd=served.folder,
             env={**os.environ, "COLUMNS": "200"},
         )  # fmt: skip
     return proc, text
 
 
+def _errors(text: Path) -> str:
+    return text.with_suffix(".stderr").read_text(encoding="utf-8")
+
+
 def _outcome(text: Path) -> dict[str, Any]:
-    output = text.read_text(encoding="utf-8")
-    assert "Traceback" not in output, output
-    start = output.rindex('{\n  "status"')
-    return json.loads(output[start:])
+    """The run's outcome: its whole stdout parsed as JSON (the rest went to stderr)."""
+    errors = _errors(text)
+    assert "Traceback" not in errors, errors
+    return json.loads(text.read_text(encoding="utf-8"))
 
 
 def _wait_for_points(proc: subprocess.Popen[bytes], out: Path, count: int) -> int:
@@ -235,7 +239,7 @@ def _resume_completes(served: Served, out: Path, stored: list[int]) -> None:
         proc.wait(timeout=RUN_LIMIT_S)
     finally:
         _end(proc)
-    assert proc.returncode == 0, text.read_text(encoding="utf-8")
+    assert proc.returncode == 0, _errors(text)
     assert _outcome(text)["status"] == "complete"
     final = read_results(out).set_index("point_id").sort_index()
     assert list(final.index) == list(range(POINTS))  # each point once
@@ -256,7 +260,7 @@ def test_a_stop_signal_finishes_the_point_then_goes_to_the_safe_state(
         proc.wait(timeout=RUN_LIMIT_S)
     finally:
         _end(proc)
-    assert proc.returncode == 1, text.read_text(encoding="utf-8")  # stopped early: not 0
+    assert proc.returncode == 1, _errors(text)  # stopped early: not 0
     outcome = _outcome(text)
     assert outcome["status"] == "stopped" and outcome["reason"] == f"{sig.name} received"
     meta = read_meta(out)
@@ -287,7 +291,7 @@ def test_a_second_ctrl_c_abandons_the_point_but_still_reaches_the_safe_state(
         took = time.monotonic() - second
     finally:
         _end(proc)
-    assert proc.returncode == 1, text.read_text(encoding="utf-8")  # stopped early: not 0
+    assert proc.returncode == 1, _errors(text)  # stopped early: not 0
     outcome = _outcome(text)
     assert outcome["status"] == "stopped" and "abandoned" in outcome["reason"]
     assert "second stop request (SIGINT)" in outcome["reason"]

@@ -36,12 +36,17 @@ DEFAULT_FREQUENCY_TOLERANCE = 1e-3  # relative: a coherent move of at most 0.1 %
 
 
 class ScopeLimits(Protocol):
-    """What the planner needs to know of a scope (ScopeCapabilities has these)."""
+    """What the planner needs to know of a scope (ScopeCapabilities has these); read-only, so
+    frozen dataclasses satisfy it."""
 
-    sample_intervals: Sequence[float]
-    record_lengths: Sequence[int]
-    max_averages: int
-    rearm_time: float
+    @property
+    def sample_intervals(self) -> Sequence[float]: ...
+    @property
+    def record_lengths(self) -> Sequence[int]: ...
+    @property
+    def max_averages(self) -> int: ...
+    @property
+    def rearm_time(self) -> float: ...
 
 
 @dataclass(frozen=True)

@@ -13,10 +13,14 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from benchseq.errors import BadInput
+
+if TYPE_CHECKING:
+    from benchseq.report.model import Curve, Report
 
 
 @dataclass(frozen=True)
@@ -50,7 +54,7 @@ def _median(values: np.ndarray, fallback: float) -> float:
 
 
 def predict(
-    report: object, netlist: str | Path, subcircuit: str, board_load: float = 0.0
+    report: Report, netlist: str | Path, subcircuit: str, board_load: float = 0.0
 ) -> ModelOverlay:
     """The overlay for ``report`` (a benchseq.report.model.Report). BadInput for a netlist
     that cannot be used or ngspice missing; MeasurementFailure for an operating point
@@ -65,7 +69,7 @@ def predict(
     solver = NetlistSolver(spec)
     solver.check()
     predictions: dict[int, CurvePrediction] = {}
-    for curve in report.curves:  # type: ignore[attr-defined]
+    for curve in report.curves:
         frame = curve.frame
         if not len(frame):
             continue
@@ -81,11 +85,11 @@ def predict(
     return ModelOverlay(Path(netlist), subcircuit, spec.sha256, board_load, predictions)
 
 
-def differences(overlay: ModelOverlay, curve: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def differences(overlay: ModelOverlay, curve: Curve) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(measured − predicted of values, their standard uncertainty, bound − predicted of
     bounds) at a curve's points; NaN where the other kind is."""
-    frame = curve.frame  # type: ignore[attr-defined]
-    predicted = overlay.predictions[curve.index].rejection_db  # type: ignore[attr-defined]
+    frame = curve.frame
+    predicted = overlay.predictions[curve.index].rejection_db
     bound = frame["is_bound"].to_numpy(dtype=bool)
     value = frame["rejection_db"].to_numpy(dtype=float)
     u = frame["uncertainty_db"].to_numpy(dtype=float)

@@ -258,19 +258,20 @@ def _match_text(meta: dict[str, Any]) -> str:
 
     scope = meta.get("scope_setup")
     scope = scope if isinstance(scope, dict) else {}
-    pin = scope.get("pin") if isinstance(scope.get("pin"), dict) else {}
-    out = scope.get("output") if isinstance(scope.get("output"), dict) else {}
+    pin = scope["pin"] if isinstance(scope.get("pin"), dict) else {}
+    out = scope["output"] if isinstance(scope.get("output"), dict) else {}
     gain, a_pin, a_out = (
         scope.get("gain_accuracy"),
         pin.get("probe_accuracy"),
         out.get("probe_accuracy"),
     )
-    if not all(isinstance(v, int | float) for v in (gain, a_pin, a_out)):
+    numbers = [float(v) for v in (gain, a_pin, a_out) if isinstance(v, int | float)]
+    if len(numbers) < 3:
         return (
             "channel tolerances not recorded with this run (recorded by later versions); "
             "its uncertainties leave the channel match out"
         )
-    u = ChannelTolerances(float(gain), float(gain), float(a_pin), float(a_out)).uncertainty
+    u = ChannelTolerances(numbers[0], numbers[0], numbers[1], numbers[2]).uncertainty
     return (
         f"without a calibration: each channel's vertical gain {_percent(gain)}, pin probe "
         f"{_percent(a_pin)}, output probe {_percent(a_out)} (bench file), each rectangular, "

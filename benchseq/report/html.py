@@ -44,6 +44,8 @@ figure.plot { margin: 1rem 0 1.5rem; }
 figure.plot svg { width: 100%; height: auto; display: block; }
 figcaption { color: var(--muted); font-size: .9rem; margin-top: .3rem; }
 .scroll { overflow-x: auto; }
+table.differences { border-collapse: collapse; font-size: .85rem; }
+table.differences th, table.differences td { border-bottom: 1px solid var(--rule); padding: .2rem .45rem; }
 table.points { border-collapse: collapse; font-size: .85rem; width: 100%; }
 table.points th, table.points td { border-bottom: 1px solid var(--rule); padding: .2rem .45rem;
                                    text-align: right; white-space: nowrap; }
@@ -141,6 +143,34 @@ def _flags(report: Report) -> str:
     return f'<dl class="facts flags">{items}</dl>'
 
 
+def _differences(report: Report) -> list[str]:
+    """Per other run: the comparison's summary and its (summarised) table."""
+    from benchseq.compare import TABLE_HEADERS, pick, report_comparisons, table_cells
+
+    parts = []
+    for comparison in report_comparisons(report):
+        lines = comparison.summary()
+        parts.append(f"<h3>{_text(lines[0])}</h3>")
+        parts += [f"<p>{_text(line)}</p>" for line in lines[1:]]
+        rows = pick(comparison.rows)
+        if len(rows) < len(comparison.rows):
+            parts.append(
+                f"<p>{len(rows)} of {len(comparison.rows)} rows: significant, undetermined and "
+                "unpartnered first, then the largest |d|/u_c (every row: benchseq compare "
+                "--all or --json).</p>"
+            )
+        head = "".join(f"<th>{_text(h)}</th>" for h in TABLE_HEADERS)
+        body = "".join(
+            "<tr>" + "".join(f"<td>{_text(c)}</td>" for c in cells) + "</tr>"
+            for cells in table_cells(rows)
+        )
+        parts.append(
+            f'<div class="scroll"><table class="differences"><thead><tr>{head}</tr></thead>'
+            f"<tbody>{body}</tbody></table></div>"
+        )
+    return parts
+
+
 def render_html(report: Report, figures: list[tuple[str, str]]) -> str:
     """The whole document; ``figures`` are (name, <svg> text) from plots.svg_text."""
     first = report.sources[0]
@@ -168,6 +198,11 @@ def render_html(report: Report, figures: list[tuple[str, str]]) -> str:
             f'<figure class="plot" id="plot-{_text(name)}">{svg}'
             f"<figcaption>{_text(PLOT_CAPTIONS.get(name, ''))}</figcaption></figure>"
         )
+    if report.overlay:
+        parts.append(
+            '</section><section id="differences"><h2>Differences against the first run</h2>'
+        )
+        parts += _differences(report)
     parts.append('</section><section id="points"><h2>Points</h2>')
     parts += [_points(s) for s in report.sources]
     parts.append('</section><section id="conditions"><h2>Conditions</h2>')

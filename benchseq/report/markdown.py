@@ -63,6 +63,22 @@ def render_markdown(report: Report, images: list[tuple[str, str]]) -> str:
             f"*{md_escape(PLOT_CAPTIONS.get(name, ''))}*",
             "",
         ]
+    if report.overlay:
+        from benchseq.compare import TABLE_HEADERS, pick, report_comparisons, table_cells
+
+        lines += ["## Differences against the first run", ""]
+        for comparison in report_comparisons(report):
+            summary = comparison.summary()
+            lines += [f"### {md_escape(summary[0])}", ""]
+            lines += [f"- {md_escape(line)}" for line in summary[1:]] + [""]
+            rows = pick(comparison.rows)
+            if len(rows) < len(comparison.rows):
+                lines += [
+                    f"{len(rows)} of {len(comparison.rows)} rows: significant, undetermined and "
+                    "unpartnered first (every row: benchseq compare --all or --json).",
+                    "",
+                ]
+            lines += [*_table(list(TABLE_HEADERS), table_cells(rows)), ""]
     lines += ["## Points", ""]
     for source in report.sources:
         headers, rows = point_table(source)

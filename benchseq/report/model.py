@@ -437,6 +437,14 @@ PLOT_CAPTIONS: dict[str, str] = {
         "Phase of the ratio V_out/V_pin in degrees, unwrapped along each curve; lower bounds "
         "have no phase (the output was not detected)."
     ),
+    "differences": (
+        "Top: both runs' rejection per operating point (reference solid, other dashed). "
+        "Bottom: the difference other − reference in dB with the band d ± U, "
+        f"U = {COVERAGE_FACTOR:g}·u_c, u_c = √(u_ref² + u_other²) (uncorrelated); circled "
+        "points differ significantly (|d| > U). Where the frequencies differ the other run is "
+        "interpolated over log frequency; a difference involving a lower bound is itself only "
+        "a bound (triangles)."
+    ),
     "floor": (
         "Measured output ripple against the generator-off floor at the same frequency "
         "(peak volts): where they meet, the rejection reading is floor-limited."

@@ -109,10 +109,37 @@ def _summary_page(report: Report) -> Any:
     bottom = 0.1
     height = max(0.25, y - 0.03 - bottom)
     ax = fig.add_axes((0.1, bottom, 0.84, height))
-    draw_rejection(ax, report)
+    if _many(report):  # small multiples on their own pages
+        ax.set_axis_off()
+        ax.text(0.5, 0.5, plot_text(f"{len(report.curves)} curves: the rejection and phase plots "
+                "follow as small multiples, one panel per operating point or DC level"),
+                ha="center", va="center", fontsize=9, wrap=True)  # fmt: skip
+    else:
+        draw_rejection(ax, report)
     caption = textwrap.fill(PLOT_CAPTIONS["rejection"], 120)
     fig.text(0.06, 0.055, caption, fontsize=6.5, color="#555555", va="top")
     return fig
+
+
+def _many(report: Report) -> bool:
+    from benchseq.report.plots import MAX_CURVES_IN_ONE
+
+    return len(report.curves) > MAX_CURVES_IN_ONE
+
+
+def _plot_pages(report: Report) -> list[Any]:
+    """The phase (and floor) page; with many curves the small multiples instead (the floor
+    page kept); with several runs their differences."""
+    from benchseq.report.plots import phase_figure, rejection_figure
+
+    pages = [rejection_figure(report)[0], phase_figure(report)] if _many(report) else []
+    if not _many(report) or report.has_floor():
+        pages.append(_plot_page(report))
+    if report.overlay:
+        from benchseq.compare import comparison_figure, report_comparisons
+
+        pages += [comparison_figure(c) for c in report_comparisons(report)]
+    return pages
 
 
 def _plot_page(report: Report) -> Any:
@@ -202,7 +229,7 @@ def write_pdf(report: Report, out: Path) -> list[Path]:
 
     from benchseq.report.output import write_atomic
 
-    figures = [_summary_page(report), _plot_page(report)]
+    figures = [_summary_page(report), *_plot_pages(report)]
     for source in report.sources:
         figures += _table_pages(source)
     for source in report.sources:
@@ -220,5 +247,23 @@ def write_pdf(report: Report, out: Path) -> list[Path]:
 def write_png(report: Report, out: Path) -> list[Path]:
     from benchseq.report.output import write_atomic
 
-    write_atomic(out, png_bytes(stacked_figure(report)))
+    if not _many(report):
+        write_atomic(out, png_bytes(stacked_figure(report)))
+        return [out]
+    # small multiples: each figure drawn at its own size, stacked into one image
+    import io
+
+    import numpy as np
+    from matplotlib.image import imread, imsave
+
+    from benchseq.report.plots import report_figures
+
+    images = [imread(io.BytesIO(png_bytes(fig))) for _, fig in report_figures(report)]
+    width = max(image.shape[1] for image in images)
+    padded = [np.pad(image, ((0, 0), (0, width - image.shape[1]), (0, 0)), constant_values=1.0)
+              for image in images]  # fmt: skip
+    buffer = io.BytesIO()
+    no_software: dict[str, Any] = {"Software": None}  # None leaves the tag out
+    imsave(buffer, np.vstack(padded), format="png", metadata=no_software)
+    write_atomic(out, buffer.getvalue())
     return [out]

@@ -29,7 +29,7 @@ PALETTE = (
     "#a23b3b",  # brick
     "#555a66",  # slate
 )
-LINESTYLES = ("-", "--", "-.", ":")
+LINESTYLES: tuple[Any, ...] = ("-", "--", "-.", ":")  # matplotlib dash names
 MASK_COLOUR = "#3a3a3a"
 BOUND_GID = "bound-markers"
 VALUE_GID = "rejection-values"
@@ -78,8 +78,9 @@ def quiet_fonts() -> Iterator[None]:
         yield
 
 
-def _style(curve: Curve) -> tuple[str, str]:
-    return PALETTE[curve.index % len(PALETTE)], LINESTYLES[curve.source_index % len(LINESTYLES)]
+def _style(curve: Curve, colours: dict[int, str] | None = None) -> tuple[str, str]:
+    colour = (colours or {}).get(curve.index, PALETTE[curve.index % len(PALETTE)])
+    return colour, LINESTYLES[curve.source_index % len(LINESTYLES)]
 
 
 def _column(curve: Curve, name: str) -> np.ndarray:
@@ -139,8 +140,17 @@ class RejectionArtists:
     verdicts: list[str] = field(default_factory=list)  # one line per source
 
 
-def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
-    """Rejection (dB) over log frequency: values with ±k·u bars, bounds, masks, verdicts."""
+def draw_rejection(
+    ax: Any,
+    report: Report,
+    curves: list[Curve] | None = None,
+    panel: bool = False,
+    colours: dict[int, str] | None = None,
+) -> RejectionArtists:
+    """Rejection (dB) over log frequency: values with ±k·u bars, bounds, masks, verdicts.
+
+    ``curves``: draw only these (a panel of small multiples); ``panel``: no legend and no
+    verdict title (the figure carries them once)."""
     from matplotlib.lines import Line2D
 
     drawn = RejectionArtists()
@@ -149,8 +159,8 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
     glyph = bound_marker()
     handles: list[Any] = []
     if not _empty(ax, report):
-        for curve in report.curves:
-            colour, line = _style(curve)
+        for curve in report.curves if curves is None else curves:
+            colour, line = _style(curve, colours)
             f = _column(curve, "frequency").astype(float)
             bound = _column(curve, "is_bound").astype(bool)
             values = np.where(bound, np.nan, _column(curve, "rejection_db").astype(float))
@@ -173,7 +183,7 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
                 )  # fmt: skip
                 marks.set_gid(f"{BOUND_GID}-{curve.index}")
                 drawn.bounds.append(marks)
-    handles += _draw_model(ax, report)
+    handles += _draw_model(ax, report, curves, colours)
     seen: set[tuple[Any, ...]] = set()
     for source in report.sources:
         mask = source.mask
@@ -203,6 +213,8 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
                    markeredgecolor="#444444", markeredgewidth=1.5,
                    label="lower bound (true rejection at or above)")
         )  # fmt: skip
+    if panel:
+        return drawn
     if handles:
         handles.append(Line2D([], [], linestyle="none", label=f"bars: ±U, k = {COVERAGE_FACTOR:g}"))
         ax.legend(handles=handles, loc="best", fontsize="x-small", framealpha=0.85)
@@ -220,17 +232,22 @@ def draw_rejection(ax: Any, report: Report) -> RejectionArtists:
 MODEL_GID = "model-curve"
 
 
-def _draw_model(ax: Any, report: Report) -> list[Any]:
+def _draw_model(
+    ax: Any,
+    report: Report,
+    curves: list[Curve] | None = None,
+    colours: dict[int, str] | None = None,
+) -> list[Any]:
     """A circuit model's predicted rejection, one dashed line per curve (when present)."""
     overlay = report.model
     if overlay is None:
         return []
     lines = []
-    for curve in report.curves:
+    for curve in report.curves if curves is None else curves:
         prediction = overlay.predictions.get(curve.index)
         if prediction is None:
             continue
-        colour, _ = _style(curve)
+        colour, _ = _style(curve, colours)
         (line,) = ax.plot(
             _column(curve, "frequency").astype(float), prediction.rejection_db, color=colour,
             linestyle=(0, (4, 2)), linewidth=1.1, alpha=0.8,
@@ -284,7 +301,13 @@ def model_difference_figure(report: Report) -> Any:
     return fig
 
 
-def draw_phase(ax: Any, report: Report) -> list[Any]:
+def draw_phase(
+    ax: Any,
+    report: Report,
+    curves: list[Curve] | None = None,
+    panel: bool = False,
+    colours: dict[int, str] | None = None,
+) -> list[Any]:
     """Phase of V_out/V_pin (degrees, unwrapped along each curve); bounds have no phase."""
     _frequency_axis(ax)
     ax.set_ylabel("phase of V_out/V_pin [°]")
@@ -292,8 +315,8 @@ def draw_phase(ax: Any, report: Report) -> list[Any]:
     if _empty(ax, report):
         _settle_limits(ax)
         return lines
-    for curve in report.curves:
-        colour, line = _style(curve)
+    for curve in report.curves if curves is None else curves:
+        colour, line = _style(curve, colours)
         f = _column(curve, "frequency").astype(float)
         bound = _column(curve, "is_bound").astype(bool)
         ratio = _column(curve, "ratio")
@@ -310,7 +333,8 @@ def draw_phase(ax: Any, report: Report) -> list[Any]:
         )  # fmt: skip
         lines.append(drawn)
     _settle_limits(ax)
-    ax.legend(loc="best", fontsize="x-small", framealpha=0.85)
+    if not panel:
+        ax.legend(loc="best", fontsize="x-small", framealpha=0.85)
     return lines
 
 
@@ -373,14 +397,175 @@ def _title_inches(report: Report) -> float:
 
 
 def rejection_figure(report: Report) -> tuple[Any, RejectionArtists]:
+    """One plot, or small multiples (one panel per operating point, shared axes) when the
+    report has more than MAX_CURVES_IN_ONE curves."""
+    if len(report.curves) > MAX_CURVES_IN_ONE:
+        return _rejection_panels(report)
     fig = _figure(FIGURE_SIZE[1], _title_inches(report))
     return fig, draw_rejection(fig.add_subplot(), report)
 
 
 def phase_figure(report: Report) -> Any:
+    if len(report.curves) > MAX_CURVES_IN_ONE:
+        return _phase_panels(report)
     fig = _figure(3.6, 0.15)
     draw_phase(fig.add_subplot(), report)
     return fig
+
+
+# -- small multiples -------------------------------------------------------------------------
+MAX_CURVES_IN_ONE = 4  # more curves than this: one panel per operating point
+MAX_PANELS = 16  # more operating points than this: one panel per DC level
+PANEL_COLUMNS = 4
+PANEL_SIZE = (2.6, 2.0)  # inches per panel
+
+
+def panel_groups(report: Report) -> tuple[list[tuple[str, list[Curve]]], dict[int, str], list[Any]]:
+    """(panel title, curves) per panel, a colour per curve and the colour key's legend
+    handles. One panel per operating point (the same operating point of several runs
+    shares its panel; colour per run), or per DC level when that gives more than
+    MAX_PANELS panels (colour per load and ripple, the same in every panel)."""
+    from matplotlib.lines import Line2D
+
+    from benchseq.units import format_si
+
+    def by(key: Any) -> list[tuple[str, list[Curve]]]:
+        groups: dict[str, list[Curve]] = {}
+        for curve in report.curves:
+            groups.setdefault(key(curve), []).append(curve)
+        return list(groups.items())
+
+    groups = by(lambda c: c.operating_point.label())
+    if len(groups) <= MAX_PANELS:
+        colours = {c.index: PALETTE[c.source_index % len(PALETTE)] for c in report.curves}
+        return groups, colours, []
+    groups = by(lambda c: format_si(c.operating_point.dc_level, "V", 4) + " DC")
+    keys: dict[str, str] = {}
+    colours = {}
+    for curve in report.curves:
+        label = curve.operating_point.label().split(", ", 1)[-1]
+        if curve.repeats:
+            label = "repeat at " + label
+        colour = keys.setdefault(label, PALETTE[len(keys) % len(PALETTE)])
+        colours[curve.index] = colour
+    handles = [Line2D([], [], color=c, linewidth=2, label=plot_text(k)) for k, c in keys.items()]
+    if len(keys) > len(PALETTE):
+        handles = handles[: len(PALETTE)]
+        handles.append(
+            Line2D([], [], linestyle="none", label=f"{len(keys)} kinds of curve: colours repeat")
+        )
+    return groups, colours, handles
+
+
+def _panel_grid(
+    report: Report, groups: list[tuple[str, list[Curve]]], top_in: float, legend_items: int
+) -> Any:
+    from matplotlib.figure import Figure
+
+    cols = min(PANEL_COLUMNS, len(groups))
+    rows = -(-len(groups) // cols)
+    legend_in = 0.3 + 0.17 * -(-(min(len(report.sources), 6) + legend_items) // 2)
+    width = 0.9 + cols * PANEL_SIZE[0]
+    height = top_in + rows * PANEL_SIZE[1] + 0.5 + legend_in
+    fig = Figure(figsize=(width, height))
+    fig.subplots_adjust(
+        left=0.75 / width, right=1 - 0.15 / width, top=1 - top_in / height,
+        bottom=(0.45 + legend_in) / height, hspace=0.32, wspace=0.08,
+    )  # fmt: skip
+    axes = fig.subplots(rows, cols, sharex=True, sharey=True, squeeze=False)
+    for ax in axes.flat[len(groups) :]:
+        ax.set_visible(False)
+    return fig, axes, legend_in
+
+
+def _panel_labels(axes: Any, used: int) -> None:
+    """Axis labels once per row and column; tick labels under every bottom-most panel."""
+    cols = axes.shape[1]
+    for i, ax in enumerate(axes.flat[:used]):
+        if i % cols:
+            ax.set_ylabel("")
+        if i + cols < used:
+            ax.set_xlabel("")
+        else:
+            ax.xaxis.set_tick_params(labelbottom=True)
+
+
+def _panel_legend(fig: Any, report: Report, legend_in: float, extra: list[Any]) -> None:
+    """The legend below the panels, outside the data: line style per run, glyphs, mask."""
+    from matplotlib.lines import Line2D
+
+    handles = [
+        Line2D([], [], color=PALETTE[s.index % len(PALETTE)] if report.overlay else "#444444",
+               linestyle=LINESTYLES[s.index % len(LINESTYLES)], marker="o", markersize=3.6,
+               label=plot_text(s.label if report.overlay else "measured"))
+        for s in report.sources[:6]
+    ]  # fmt: skip
+    handles += extra
+    fig.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.02, 0.01), ncols=2,
+               fontsize="x-small", frameon=False)  # fmt: skip
+
+
+def _rejection_panels(report: Report) -> tuple[Any, RejectionArtists]:
+    from matplotlib.lines import Line2D
+
+    groups, colours, keys = panel_groups(report)
+    verdicts = []
+    for source in report.sources:
+        prefix = f"{source.label}: " if report.overlay else ""
+        partial = " [partial run]" if source.partial else ""
+        short = source.verdict.short()
+        if source.mask is None and source.plan_problem:
+            short += " (stored plan unreadable)"
+        verdicts.append(plot_text(f"{prefix}{short}{partial}"))
+    count = drawn_count_text(report, len(groups))
+    top_in = 0.3 + 0.19 * (len(verdicts) + 1)
+    fig, axes, legend_in = _panel_grid(report, groups, top_in, len(keys) + 3)
+    drawn = RejectionArtists(verdicts=verdicts)
+    for ax, (title, curves) in zip(axes.flat, groups, strict=False):
+        part = draw_rejection(ax, report, curves, panel=True, colours=colours)
+        drawn.values += part.values
+        drawn.bounds += part.bounds
+        drawn.masks += part.masks[:1] if not drawn.masks else []
+        ax.set_title(plot_text(title), fontsize="x-small", loc="left")
+        ax.tick_params(labelsize="x-small")
+    _panel_labels(axes, len(groups))
+    extra = [
+        *keys,
+        Line2D([], [], linestyle="none", marker=bound_marker(), markersize=12,
+               markerfacecolor="none", markeredgecolor="#444444",
+               label="lower bound (true rejection at or above)"),
+        Line2D([], [], linestyle="none", label=f"bars: ±U, k = {COVERAGE_FACTOR:g}"),
+    ]  # fmt: skip
+    if drawn.masks:
+        extra.append(Line2D([], [], color=MASK_COLOUR, linewidth=2.0, linestyle=(0, (6, 2, 1, 2)),
+                            label="mask (shaded: fails)"))  # fmt: skip
+    _panel_legend(fig, report, legend_in, extra)
+    fig.suptitle("\n".join([*verdicts, count]), fontsize="small", x=0.75 / fig.get_figwidth(),
+                 ha="left", y=1 - 0.12 / fig.get_figheight(), va="top")  # fmt: skip
+    return fig, drawn
+
+
+def _phase_panels(report: Report) -> Any:
+    groups, colours, keys = panel_groups(report)
+    fig, axes, legend_in = _panel_grid(report, groups, 0.5, len(keys))
+    for ax, (title, curves) in zip(axes.flat, groups, strict=False):
+        draw_phase(ax, report, curves, panel=True, colours=colours)
+        ax.set_title(plot_text(title), fontsize="x-small", loc="left")
+        ax.tick_params(labelsize="x-small")
+    _panel_labels(axes, len(groups))
+    _panel_legend(fig, report, legend_in, keys)
+    fig.suptitle(drawn_count_text(report, len(groups)), fontsize="small",
+                 x=0.75 / fig.get_figwidth(), ha="left", y=1 - 0.12 / fig.get_figheight(),
+                 va="top")  # fmt: skip
+    return fig
+
+
+def drawn_count_text(report: Report, panels: int) -> str:
+    """'20 curves drawn in 20 panels (one per operating point)'."""
+    per = "operating point"
+    if panels and panels < len({c.operating_point.label() for c in report.curves}):
+        per = "DC level"
+    return f"{len(report.curves)} curves drawn in {panels} panels (one per {per}; shared axes)"
 
 
 def floor_figure(report: Report) -> Any | None:
@@ -400,6 +585,13 @@ def report_figures(report: Report) -> list[tuple[str, Any]]:
     floor = floor_figure(report)
     if floor is not None:
         figures.append(("floor", floor))
+    if report.overlay:
+        from benchseq.compare import comparison_figure, report_comparisons
+
+        for n, comparison in enumerate(report_comparisons(report)):
+            figures.append(
+                (f"differences {n + 1}" if n else "differences", comparison_figure(comparison))
+            )
     return figures
 
 

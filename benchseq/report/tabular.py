@@ -119,7 +119,7 @@ def write_csv(report: Report, out: Path) -> list[Path]:
 def _known_kinds() -> dict[str, str]:
     from benchseq.records import POINT_COLUMNS
 
-    kinds = {c.name: c.kind for c in POINT_COLUMNS}
+    kinds: dict[str, str] = {c.name: c.kind for c in POINT_COLUMNS}
     kinds.update({name: kind for name, kind, _ in VERDICT_COLUMNS})
     kinds[SOURCE_COLUMN] = "str"
     return kinds

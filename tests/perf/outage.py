@@ -130,11 +130,11 @@ def one_run(
     mark = len(read_state_log(log))
     out = folder / f"{tag}.h5"
     text = folder / f"{tag}.stdout"
-    with open(text, "wb") as sink:
+    with open(text, "wb") as sink, open(text.with_suffix(".stderr"), "wb") as err:
         proc = subprocess.Popen(
             [sys.executable, "-m", "benchseq", "run", str(folder / "plan.toml"), "--bench",
              str(bench), "--out", str(out), "--json", "--force"],
-            stdout=sink, stderr=subprocess.STDOUT, cwd=folder,
+            stdout=sink, stderr=err, cwd=folder,
         )  # fmt: skip
     started = time.monotonic()
     fired = False
@@ -171,8 +171,7 @@ def one_run(
     )
     output = text.read_text(encoding="utf-8", errors="replace")
     try:
-        start = output.rindex('{\n  "status"')
-        outcome = json.loads(output[start : output.index("\n}\n", start) + 2])
+        outcome = json.loads(output)  # stdout is the outcome alone
     except ValueError:
         outcome = {"status": f"no outcome (exit {proc.returncode})", "measured": 0}
     energised = {role: ask(server.ports[role], q) == "1" for role, q in SWITCHES.items()}
