@@ -164,7 +164,7 @@ def read_state(path: Path) -> dict[str, Any]:
         if "point_id" in frame.columns
         else frame
     )
-    curves = []
+    curves: list[dict[str, Any]] = []
     for curve in _curves(0, sorted_frame, 0):
         rows = curve.frame
         curves.append(
@@ -665,7 +665,7 @@ class WatchServer(ThreadingHTTPServer):
 
     @property
     def url(self) -> str:
-        host, port = self.server_address[:2]
+        host, port = self.socket.getsockname()[:2]
         shown = f"[{host}]" if ":" in str(host) else str(host)
         return f"http://{shown}:{port}/"
 
