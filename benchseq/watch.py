@@ -373,7 +373,7 @@ def page_html(state: dict[str, Any]) -> str:
 <section id="plot-section">
 <h2>Rejection so far</h2>
 <div id="plot" role="img" aria-label="rejection in dB over log frequency"></div>
-<p class="note"><span id="coverage">{e(state["coverage"])}</span>; ▲ lower bound (output under
+<p class="note"><span id="coverage">{e(state["coverage"])}</span>; △ lower bound (output under
 the noise floor); dashed: the plan's mask; ringed: the latest point.</p>
 </section>
 <section id="latest-section">
