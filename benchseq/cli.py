@@ -711,6 +711,39 @@ def cmd_sim_serve(args: argparse.Namespace) -> int:
     )
 
 
+# -- watch: a read-only live page of a run (benchseq/watch.py) --------------------------
+def cmd_watch(args: argparse.Namespace) -> int:
+    from benchseq.watch import bind_warning, open_server
+
+    server = open_server(args.result, args.host, args.port)  # bad file: exit 2, nothing served
+    console = _console()
+    warning = bind_warning(args.host)
+    if warning:
+        console.print(f"[bold yellow]warning:[/] {_escape(warning)}")
+    console.print(f"watching {_escape(args.result)} (read-only) at [bold]{server.url}[/]")
+    console.print("Ctrl-C to stop.")
+    try:
+        server.serve_forever(poll_interval=0.5)
+    except KeyboardInterrupt:
+        console.print("stopped watching; the run and its file are untouched.")
+    finally:
+        server.server_close()
+    return EXIT_OK
+
+
+def _add_watch_parser(sub: Any) -> None:
+    p = sub.add_parser("watch", help="a read-only local web page following a run as it is stored")
+    p.add_argument("result", help="result file (.h5), in progress or finished")
+    p.add_argument(
+        "--host",
+        default="127.0.0.1",
+        help="address to serve on (default 127.0.0.1, this machine only; the page has no "
+        "authentication: from elsewhere prefer an SSH tunnel)",
+    )
+    p.add_argument("--port", type=int, default=0, help="TCP port (default 0: any free port)")
+    p.set_defaults(func=cmd_watch)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="benchseq",
@@ -883,6 +916,7 @@ def build_parser() -> argparse.ArgumentParser:
         "--log", metavar="FILE", help="append every instrument state change to FILE (JSON lines)"
     )
     q.set_defaults(func=cmd_sim_serve)
+    _add_watch_parser(sub)
     _verbosity_options(parser, sub)
     return parser
 

@@ -149,6 +149,10 @@ class Browser:
         """Navigate to a local file (file:// URL)."""
         self._call("POST", f"/session/{self.session}/url", {"url": path.resolve().as_uri()})
 
+    def open_url(self, url: str) -> None:
+        """Navigate to a URL (a test's own server on 127.0.0.1)."""
+        self._call("POST", f"/session/{self.session}/url", {"url": url})
+
     def run(self, script: str, *args: Any) -> Any:
         """Run a synchronous script in the page (``return`` gives its value)."""
         return self._call(
