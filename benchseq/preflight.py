@@ -64,17 +64,34 @@ def check_plan_on_bench(plan: Plan, bench: Bench) -> None:
 
 def check_waits(plan: Plan, bench: Bench) -> None:
     """No single wait of the run may exceed LONGEST_WAIT_S: the settling after each change
-    (settle.wait + settle.time_constants x the injector's slowest time constant), the bias
+    (benchseq.settling; for the "transient" rule its longest case, a change between the
+    generator's largest EMFs at the lowest planned frequency measured at the smallest
+    planned ripple; for "time-constants", settle.wait + settle.time_constants x the
+    injector's slowest time constant), the bias
     filter after a DC step (7 Rb·Cb, as the sequencer waits) and one DC ramp (from 0 V to the
     highest level at supply.ramp_rate). Each value may be in range while the product is not."""
     from benchseq.check import BIAS_SETTLE_TIME_CONSTANTS, injector_guard
     from benchseq.injector import InjectorModel
+    from benchseq.settling import Settling
 
     with injector_guard(bench):
-        corners = InjectorModel(bench.injector, bench.generator, bench.pin).corners()
+        model = InjectorModel(bench.injector, bench.generator, bench.pin)
+        corners = model.corners()
+        settling = Settling(plan.settle, model, plan.capture.target_uncertainty_db)
+        low = float(min(plan.frequencies))
+        emf = 0.5 * bench.generator.max_amplitude_pp * bench.generator.emf_per_displayed
+        smallest = min(r.peak for r in plan.ripples)
+        settle = float(settling.change(low, emf, low, emf, smallest))
     tau = corners.slowest_time_constant_s
-    settle = plan.settle.fixed_s + plan.settle.time_constants * tau
     longest = format_limit(LONGEST_WAIT_S, "s")
+    if settle > LONGEST_WAIT_S and plan.settle.rule == "transient":
+        raise FileKeyError(
+            bench.source,
+            "injector",
+            f"after a change of the generator at {format_si(low, 'Hz', 3)} the injector's "
+            f"transient would need {_duration(settle)} to fall under a tenth of the target "
+            f"uncertainty, more than {longest}; check the capacitor and resistor values",
+        )
     if settle > LONGEST_WAIT_S:
         raise FileKeyError(
             bench.source,
