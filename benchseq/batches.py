@@ -96,6 +96,7 @@ def predicted_plan(
         noise_sigma=noise.white_sigma,
         density_at_f=noise.coloured,
         pin_noise_sigma=noise.pin_sigma,
+        lean=True,  # at equal bench time, the fewest samples (analysis.capture)
     )
     whole = analysis.plan_capture(scope, frequency, pin, output, target_db, **kwargs)
     if whole.limited_by == "cycles":
