@@ -339,6 +339,8 @@ class Sequencer:
             pin.channel, pin_range, 0.0, pin.coupling, self.bench.scope.bandwidth_limit
         )
         self._ac_corner = coupling.corner_from_ratio(frequency, readings[0] / readings[1])
+        if self._ac_corner > 0:  # the pin reading rings through the coupling too
+            self.settling = self.settling.reading_through(self._ac_corner)
         self.writer.update_meta(scope_ac_corner_hz=self._ac_corner)
         self.emit(
             Event(

@@ -21,7 +21,9 @@ wait is the least t with
 
     Σ_i |c_i|·e^{Re(p_i)·t} ≤ RESIDUAL_FRACTION · u_rel · A_pin
 
-where A_pin is the pin ripple the point measures and u_rel = 10^{u/20} − 1 the point's target
+where A_pin is the pin ripple the point measures (as the pin channel reads it: through its
+AC coupling when the run has measured one, whose own mode then joins the injector's, the
+channel reading H_ac·s/(s + ω_c)) and u_rel = 10^{u/20} − 1 the point's target
 standard uncertainty u (dB, k = 1) in amplitude terms. RESIDUAL_FRACTION = 0.1: what is left
 of the transient then moves the pin amplitude by at most a tenth of the target uncertainty
 at the start of the capture (less on average over it, as the modes keep decaying); added in
@@ -64,10 +66,14 @@ class NaturalModes:
     residues: np.ndarray
 
     @classmethod
-    def of(cls, model: InjectorModel) -> NaturalModes:
+    def of(cls, model: InjectorModel, highpass_hz: float = 0.0) -> NaturalModes:
         """Partial fractions of H_ac = num/den: r_i = num(p_i)/den'(p_i) for each simple
-        root p_i of den (a direct term k makes no transient)."""
+        root p_i of den (a direct term k makes no transient). With ``highpass_hz``, of the
+        pin as an AC-coupled scope channel reads it: H_ac·s/(s + 2π·highpass_hz)."""
         num, den = model.transfer_polynomials()["ac"]
+        if highpass_hz > 0:
+            num = np.polymul(num, [1.0, 0.0])
+            den = np.polymul(den, [1.0, TWO_PI * highpass_hz])
         poles = np.roots(den)
         residues = np.polyval(num, poles) / np.polyval(np.polyder(den), poles)
         return cls(poles.astype(complex), residues.astype(complex))
@@ -118,14 +124,23 @@ class Settling:
     Amplitudes are EMF peaks (V) of the generator and pin ripple peaks (V); frequencies Hz.
     Every method is vectorised over its array arguments and returns seconds."""
 
-    def __init__(self, rule: Any, model: InjectorModel, target_db: float) -> None:
+    def __init__(
+        self, rule: Any, model: InjectorModel, target_db: float, highpass_hz: float = 0.0
+    ) -> None:
         self.rule = rule  # benchseq.plan.SettleRule (fixed_s, time_constants, rule)
         self.model = model
         self.target_db = float(target_db)
         corners = model.corners()
         self.slowest_s = corners.slowest_time_constant_s
         self.coupling_s = corners.coupling_time_constant_s
-        self.modes = NaturalModes.of(model)
+        # the pin channel's AC coupling (Hz; 0: none known): its own mode rings too, and the
+        # reading it leaves of the pin ripple is what the residual is judged against
+        self.highpass_hz = float(highpass_hz)
+        self.modes = NaturalModes.of(model, self.highpass_hz)
+
+    def reading_through(self, highpass_hz: float) -> Settling:
+        """The same rule for a pin read through an AC coupling of ``highpass_hz`` (Hz)."""
+        return Settling(self.rule, self.model, self.target_db, highpass_hz)
 
     @property
     def by_time_constants(self) -> bool:
@@ -135,6 +150,14 @@ class Settling:
         target = self.target_db if target_db is None else target_db
         wait = self.modes.time_to(size, allowed_residual(pin_peak, target))
         return np.maximum(wait, self.rule.fixed_s)
+
+    def _read(self, frequency: Any, pin_peak: Any) -> np.ndarray:
+        """The pin ripple as the channel reads it (through its AC coupling, if any)."""
+        pin = np.asarray(pin_peak, dtype=float)
+        if self.highpass_hz <= 0:
+            return pin
+        x = np.asarray(frequency, dtype=float) / self.highpass_hz
+        return pin * x / np.sqrt(1.0 + x * x)
 
     def change(
         self,
@@ -154,7 +177,7 @@ class Settling:
         size = size + np.abs(np.asarray(emf_old, dtype=float))[..., None] * self.modes.weights(
             f_old
         )
-        return self._transient(size, pin_peak, target_db)
+        return self._transient(size, self._read(f_new, pin_peak), target_db)
 
     def trim(self, frequency: Any, emf_old: Any, emf_new: Any, pin_peak: Any) -> np.ndarray:
         """After an amplitude change at one frequency, the generator's phase running on."""
@@ -162,7 +185,8 @@ class Settling:
             shape = np.broadcast(np.asarray(frequency), np.asarray(pin_peak)).shape
             return np.full(shape, self.rule.fixed_s + 3.0 * self.coupling_s)
         step = np.abs(np.asarray(emf_new, dtype=float) - np.asarray(emf_old, dtype=float))
-        return self._transient(step[..., None] * self.modes.weights(frequency), pin_peak, None)
+        size = step[..., None] * self.modes.weights(frequency)
+        return self._transient(size, self._read(frequency, pin_peak), None)
 
     def switch_off(self, frequency: Any, emf_old: Any, pin_peak: Any) -> np.ndarray:
         """After the generator goes off (before a floor capture): what is left of the switch
@@ -171,7 +195,7 @@ class Settling:
             shape = np.broadcast(np.asarray(frequency), np.asarray(pin_peak)).shape
             return np.full(shape, self.rule.fixed_s + 5.0 * self.slowest_s)
         size = np.abs(np.asarray(emf_old, dtype=float))[..., None] * self.modes.weights(frequency)
-        return self._transient(size, pin_peak, None)
+        return self._transient(size, self._read(frequency, pin_peak), None)
 
     def emf_for(self, frequency: Any, pin_peak: Any) -> np.ndarray:
         """The EMF peak (V) the model needs for ``pin_peak`` at ``frequency``."""

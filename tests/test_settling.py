@@ -31,10 +31,17 @@ def _model() -> InjectorModel:
     return InjectorModel(bench.injector, bench.generator, bench.pin)
 
 
-def _switch_on_transient(model: InjectorModel, f: float, emf: float, t: float) -> np.ndarray:
+def _switch_on_transient(
+    model: InjectorModel, f: float, emf: float, t: float, highpass_hz: float = 0.0
+) -> np.ndarray:
     """Pin transient at time t after EMF·cos(ωt + φ) is switched on from rest, for each φ
-    in PHASES: the free response C·e^{At}·(−x_periodic(0)) of scipy's state-space form."""
+    in PHASES: the free response C·e^{At}·(−x_periodic(0)) of scipy's state-space form.
+    With ``highpass_hz``, as read through a single-pole AC coupling s/(s + ω_c) (an RC
+    high-pass, common practice for a scope's AC coupling)."""
     num, den = model.transfer_polynomials()["ac"]
+    if highpass_hz:
+        num = np.convolve(num, [1.0, 0.0])
+        den = np.convolve(den, [1.0, 2 * math.pi * highpass_hz])
     a, b, c, _ = scipy.signal.tf2ss(num, den)
     w = 2 * math.pi * f
     periodic = np.linalg.solve(1j * w * np.eye(a.shape[0]) - a, b[:, 0])  # per unit phasor
@@ -53,20 +60,34 @@ def test_modes_are_the_partial_fractions_of_h() -> None:
     assert modes.residues[mine] == pytest.approx(residues[order], rel=1e-6)
 
 
+@pytest.mark.parametrize("highpass_hz", [0.0, 9.6])
 @pytest.mark.parametrize("f", [10.0, 100.0, 1e3, 10e3])
-def test_wait_is_where_the_worst_phase_falls_under_the_allowance(f: float) -> None:
+def test_wait_is_where_the_worst_phase_falls_under_the_allowance(
+    f: float, highpass_hz: float
+) -> None:
     """A switch-on (generator off before): at the wait the transient is under a tenth of
-    the target uncertainty of the pin ripple for every switching phase; a little earlier
-    some phase is still over it (the bound is tight, not padded)."""
+    the target uncertainty of the pin ripple (as the channel reads it) for every switching
+    phase; a little earlier some phase is still over it (the bound is tight, not padded)."""
     model = _model()
-    settling = Settling(SettleRule(), model, TARGET_DB)
+    settling = Settling(SettleRule(), model, TARGET_DB).reading_through(highpass_hz)
     pin = 0.05  # V peak at the pin
     emf = float(settling.emf_for(f, pin))
     wait = float(settling.change(f, 0.0, f, emf, pin))
-    allowed = 0.1 * (10 ** (TARGET_DB / 20) - 1) * pin
+    read = pin / math.sqrt(1 + (highpass_hz / f) ** 2)
+    allowed = 0.1 * (10 ** (TARGET_DB / 20) - 1) * read
     assert wait > 0
-    assert np.max(np.abs(_switch_on_transient(model, f, emf, wait))) <= allowed * (1 + 1e-6)
-    assert np.max(np.abs(_switch_on_transient(model, f, emf, 0.9 * wait))) > allowed
+    ringing = _switch_on_transient(model, f, emf, wait, highpass_hz)
+    assert np.max(np.abs(ringing)) <= allowed * (1 + 1e-6)
+    for later in (1.3, 2.0):  # and it stays under: the modes only decay from there
+        assert (
+            np.max(np.abs(_switch_on_transient(model, f, emf, later * wait, highpass_hz)))
+            <= allowed
+        )
+    if not highpass_hz:  # one slow mode: the bound is tight, not padded
+        earlier = _switch_on_transient(model, f, emf, 0.9 * wait)
+        assert np.max(np.abs(earlier)) > allowed
+    # through the coupling two slow modes of opposite residues partly cancel, which the
+    # bound (a sum of magnitudes) does not count on: it is safe there, up to ~3x long
 
 
 def test_waits_fall_with_frequency_and_with_a_smaller_step() -> None:
