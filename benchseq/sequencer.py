@@ -579,6 +579,7 @@ class Sequencer:
             rules.target_uncertainty_db,
             rules.min_cycles,
             rules.max_time_s,
+            lean=carry.noise is not None,  # fewest samples at equal bench time, noise known
         )
         # measured at the planned frequency; moved to a coherent J/T only within the plan's
         # tolerance and less than half-way to the nearest other planned frequency
