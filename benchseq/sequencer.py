@@ -454,7 +454,6 @@ class Sequencer:
                     recover = False
                     self._recover(f"point {int(self.sweep.index[i])}")
                     self._freq_now = None
-                    self._emf_now = None
                 simulator = getattr(self.session, "simulator", None)
                 if simulator is not None:
                     simulator.reseed(int(self.sweep.index[i]) * 16 + attempt)
@@ -508,6 +507,7 @@ class Sequencer:
         patience = self.bench.outage_patience
         started = clock.now()
         tries = 0
+        self._emf_now = None  # what the generator puts out is unknown until it is set again
         while True:
             try:
                 self.session.recover()
