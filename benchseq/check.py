@@ -37,7 +37,6 @@ if TYPE_CHECKING:
     from benchseq.plan import Plan
 
 SPOT_FREQUENCIES = (10.0, 100.0, 1e3, 10e3, 100e3, 1e6, 10e6)  # Hz
-BIAS_SETTLE_TIME_CONSTANTS = 7.0  # the sequencer waits 7 x Rb·Cb after moving the DC level
 LOW_PHASE_MARGIN_DEG = 45.0
 PEAKING_WARN_DB = 1.0
 WORST_LISTED = 10
@@ -250,12 +249,9 @@ def _time_budget(
         [[np.isfinite(load[0])] if n else [], load_key[1:] != load_key[:-1]]
     )
     ramp = float(np.sum(np.abs(dc - previous_dc))) / bench.supply.ramp_rate
-    bias_wait = (
-        BIAS_SETTLE_TIME_CONSTANTS
-        * bench.injector.bias_resistor
-        * bench.injector.bias_capacitor
-        * float(np.count_nonzero(dc_moves))
-    )
+    smallest = float(np.min(sweep.ripple_peak)) if n else 0.0
+    steps = (dc - previous_dc)[dc_moves]
+    bias_wait = float(np.sum(settling.dc_step(steps, smallest))) if steps.size else 0.0
     operating = plan.settle.operating_point_s * float(np.count_nonzero(dc_moves | load_moves))
     captures, method = capture_seconds(
         np.concatenate([sweep.frequency, repeats["frequency"]]), plan

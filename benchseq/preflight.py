@@ -67,10 +67,11 @@ def check_waits(plan: Plan, bench: Bench) -> None:
     (benchseq.settling; for the "transient" rule its longest case, a change between the
     generator's largest EMFs at the lowest planned frequency measured at the smallest
     planned ripple; for "time-constants", settle.wait + settle.time_constants x the
-    injector's slowest time constant), the bias
-    filter after a DC step (7 Rb·Cb, as the sequencer waits) and one DC ramp (from 0 V to the
+    injector's slowest time constant), the pin's DC
+    settling after the largest DC step (Settling.dc_step; 7 Rb·Cb under "time-constants") and
+    one DC ramp (from 0 V to the
     highest level at supply.ramp_rate). Each value may be in range while the product is not."""
-    from benchseq.check import BIAS_SETTLE_TIME_CONSTANTS, injector_guard
+    from benchseq.check import injector_guard
     from benchseq.injector import InjectorModel
     from benchseq.settling import Settling
 
@@ -101,7 +102,16 @@ def check_waits(plan: Plan, bench: Bench) -> None:
             f"point would wait {_duration(settle)}, more than {longest}; check the capacitor and "
             "resistor values (or lower settle.time_constants)",
         )
-    bias = BIAS_SETTLE_TIME_CONSTANTS * bench.injector.bias_resistor * bench.injector.bias_capacitor
+    with injector_guard(bench):
+        bias = float(settling.dc_step(float(max(plan.dc_levels)), smallest))
+    if bias > LONGEST_WAIT_S and plan.settle.rule == "transient":
+        raise FileKeyError(
+            bench.source,
+            "injector",
+            f"after the DC ramp to {format_si(float(max(plan.dc_levels)), 'V')} the pin's DC "
+            f"would need {_duration(bias)} to settle through the injector (bias filter Rb·Cb, "
+            f"coupling capacitor), more than {longest}; check the capacitor and resistor values",
+        )
     if bias > LONGEST_WAIT_S:
         raise FileKeyError(
             bench.source,

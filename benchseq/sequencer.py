@@ -386,11 +386,10 @@ class Sequencer:
             self._dc_now = start + (target - start) * k / steps
             s.clock.sleep(abs(target - start) / rate / steps)
         self._dc_now = target
-        # the bias filter follows with its own time constant
-        self._pause(
-            7.0 * self.bench.injector.bias_resistor * self.bench.injector.bias_capacitor,
-            "the DC ramp",
-        )
+        # the pin's DC follows through the bias filter and the injector's other modes
+        # (benchseq.settling), judged against the smallest planned ripple
+        smallest = float(np.min(self.sweep.ripple_peak))
+        self._pause(float(self.settling.dc_step(target - start, smallest)), "the DC ramp")
 
     def _stop_check(self, where: str) -> None:
         """A stop request while the bench is being powered up or moved to an operating

@@ -31,17 +31,19 @@ quadrature to u it raises u by at most 0.5 %, and even taken as a bias it is a t
 far inside the ±1.96u interval. The plan's ``settle.wait`` stays a minimum: the wait is
 max(settle.wait, transient time).
 
+After a step ΔV of the set-point supply the pin's DC moves through H_dc (the bias filter
+Rb·Cb, the coupling capacitor charging through Rg and Rf, the loop): the wait is the least t
+with Σ |r_i/p_i|·|ΔV|·e^{Re(p_i)·t} under the same allowance (the residues of H_dc(s)/s).
 The model knows the injector, not the device or the room: the wait after a DC level or load
-change (``settle.after_operating_point``: the device's own settling, heating) and the bias
-filter's 7·Rb·Cb after a DC step are not derived here and stay as the plan and the
-sequencer state them. The residual is judged at the pin: a device whose output follows a
+change for the device's own settling or heating (``settle.after_operating_point``) is not
+derived here and stays as the plan states it. The residual is judged at the pin: a device whose output follows a
 slow pin excursion much more than the test frequency (rejection falling steeply at the
 injector's slowest mode) needs a ``settle.wait`` of its own.
 
 Rule "time-constants" (``settle.rule = "time-constants"``): the earlier fixed rule,
 settle.wait + settle.time_constants × the injector's slowest time constant after each
 point's change, settle.wait + 3 × (Rs+Rin)·Cc after a trim, settle.wait + 5 × the slowest
-time constant after switching off for a floor capture.
+time constant after switching off for a floor capture, 7·Rb·Cb after a DC step.
 """
 
 from __future__ import annotations
@@ -54,6 +56,7 @@ import numpy as np
 from benchseq.injector import TWO_PI, InjectorModel
 
 RESIDUAL_FRACTION = 0.1  # of the target uncertainty (amplitude terms) left of a transient
+BIAS_TIME_CONSTANTS = 7.0  # "time-constants" rule: Rb·Cb multiples waited after a DC step
 RULES = ("transient", "time-constants")
 _BISECTIONS = 40  # the wait to 1e-12 of its upper bound
 
@@ -137,6 +140,13 @@ class Settling:
         # reading it leaves of the pin ripple is what the residual is judged against
         self.highpass_hz = float(highpass_hz)
         self.modes = NaturalModes.of(model, self.highpass_hz)
+        num, den = model.transfer_polynomials()["dc"]
+        poles = np.roots(den)
+        residues = np.polyval(num, poles) / np.polyval(np.polyder(den), poles)
+        # a step ΔV of the set-point: V_pin = H_dc(0)·ΔV + Σ (r_i/p_i)·ΔV·e^{p_i t}
+        self.dc_modes = NaturalModes(poles.astype(complex), (residues / poles).astype(complex))
+        values = model.values
+        self.bias_s = values.bias_resistor * values.bias_capacitor
 
     def reading_through(self, highpass_hz: float) -> Settling:
         """The same rule for a pin read through an AC coupling of ``highpass_hz`` (Hz)."""
@@ -196,6 +206,17 @@ class Settling:
             return np.full(shape, self.rule.fixed_s + 5.0 * self.slowest_s)
         size = np.abs(np.asarray(emf_old, dtype=float))[..., None] * self.modes.weights(frequency)
         return self._transient(size, self._read(frequency, pin_peak), None)
+
+    def dc_step(self, step_v: Any, pin_peak: Any) -> np.ndarray:
+        """After the set-point supply moves by ``step_v`` (V, the DC ramp taken as one step
+        at its end): until what is left of the pin's DC transient (the bias filter and every
+        other mode of H_dc) is under the same allowance as a ripple change's."""
+        step = np.abs(np.asarray(step_v, dtype=float))
+        if self.by_time_constants:
+            shape = np.broadcast(step, np.asarray(pin_peak)).shape
+            return np.full(shape, BIAS_TIME_CONSTANTS * self.bias_s)
+        size = step[..., None] * np.abs(self.dc_modes.residues)
+        return self.dc_modes.time_to(size, allowed_residual(pin_peak, self.target_db))
 
     def emf_for(self, frequency: Any, pin_peak: Any) -> np.ndarray:
         """The EMF peak (V) the model needs for ``pin_peak`` at ``frequency``."""

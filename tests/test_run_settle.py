@@ -1,7 +1,8 @@
 """Points measured after the model's settle waits keep the truth inside their uncertainty.
 
-The simulated bench rings after every change of the generator through the injector's own
-natural modes (sim/transient.py, solved from the netlist, not from benchseq.injector), so a
+The simulated bench (its scenario's injector_transients switched on) rings after every
+change of the generator through the injector's own natural modes (sim/transient.py, solved
+from the netlist, not from benchseq.injector), so a
 wait too short for the transient shows up as an error against the simulator's truth. Judged
 over several seeds: a complete standard uncertainty u puts a normal error within ±1.96u with
 probability 95 % (JCGM 100 §G.3, Table G.1); the number of values outside is then at most
@@ -17,12 +18,14 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pytest
 from scipy.stats import binom
 
 from benchseq.runner import start_run
 from benchseq.store import read_results, read_truth
 
 SEEDS = range(1, 5)
+SCENARIOS = Path(__file__).resolve().parent.parent / "sim" / "scenarios"
 
 PLAN = """
 title = "FV-33 settle check"
@@ -48,10 +51,25 @@ def _frequencies(seed: int) -> str:
     return ", ".join(f'"{12 * shift * 10 ** (k / 2):.6g} Hz"' for k in range(5))
 
 
+def _ringing_bench(folder: Path) -> Path:
+    """The demo bench on the demo scenario with injector_transients switched on (a scenario
+    file beside the bench file)."""
+    scenario = (SCENARIOS / "demo.toml").read_text(encoding="utf-8")
+    scenario = scenario.replace("injector_transients = false", "injector_transients = true")
+    assert "injector_transients = true" in scenario
+    (folder / "ringing-demo.toml").write_text(scenario, encoding="utf-8")
+    bench = (SCENARIOS / "demo.bench.toml").read_text(encoding="utf-8")
+    bench = bench.replace('simulation = "demo"', 'simulation = "ringing-demo.toml"')
+    assert "ringing-demo.toml" in bench
+    (folder / "ringing.bench.toml").write_text(bench, encoding="utf-8")
+    return folder / "ringing.bench.toml"
+
+
 def _run(folder: Path, seed: int, settle: str) -> pd.DataFrame:
     plan = folder / f"settle-{seed}.toml"
     plan.write_text(PLAN.format(frequencies=_frequencies(seed), settle=settle), encoding="utf-8")
-    outcome, path = start_run(str(plan), None, str(folder / f"settle-{seed}.h5"), seed=seed)
+    bench = str(_ringing_bench(folder))
+    outcome, path = start_run(str(plan), bench, str(folder / f"settle-{seed}.h5"), seed=seed)
     assert outcome.status == "complete", outcome.reason
     frame = read_results(path).merge(read_truth(path), on="point_id", suffixes=("", "_true"))
     return frame[~frame["is_bound"]]
@@ -64,6 +82,7 @@ def _normalised(frames: list[pd.DataFrame]) -> np.ndarray:
     ).to_numpy()
 
 
+@pytest.mark.slow
 def test_model_settle_keeps_coverage(tmp_path: Path) -> None:
     z = _normalised([_run(tmp_path, seed, "") for seed in SEEDS])
     assert z.size >= 30

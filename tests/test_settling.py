@@ -120,3 +120,27 @@ def test_planned_waits_follow_the_run_order() -> None:
     emf = settling.emf_for(f, pin)
     assert waits[2] == pytest.approx(float(settling.change(1e3, 0.0, 1e3, emf[2], 0.05)))
     assert waits[1] == pytest.approx(float(settling.change(1e3, emf[0], 10.0, emf[1], 0.05)))
+
+
+def test_dc_step_wait_against_scipy_step_response() -> None:
+    """After a 1 V step of the set-point supply, the pin's DC (H_dc's step response from
+    scipy's state-space form: y = C·A⁻¹(e^{At} − I)·B + D, Ogata §9-6) is within the
+    allowance of its final value at the wait, and not yet at 0.9 x it."""
+    model = _model()
+    settling = Settling(SettleRule(), model, TARGET_DB)
+    wait = float(settling.dc_step(1.0, 0.05))
+    num, den = model.transfer_polynomials()["dc"]
+    final = np.polyval(num, 0.0) / np.polyval(den, 0.0)
+    allowed = 0.1 * (10 ** (TARGET_DB / 20) - 1) * 0.05
+    a, b, c, d = scipy.signal.tf2ss(num, den)
+
+    def step(t: float) -> float:
+        x = np.linalg.solve(a, (scipy.linalg.expm(a * t) - np.eye(a.shape[0])) @ b)
+        return float((c @ x + d)[0, 0])
+
+    y = [step(t) for t in (0.0, 0.9 * wait, wait, 2 * wait)]
+    assert abs(y[2] - final) <= allowed * (1 + 1e-6)
+    assert abs(y[3] - final) <= allowed
+    assert abs(y[1] - final) > allowed
+    old = Settling(SettleRule(rule="time-constants"), model, TARGET_DB)
+    assert float(old.dc_step(1.0, 0.05)) == pytest.approx(7 * 10e3 * 10e-6)

@@ -91,6 +91,7 @@ def test_records_show_the_transient_only_before_it_has_decayed() -> None:
     """A DC-coupled pin record right after switching on differs from the settled one by the
     decaying transient; 20 coupling time constants later it does not."""
     sim = SimulatedBench.from_scenario("demo")
+    sim.transient = InjectorTransient(sim.circuit)  # the scenario key injector_transients
     sim.handler("supply").handle("SOUR1:VOLT 5;CURR 0.1;:OUTP1 ON")
     sim.clock.sleep(1.5)
     sim.handler("generator").handle("SOUR1:FUNC SIN;FREQ 100;VOLT 0.1;:OUTP1:LOAD 50;:OUTP1 ON")

@@ -209,15 +209,22 @@ def plan_points(plan: Any) -> dict[str, np.ndarray]:
     return points
 
 
-def overnight_bench(folder: Path) -> Any:
+def overnight_bench(folder: Path, ringing: bool = False) -> Any:
     """The embedded demo bench with an electronic load (the overnight plan steps the load):
-    sim/scenarios/demo.bench.toml plus a [load] table, written into ``folder``."""
+    sim/scenarios/demo.bench.toml plus a [load] table, written into ``folder``; ``ringing``:
+    on the demo scenario with injector_transients switched on."""
     from benchseq.bench import load_bench
 
     text = (ROOT / "sim" / "scenarios" / "demo.bench.toml").read_text(encoding="utf-8")
     load = '[load]\naddress = "SIM::load"\nprofile = "scpi-load"\nmax_current = "300 mA"\n\n'
-    path = folder / "demo-with-load.bench.toml"
-    path.write_text(text.replace("[injector]", load + "[injector]", 1), encoding="utf-8")
+    text = text.replace("[injector]", load + "[injector]", 1)
+    if ringing:  # the demo scenario with generator changes ringing through the injector
+        scenario = (ROOT / "sim" / "scenarios" / "demo.toml").read_text(encoding="utf-8")
+        scenario = scenario.replace("injector_transients = false", "injector_transients = true")
+        (folder / "ringing-demo.toml").write_text(scenario, encoding="utf-8")
+        text = text.replace('simulation = "demo"', 'simulation = "ringing-demo.toml"')
+    path = folder / f"{'ringing' if ringing else 'demo'}-with-load.bench.toml"
+    path.write_text(text, encoding="utf-8")
     return load_bench(path)
 
 
@@ -457,7 +464,7 @@ def part_e(folder: Path, points: int) -> None:
 
     print("\n== (e) plans/overnight.toml: settle rules side by side (same points, seed 0)")
     plan = load_plan(PLANS / "overnight.toml")
-    bench = overnight_bench(folder)
+    bench = overnight_bench(folder, ringing=True)
     rules = {
         "time-constants x6": dataclasses.replace(
             plan,
