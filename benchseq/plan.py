@@ -615,13 +615,17 @@ def _settle(section: Section | None) -> SettleRule:
     if section is None:
         return SettleRule()
     _only(section, ("rule", "wait", "time_constants", "after_operating_point"))
-    rule = section.text("rule", default="transient", choices=SETTLE_RULES)
-    if rule == "transient" and "time_constants" in section.data:
+    # a plan written for the fixed rule (time_constants given, no rule) keeps it
+    written = "time_constants" in section.data
+    rule = section.text(
+        "rule", default="time-constants" if written else "transient", choices=SETTLE_RULES
+    )
+    if rule == "transient" and written:
         raise section.error(
             "time_constants",
-            'is used only with rule = "time-constants"; the default rule waits until the '
+            'is used only with rule = "time-constants"; rule "transient" waits until the '
             "injector's transient after each change is under a tenth of the target "
-            'uncertainty (remove time_constants, or add rule = "time-constants")',
+            'uncertainty (remove time_constants, or set rule = "time-constants")',
         )
     fixed = section.quantity(
         "wait", "s", default=0.0, nonnegative=True, within=PLAN_RANGES["settle.wait"]

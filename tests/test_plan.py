@@ -276,6 +276,8 @@ def test_defaults_when_optional_tables_are_absent() -> None:
     plan = plan_from(MINIMAL)
     assert (plan.settle.fixed_s, plan.settle.time_constants) == (0.0, 5.0)
     assert plan.settle.rule == "transient"
+    fixed = plan_from(MINIMAL + "[settle]\ntime_constants = 6\n")  # written for the fixed rule
+    assert (fixed.settle.rule, fixed.settle.time_constants) == ("time-constants", 6.0)
     assert plan.settle.wait_s(0.1) == pytest.approx(0.5)
     assert plan.capture.min_cycles == 10 and plan.capture.max_averages == 64
     assert plan.capture.target_uncertainty_db == 0.1 and plan.capture.max_time_s == 10.0
@@ -455,7 +457,11 @@ def test_dc_outside_the_device_limits_is_left_to_the_feasibility_check() -> None
             "settle",
             "both zero",
         ),
-        (MINIMAL + "[settle]\ntime_constants = 6\n", "settle.time_constants", "rule"),
+        (
+            MINIMAL + '[settle]\nrule = "transient"\ntime_constants = 6\n',
+            "settle.time_constants",
+            "rule",
+        ),
         (MINIMAL + '[settle]\nrule = "fixed"\n', "settle.rule", "not one of"),
         (MINIMAL + '[settle]\nwait = "-1 s"\n', "settle.wait", "negative"),
         (MINIMAL + "[capture]\nmin_cycles = 0\n", "capture.min_cycles", "below the minimum"),
