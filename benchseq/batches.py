@@ -90,16 +90,21 @@ def predicted_plan(
     target_db: float,
     min_cycles: int,
     max_time_s: float,
+    lean: bool = False,
 ) -> analysis.CapturePlan:
     """The least capture meeting ``target_db`` under ``noise``, with records short enough
     (a RECORD_GRAIN-th of the need, or the shortest holding min_cycles) that top-ups of
-    whole records land close to what the point turns out to need."""
+    whole records land close to what the point turns out to need. ``lean``: at that bench
+    time the fewest samples (analysis.plan_capture) - for a noise a point has shown, not a
+    first guess: top-ups of a slow timebase buy less uncertainty per second when the noise
+    turns out larger."""
     kwargs: dict[str, Any] = dict(
         min_cycles=min_cycles,
         max_time_s=max_time_s,
         noise_sigma=noise.white_sigma,
         density_at_f=noise.coloured,
         pin_noise_sigma=noise.pin_sigma,
+        lean=lean,
     )
     whole = analysis.plan_capture(scope, frequency, pin, output, target_db, **kwargs)
     if whole.limited_by == "cycles":

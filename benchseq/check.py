@@ -30,13 +30,13 @@ from benchseq.injector import (
     InjectorValuesError,
 )
 from benchseq.preflight import plan_bench_warnings
+from benchseq.settling import Settling
 from benchseq.units import Amplitude, format_si
 
 if TYPE_CHECKING:
     from benchseq.plan import Plan
 
 SPOT_FREQUENCIES = (10.0, 100.0, 1e3, 10e3, 100e3, 1e6, 10e6)  # Hz
-BIAS_SETTLE_TIME_CONSTANTS = 7.0  # the sequencer waits 7 x Rb·Cb after moving the DC level
 LOW_PHASE_MARGIN_DEG = 45.0
 PEAKING_WARN_DB = 1.0
 WORST_LISTED = 10
@@ -231,10 +231,15 @@ def capture_seconds(frequency: np.ndarray, plan: Plan) -> tuple[np.ndarray, str]
 
 
 def _time_budget(
-    plan: Plan, bench: Bench, sweep: Any, repeats: dict[str, np.ndarray], corners: Corners
+    plan: Plan, bench: Bench, sweep: Any, repeats: dict[str, np.ndarray], model: InjectorModel
 ) -> tuple[float, dict[str, float], str]:
     n = len(sweep)
-    settle_each = plan.settle.fixed_s + plan.settle.time_constants * corners.slowest_time_constant_s
+    settling = Settling(plan.settle, model, plan.capture.target_uncertainty_db)
+    rf, rp = repeats["frequency"], repeats["ripple_peak"]
+    repeat_emf = settling.emf_for(rf, rp)  # a repeat follows its point at the same frequency
+    settle_waits = float(np.sum(settling.planned(sweep.frequency, sweep.ripple_peak))) + float(
+        np.sum(settling.change(rf, repeat_emf, rf, repeat_emf, rp))
+    )
     dc = np.asarray(sweep.dc_level, dtype=float)
     load = np.asarray(sweep.load_current, dtype=float)
     previous_dc = np.concatenate([[0.0], dc[:-1]])
@@ -244,12 +249,9 @@ def _time_budget(
         [[np.isfinite(load[0])] if n else [], load_key[1:] != load_key[:-1]]
     )
     ramp = float(np.sum(np.abs(dc - previous_dc))) / bench.supply.ramp_rate
-    bias_wait = (
-        BIAS_SETTLE_TIME_CONSTANTS
-        * bench.injector.bias_resistor
-        * bench.injector.bias_capacitor
-        * float(np.count_nonzero(dc_moves))
-    )
+    smallest = float(np.min(sweep.ripple_peak)) if n else 0.0
+    steps = (dc - previous_dc)[dc_moves]
+    bias_wait = float(np.sum(settling.dc_step(steps, smallest))) if steps.size else 0.0
     operating = plan.settle.operating_point_s * float(np.count_nonzero(dc_moves | load_moves))
     captures, method = capture_seconds(
         np.concatenate([sweep.frequency, repeats["frequency"]]), plan
@@ -265,7 +267,7 @@ def _time_budget(
             )
             floor_s = float(np.sum(captures[:n][hit.any(axis=1)]))
     breakdown = {
-        "settling": settle_each * (n + repeats["frequency"].size),
+        "settling": settle_waits,
         "dc_ramps": ramp,
         "bias_filter": bias_wait,
         "operating_point_waits": operating,
@@ -300,7 +302,7 @@ def _check_plan(plan: Plan, bench: Bench) -> CheckReport:
         device=device,
         supply_protection_v=bench.supply.overvoltage_protection,
     )
-    total, breakdown, method = _time_budget(plan, bench, sweep, repeats, corners)
+    total, breakdown, method = _time_budget(plan, bench, sweep, repeats, model)
     groups = _groups(feas)
     worst_ids = sorted({g.worst_point for g in groups if g.severity == "refused"})
     worst_ids += sorted(

@@ -30,6 +30,7 @@ AXES = ("dc", "load", "ripple", "frequency")
 FREQUENCY_RANGE = PLAN_RANGES["sweep.frequency"]
 DEFAULT_ORDER = AXES  # outermost first: DC steps are slowest (bias filter), frequency fastest
 ACTIONS = ("flag", "stop")
+SETTLE_RULES = ("transient", "time-constants")  # benchseq.settling
 WATCH_RULES = ("current_limit", "pin_dc", "distortion", "model_mismatch")
 MAX_FREQUENCIES = 100_000  # per plan, after expansion
 MAX_POINTS = 1_000_000  # per plan, after expansion
@@ -40,18 +41,23 @@ _CLEAN_DIGITS = 12  # expanded values are rounded to 12 significant digits (1e-1
 # -- the parts of a plan -------------------------------------------------------------------
 @dataclass(frozen=True)
 class SettleRule:
-    """How long to wait after a change before capturing.
+    """How long to wait after a change before capturing (applied by benchseq.settling).
 
-    After a frequency or amplitude change: ``fixed_s + time_constants`` x the injector's
-    slowest time constant. After a DC level or load change, ``operating_point_s`` more.
+    Rule "transient" (default): after a frequency or amplitude change, until what is left of
+    the injector's transient for that change is under a tenth of the point's target
+    uncertainty, and at least ``fixed_s``. Rule "time-constants": ``fixed_s +
+    time_constants`` x the injector's slowest time constant. After a DC level or load
+    change, ``operating_point_s`` more (the device's own settling: no model knows it).
     """
 
     fixed_s: float = 0.0
     time_constants: float = 5.0
     operating_point_s: float = 0.0
+    rule: str = "transient"
 
     def wait_s(self, slowest_time_constant_s: float) -> float:
-        """Seconds to wait after a frequency or amplitude change."""
+        """Seconds to wait after a frequency or amplitude change under the "time-constants"
+        rule (the "transient" rule depends on the change: benchseq.settling)."""
         return self.fixed_s + self.time_constants * slowest_time_constant_s
 
 
@@ -608,7 +614,19 @@ def _gain_db(section: Section, key: str, value: Any) -> float | None:
 def _settle(section: Section | None) -> SettleRule:
     if section is None:
         return SettleRule()
-    _only(section, ("wait", "time_constants", "after_operating_point"))
+    _only(section, ("rule", "wait", "time_constants", "after_operating_point"))
+    # a plan written for the fixed rule (time_constants given, no rule) keeps it
+    written = "time_constants" in section.data
+    rule = section.text(
+        "rule", default="time-constants" if written else "transient", choices=SETTLE_RULES
+    )
+    if rule == "transient" and written:
+        raise section.error(
+            "time_constants",
+            'is used only with rule = "time-constants"; rule "transient" waits until the '
+            "injector's transient after each change is under a tenth of the target "
+            'uncertainty (remove time_constants, or set rule = "time-constants")',
+        )
     fixed = section.quantity(
         "wait", "s", default=0.0, nonnegative=True, within=PLAN_RANGES["settle.wait"]
     )
@@ -620,14 +638,14 @@ def _settle(section: Section | None) -> SettleRule:
         nonnegative=True,
         within=PLAN_RANGES["settle.after_operating_point"],
     )
-    if fixed == 0 and constants == 0:
+    if rule == "time-constants" and fixed == 0 and constants == 0:
         raise FileKeyError(
             section.source,
             section.path,
             "wait and time_constants are both zero; the injector needs time to settle",
         )
     section.done()
-    return SettleRule(fixed, constants, after)
+    return SettleRule(fixed, constants, after, rule)
 
 
 def _capture(section: Section | None) -> CaptureRules:

@@ -64,17 +64,35 @@ def check_plan_on_bench(plan: Plan, bench: Bench) -> None:
 
 def check_waits(plan: Plan, bench: Bench) -> None:
     """No single wait of the run may exceed LONGEST_WAIT_S: the settling after each change
-    (settle.wait + settle.time_constants x the injector's slowest time constant), the bias
-    filter after a DC step (7 Rb·Cb, as the sequencer waits) and one DC ramp (from 0 V to the
+    (benchseq.settling; for the "transient" rule its longest case, a change between the
+    generator's largest EMFs at the lowest planned frequency measured at the smallest
+    planned ripple; for "time-constants", settle.wait + settle.time_constants x the
+    injector's slowest time constant), the pin's DC
+    settling after the largest DC step (Settling.dc_step; 7 Rb·Cb under "time-constants") and
+    one DC ramp (from 0 V to the
     highest level at supply.ramp_rate). Each value may be in range while the product is not."""
-    from benchseq.check import BIAS_SETTLE_TIME_CONSTANTS, injector_guard
+    from benchseq.check import injector_guard
     from benchseq.injector import InjectorModel
+    from benchseq.settling import Settling
 
     with injector_guard(bench):
-        corners = InjectorModel(bench.injector, bench.generator, bench.pin).corners()
+        model = InjectorModel(bench.injector, bench.generator, bench.pin)
+        corners = model.corners()
+        settling = Settling(plan.settle, model, plan.capture.target_uncertainty_db)
+        low = float(min(plan.frequencies))
+        emf = 0.5 * bench.generator.max_amplitude_pp * bench.generator.emf_per_displayed
+        smallest = min(r.peak for r in plan.ripples)
+        settle = float(settling.change(low, emf, low, emf, smallest))
     tau = corners.slowest_time_constant_s
-    settle = plan.settle.fixed_s + plan.settle.time_constants * tau
     longest = format_limit(LONGEST_WAIT_S, "s")
+    if settle > LONGEST_WAIT_S and plan.settle.rule == "transient":
+        raise FileKeyError(
+            bench.source,
+            "injector",
+            f"after a change of the generator at {format_si(low, 'Hz', 3)} the injector's "
+            f"transient would need {_duration(settle)} to fall under a tenth of the target "
+            f"uncertainty, more than {longest}; check the capacitor and resistor values",
+        )
     if settle > LONGEST_WAIT_S:
         raise FileKeyError(
             bench.source,
@@ -84,7 +102,16 @@ def check_waits(plan: Plan, bench: Bench) -> None:
             f"point would wait {_duration(settle)}, more than {longest}; check the capacitor and "
             "resistor values (or lower settle.time_constants)",
         )
-    bias = BIAS_SETTLE_TIME_CONSTANTS * bench.injector.bias_resistor * bench.injector.bias_capacitor
+    with injector_guard(bench):
+        bias = float(settling.dc_step(float(max(plan.dc_levels)), smallest))
+    if bias > LONGEST_WAIT_S and plan.settle.rule == "transient":
+        raise FileKeyError(
+            bench.source,
+            "injector",
+            f"after the DC ramp to {format_si(float(max(plan.dc_levels)), 'V')} the pin's DC "
+            f"would need {_duration(bias)} to settle through the injector (bias filter Rb·Cb, "
+            f"coupling capacitor), more than {longest}; check the capacitor and resistor values",
+        )
     if bias > LONGEST_WAIT_S:
         raise FileKeyError(
             bench.source,

@@ -23,6 +23,7 @@ from benchseq.errors import BenchseqError, MeasurementFailure
 from benchseq.injector import InjectorModel
 from benchseq.plan import Plan, Sweep
 from benchseq.records import POINT_COLUMNS, input_referred
+from benchseq.settling import Settling, previous_in
 from benchseq.stopping import AbandonPoint, StopControl
 
 PIN_TOLERANCE = 0.02  # relative: trim the generator when the pin ripple is further off than this
@@ -156,7 +157,20 @@ class Sequencer:
         # what the bench is doing now ("power-up", "operating point", "settle", "capture",
         # "trim", "top-up", "floor"): for progress displays and the run benchmarks
         self.activity = "idle"
-        self._eta = BenchTimeLeft(plan, self.sweep, self.corners.slowest_time_constant_s)
+        # every wait after a generator change (benchseq.settling); the generator's EMF peak
+        # and frequency now (0 when off, None when unknown, as after a recovery)
+        self.settling = Settling(plan.settle, self.model, plan.capture.target_uncertainty_db)
+        self._emf_now: float | None = 0.0
+        self._emf_frequency = float("nan")
+        self._eta = BenchTimeLeft(
+            plan,
+            self.sweep,
+            self.settling.planned(
+                self.sweep.frequency,
+                self.sweep.ripple_peak,
+                previous_in(self.run_order, len(self.sweep)),
+            ),
+        )
 
     # -- the whole run ---------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -308,8 +322,7 @@ class Sequencer:
         s.generator.output(True)
         self._generator_on = True
         self._pause(
-            self.plan.settle.fixed_s
-            + self.plan.settle.time_constants * self.corners.slowest_time_constant_s,
+            self._settle_after_change(frequency, self._clamp_generator(setting), target, 0.05),
             "power-up",
         )
         plan = self._plan_capture(frequency, target, target * 1e-3, None, target_db=0.05)
@@ -329,6 +342,8 @@ class Sequencer:
             pin.channel, pin_range, 0.0, pin.coupling, self.bench.scope.bandwidth_limit
         )
         self._ac_corner = coupling.corner_from_ratio(frequency, readings[0] / readings[1])
+        if self._ac_corner > 0:  # the pin reading rings through the coupling too
+            self.settling = self.settling.reading_through(self._ac_corner)
         self.writer.update_meta(scope_ac_corner_hz=self._ac_corner)
         self.emit(
             Event(
@@ -374,11 +389,10 @@ class Sequencer:
             self._dc_now = start + (target - start) * k / steps
             s.clock.sleep(abs(target - start) / rate / steps)
         self._dc_now = target
-        # the bias filter follows with its own time constant
-        self._pause(
-            7.0 * self.bench.injector.bias_resistor * self.bench.injector.bias_capacitor,
-            "the DC ramp",
-        )
+        # the pin's DC follows through the bias filter and the injector's other modes
+        # (benchseq.settling), judged against the smallest planned ripple
+        smallest = float(np.min(self.sweep.ripple_peak))
+        self._pause(float(self.settling.dc_step(target - start, smallest)), "the DC ramp")
 
     def _stop_check(self, where: str) -> None:
         """A stop request while the bench is being powered up or moved to an operating
@@ -495,6 +509,7 @@ class Sequencer:
         patience = self.bench.outage_patience
         started = clock.now()
         tries = 0
+        self._emf_now = None  # what the generator puts out is unknown until it is set again
         while True:
             try:
                 self.session.recover()
@@ -549,12 +564,6 @@ class Sequencer:
         if not self._generator_on:
             s.generator.output(True)
             self._generator_on = True
-        settle = (
-            self.plan.settle.fixed_s
-            + self.plan.settle.time_constants * self.corners.slowest_time_constant_s
-        )
-        self.activity = "settle"
-        clock.sleep(settle)
 
         # the capture, predicted from what the last point showed and taken in batches of one
         # timebase (benchseq.batches): the first ranges both channels and shows the pin
@@ -572,6 +581,7 @@ class Sequencer:
             rules.target_uncertainty_db,
             rules.min_cycles,
             rules.max_time_s,
+            lean=carry.noise is not None,  # fewest samples at equal bench time, noise known
         )
         # measured at the planned frequency; moved to a coherent J/T only within the plan's
         # tolerance and less than half-way to the nearest other planned frequency
@@ -579,6 +589,9 @@ class Sequencer:
             plan, frequency, rules.frequency_tolerance, float(self._max_shift[i])
         )
         actual_frequency = s.generator.set_frequency(plan.frequency)
+        self.activity = "settle"  # after the last change of the generator, before capturing
+        clock.sleep(self._settle_after_change(actual_frequency, actual_pp, target))
+        self.activity = "capture"
         probe = batches.batch(
             plan, batches.probe_records(plan), timebase.max_averages, timebase.rearm_time
         )
@@ -616,10 +629,18 @@ class Sequencer:
                 point_id, measured_pin, target, trims,
             )  # fmt: skip
             self.activity = "trim"
+            before_pp = actual_pp
             actual_pp = s.generator.set_amplitude_pp(
                 self._clamp_generator(actual_pp * target / measured_pin)
             )
-            clock.sleep(self.plan.settle.fixed_s + 3.0 * self.corners.coupling_time_constant_s)
+            clock.sleep(
+                float(
+                    self.settling.trim(
+                        actual_frequency, self._emf(before_pp), self._emf(actual_pp), target
+                    )
+                )
+            )
+            self._emf_now = self._emf(actual_pp)
         pool = self._pool = batches.Pool()
         pool.add(*waves, probe.averages, probe.bench_time)
         capped = False
@@ -805,7 +826,11 @@ class Sequencer:
         self.activity = "floor"
         s.generator.output(False)
         self._generator_on = False
-        s.clock.sleep(self.plan.settle.fixed_s + 5.0 * self.corners.slowest_time_constant_s)
+        emf = self._emf_now if self._emf_now is not None else self._emf_ceiling()
+        s.clock.sleep(
+            float(self.settling.switch_off(frequency, emf, float(self.sweep.ripple_peak[i])))
+        )
+        self._emf_now = 0.0
         pins, outs, interval = self._acquire(plan, pin_range, out_range)
         rate = 1.0 / interval
         pin = analysis.fit_sine(
@@ -836,6 +861,29 @@ class Sequencer:
         return high_pass(frequency, self._ac_corner)
 
     # -- generator, ranging and capture -------------------------------------------------
+    def _emf(self, displayed_pp: float) -> float:
+        """The generator's EMF peak (V) for a displayed peak-to-peak setting."""
+        return 0.5 * displayed_pp * self.bench.generator.emf_per_displayed
+
+    def _emf_ceiling(self) -> float:
+        """The largest EMF peak the generator can give: the change from an unknown state."""
+        return self._emf(self.bench.generator.max_amplitude_pp)
+
+    def _settle_after_change(
+        self, frequency: float, displayed_pp: float, pin_peak: float, target_db: float | None = None
+    ) -> float:
+        """The wait after the generator moved to (frequency, displayed_pp) from what it put out
+        before (benchseq.settling), for a pin ripple of ``pin_peak``; remembers the new state."""
+        emf = self._emf(displayed_pp)
+        if self._emf_now is None:  # unknown (after a recovery): from the largest EMF there
+            old_f, old_emf = frequency, self._emf_ceiling()
+        else:
+            old_f = self._emf_frequency if self._emf_now > 0 else frequency
+            old_emf = self._emf_now
+        wait = self.settling.change(old_f, old_emf, frequency, emf, pin_peak, target_db)
+        self._emf_now, self._emf_frequency = emf, frequency
+        return float(wait)
+
     def _clamp_generator(self, amplitude_pp: float) -> float:
         g = self.bench.generator
         return float(min(max(amplitude_pp, g.min_amplitude_pp), g.max_amplitude_pp))
@@ -1050,12 +1098,13 @@ class BenchTimeLeft:
     noise to average), and any other its estimate times the ratio measured/estimated over
     the points so far."""
 
-    def __init__(self, plan: Plan, sweep: Sweep, slowest_time_constant_s: float) -> None:
+    def __init__(self, plan: Plan, sweep: Sweep, settle_s: Any) -> None:
+        """``settle_s``: the wait before each point (s, per point or one for all), as
+        benchseq.settling.Settling.planned gives it."""
         from benchseq.check import capture_seconds
 
         captures, _ = capture_seconds(np.asarray(sweep.frequency), plan)
-        settle = plan.settle.fixed_s + plan.settle.time_constants * slowest_time_constant_s
-        self.estimate = np.asarray(captures, dtype=float) + settle
+        self.estimate = np.asarray(captures, dtype=float) + np.asarray(settle_s, dtype=float)
         keys, self._key = np.unique(
             np.round(np.asarray(sweep.frequency, dtype=float), 6), return_inverse=True
         )

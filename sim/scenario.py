@@ -93,6 +93,7 @@ class Scenario:
     load_max_current: float = 5.0  # A, the electronic load's own range
     faults: dict[str, FaultRates] = field(default_factory=dict)
     bias_settling: bool = False  # the pin DC follows a set-point change through Rb·Cb
+    injector_transients: bool = False  # generator changes ring through the injector's modes
 
     def circuit(self, bench: Bench) -> InjectorCircuit:
         """The injector as built: the bench's nominal values with this scenario's overrides."""
@@ -146,6 +147,7 @@ def parse_scenario(data: dict, source: str, folder: Path | None = None) -> Scena
     name = head.text("name")
     description = head.text("description", default="")
     bias_settling = head.flag("bias_settling", default=False)
+    transients = head.flag("injector_transients", default=False)
     head.done()
 
     device_section = top.section("device", required=False)
@@ -268,6 +270,7 @@ def parse_scenario(data: dict, source: str, folder: Path | None = None) -> Scena
         load_max_current=load_max,
         faults=faults,
         bias_settling=bias_settling,
+        injector_transients=transients,
         **extras,
     )
 

@@ -12,7 +12,7 @@ Widrow & Kollár, Quantization Noise, 2008, ch. 5) plus quantisation noise / √
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -73,6 +73,10 @@ class NodeSignal:
     noise_bandwidth: float  # Hz, single pole
     spur_frequency: float = 0.0  # a non-synchronous spur (mains pickup)
     spur_amplitude: float = 0.0
+    # what is left of the injector's transient (sim/transient.py): Σ Re(a·e^{r·t}) with t
+    # from the first sample, rates r (1/s) and amplitudes a (V at the node)
+    mode_rates: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=complex))
+    mode_amplitudes: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=complex))
 
 
 @dataclass
@@ -163,6 +167,11 @@ def acquire_channel(
             table[table_n] = table[0]
             cycles = (node.frequencies[0] * t) % 1.0
             y += np.interp(cycles * table_n, np.arange(table_n + 1), table)
+    if node.mode_amplitudes.size:
+        scale = channel.full_scale / 256.0 * 1e-3 * probe  # modes under 1e-3 code: left out
+        for rate, amplitude in zip(node.mode_rates, node.mode_amplitudes, strict=True):
+            if abs(amplitude) > scale:
+                y += np.real(amplitude * np.exp(rate * t)) / probe
     if node.spur_amplitude > 0:
         amp = (
             node.spur_amplitude / probe * abs(channel.response(np.array([node.spur_frequency]))[0])

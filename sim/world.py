@@ -26,6 +26,7 @@ from benchseq.sim.physics import PointPhysics, SupplyOutput, solve_point
 from benchseq.sim.scenario import ROLE_NAMES, Scenario, load_scenario
 from benchseq.sim.scpi import ScpiInstrument
 from benchseq.sim.synth import NodeSignal, Record
+from benchseq.sim.transient import InjectorTransient
 
 if TYPE_CHECKING:
     from benchseq.drivers.transport import Transport
@@ -160,6 +161,8 @@ class SimulatedBench:
         self._bias_tau = self.circuit.bias_resistor * self.circuit.bias_capacitor
         self._setpoint_from = self._setpoint_to = 0.0
         self._setpoint_since = 0.0
+        # what each change of the generator leaves ringing in the injector (sim/transient.py)
+        self.transient = InjectorTransient(self.circuit) if scenario.injector_transients else None
 
     @classmethod
     def from_scenario(
@@ -214,6 +217,8 @@ class SimulatedBench:
         self.log.append(StateChange(self.clock.now(), role, what, value))
         if role == "supply":
             self._track_setpoint()
+        if role == "generator" and self.transient is not None:
+            self.transient.change(self.clock.now(), self.true_frequency(), self.generator.emf_peak)
 
     def _track_setpoint(self) -> None:
         target = self.supply_output().voltage
@@ -263,11 +268,15 @@ class SimulatedBench:
     def output_current(self) -> float:
         return self.device.board_load_current + self.load.drawn
 
+    def true_frequency(self) -> float:
+        """The generator's true frequency (Hz): its setting off by the scenario's error."""
+        g = self.generator.settings
+        return g.frequency * (1.0 + self.scenario.generator.frequency_error_ppm * 1e-6)
+
     def physics(self) -> PointPhysics:
         """The physics at the present instrument settings (cached until one changes)."""
-        g = self.generator.settings
         supply = self.supply_output()
-        frequency = g.frequency * (1.0 + self.scenario.generator.frequency_error_ppm * 1e-6)
+        frequency = self.true_frequency()
         self._track_setpoint()
         setpoint = self.setpoint()
         key = (frequency, self.generator.emf_peak, supply, self.output_current(), setpoint)
@@ -282,6 +291,7 @@ class SimulatedBench:
     def node_signal(self, node: str) -> NodeSignal:
         """What a probe on ``node`` sees (V at the tip)."""
         p = self.physics()
+        rates, pin_modes = self._transient_modes()
         if node == "pin":
             return NodeSignal(
                 p.dc.pin,
@@ -290,6 +300,8 @@ class SimulatedBench:
                 self.scenario.pin_noise,
                 0.0,
                 self.scenario.pin_noise_bandwidth,
+                mode_rates=rates,
+                mode_amplitudes=pin_modes,
             )
         if node == "output":
             device = self.device
@@ -302,6 +314,8 @@ class SimulatedBench:
                 corner = 0.0
             if p.output_dc <= 0:
                 white, corner = 0.0, 0.0
+            if rates.size:  # each mode through the device at its natural frequency
+                pin_modes = pin_modes * device.transfer(np.abs(rates) / (2 * math.pi), p.op)
             return NodeSignal(
                 p.output_dc,
                 p.harmonic_frequencies,
@@ -311,8 +325,29 @@ class SimulatedBench:
                 device.noise_bandwidth,
                 self.scenario.mains_frequency,
                 self.scenario.mains_pickup,
+                mode_rates=rates,
+                mode_amplitudes=pin_modes,
             )
         return NodeSignal(0.0, np.zeros(0), np.zeros(0, dtype=complex), 0.0, 0.0, 1.0)
+
+    def _transient_modes(self) -> tuple[np.ndarray, np.ndarray]:
+        """The injector's ringing modes (rates 1/s, pin amplitudes V at the first sample of
+        the acquisition starting now, averaged over its records); empty when none is left."""
+        empty = (np.zeros(0, dtype=complex), np.zeros(0, dtype=complex))
+        if self.transient is None or not self.generator.settings.output:
+            return empty
+        start = self.transient.next_trigger(self.clock.now())
+        modes = self.transient.pin_modes(start)
+        if not np.any(np.abs(modes) > 1e-12):
+            return empty
+        averages = self.scope.record_averages
+        rates = self.transient.rates
+        if averages > 1:  # records follow one another one record and a re-arm apart
+            step = self.scope.settings.points * self.scope.settings.sample_interval
+            step += self.scope.rearm_time
+            k = np.arange(averages)[:, None]
+            modes = modes * np.mean(np.exp(rates[None, :] * k * step), axis=0)
+        return rates, modes
 
     def acquire(self) -> dict[int, Record]:
         """One acquisition of every enabled channel; advances the clock by its duration."""

@@ -217,3 +217,24 @@ def test_records_kept_short_when_asked(scope: ScopeTimebase) -> None:
     assert floor.record_duration == pytest.approx(10 / 1e3, rel=1e-9)
     with pytest.raises(AnalysisError, match="negative"):
         _plan(scope, 1e3, 60.0, density_at_f=-1.0)
+
+
+def test_lean_plan_reads_fewest_samples_at_equal_bench_time() -> None:
+    """A cycle-bound point (10 cycles of 1 kHz = 10 ms whatever the rate): the lean plan reads
+    the fewest samples that keep ≥ 12 per cycle, at the same bench time, and its expected u
+    is the Cramér–Rao bound of a known-frequency sine fit, var(Â) = 2σ²/N (Kay, Fundamentals
+    of Statistical Signal Processing: Estimation Theory, 1993, Example 3.14), for both
+    channels in quadrature (JCGM 100 §5.1.2), in dB (20/ln 10 per neper)."""
+    scope = ScopeTimebase([1e-7, 1e-6, 1e-5, 1e-4], [100, 1000, 10_000, 100_000], 1, 0.0)
+    args = (scope, 1e3, 1.0, 0.01, 0.1)
+    rules = dict(min_cycles=10, max_time_s=1.0, noise_sigma=1e-4)
+    full = plan_capture(*args, **rules)
+    lean = plan_capture(*args, **rules, lean=True)
+    assert full.meets_target and lean.meets_target
+    assert lean.bench_time == pytest.approx(full.bench_time, rel=1e-9)
+    assert lean.records * lean.record_length < full.records * full.record_length
+    assert (lean.sample_interval, lean.record_length) == (1e-5, 1000)  # 100 per cycle
+    n = lean.records * lean.averages * lean.record_length
+    crb = 20 / math.log(10) * math.sqrt(2 * 1e-4**2 / n * (1 / 1.0**2 + 1 / 0.01**2))
+    assert lean.expected_uncertainty_db == pytest.approx(crb, rel=1e-9)
+    assert lean.expected_uncertainty_db <= 0.5 * 0.1

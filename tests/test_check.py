@@ -67,9 +67,14 @@ def test_device_limits_come_from_the_plan() -> None:
 
 
 def test_bench_time_estimate() -> None:
-    """Settling per point = settle.wait + time_constants x slowest τ (Rb·Cb = 0.1 s on the
-    demo board, the common-practice 5-7 τ rule); a 10 Hz capture of 10 cycles takes 1 s (computed)."""
-    plan = plan_with(frequency={"at": ["10 Hz", "20 Hz"]})
+    """Under settle.rule = "time-constants": settling per point = settle.wait +
+    time_constants x slowest τ (Rb·Cb = 0.1 s on the demo board, the common-practice 5-7 τ
+    rule); a 10 Hz capture of 10 cycles takes 1 s (computed)."""
+    text = (PLANS / "demo.toml").read_text(encoding="utf-8")
+    data = tomllib.loads(text)
+    data["sweep"].update(frequency={"at": ["10 Hz", "20 Hz"]})
+    data["settle"].update(rule="time-constants", time_constants=5)
+    plan = parse_plan(data, "demo-variant.toml", text)
     report = check_plan(plan, load_bench(None))
     n = report.point_count
     tau = 10e3 * 10e-6
@@ -78,6 +83,10 @@ def test_bench_time_estimate() -> None:
     )
     assert report.time_breakdown["captures"] == pytest.approx(1.0 + 0.5, rel=1e-9)
     assert report.estimated_time_s == pytest.approx(sum(report.time_breakdown.values()))
+    # the default rule waits for the injector's transient alone: at 10 and 20 Hz the
+    # coupling mode (Rg·Cc ≈ 10.5 ms) needs well under the 0.5 s of five bias time constants
+    default = check_plan(plan_with(frequency={"at": ["10 Hz", "20 Hz"]}), load_bench(None))
+    assert 0 < default.time_breakdown["settling"] < 0.25 * report.time_breakdown["settling"]
     assert report.estimated_time_s > report.time_breakdown["settling"]
 
 

@@ -275,6 +275,9 @@ def test_sweep_is_consistent() -> None:
 def test_defaults_when_optional_tables_are_absent() -> None:
     plan = plan_from(MINIMAL)
     assert (plan.settle.fixed_s, plan.settle.time_constants) == (0.0, 5.0)
+    assert plan.settle.rule == "transient"
+    fixed = plan_from(MINIMAL + "[settle]\ntime_constants = 6\n")  # written for the fixed rule
+    assert (fixed.settle.rule, fixed.settle.time_constants) == ("time-constants", 6.0)
     assert plan.settle.wait_s(0.1) == pytest.approx(0.5)
     assert plan.capture.min_cycles == 10 and plan.capture.max_averages == 64
     assert plan.capture.target_uncertainty_db == 0.1 and plan.capture.max_time_s == 10.0
@@ -449,7 +452,17 @@ def test_dc_outside_the_device_limits_is_left_to_the_feasibility_check() -> None
             "missing",
         ),
         ('[sweep]\ndc = "5 V"\nripple = "100 mVpp"\nfrequency = 1e3', "device", "missing"),
-        (MINIMAL + "[settle]\nwait = 0\ntime_constants = 0\n", "settle", "both zero"),
+        (
+            MINIMAL + '[settle]\nrule = "time-constants"\nwait = 0\ntime_constants = 0\n',
+            "settle",
+            "both zero",
+        ),
+        (
+            MINIMAL + '[settle]\nrule = "transient"\ntime_constants = 6\n',
+            "settle.time_constants",
+            "rule",
+        ),
+        (MINIMAL + '[settle]\nrule = "fixed"\n', "settle.rule", "not one of"),
         (MINIMAL + '[settle]\nwait = "-1 s"\n', "settle.wait", "negative"),
         (MINIMAL + "[capture]\nmin_cycles = 0\n", "capture.min_cycles", "below the minimum"),
         (MINIMAL + "[capture]\nmax_averages = 2.5\n", "capture.max_averages", "whole number"),
@@ -553,7 +566,7 @@ _KEYS = [
     "title", "operator", "notes", "device", "sweep", "settle", "capture", "watch", "mask",
     "linearity", "floor", "name", "absolute_max", "min_operating", "max_load", "order",
     "frequency", "ripple", "dc", "load", "from", "to", "per_decade", "step", "points", "at",
-    "wait", "time_constants", "after_operating_point", "min_cycles", "max_time",
+    "wait", "time_constants", "after_operating_point", "rule", "min_cycles", "max_time",
     "target_uncertainty", "max_averages", "current_limit", "pin_dc", "distortion",
     "model_mismatch", "above", "then", "factors", "tolerance", "zzz", "frequency_tolerance",
     "gain",

@@ -34,26 +34,26 @@ def test_sigkill_at_random_moments_then_resume(tmp_path: Path) -> None:
     reference = read_results(reference_path).set_index("point_id").sort_index()
     columns = ["rejection_db", "bound_db", "generator_pp", "frequency", "record_length"]
     rng = random.Random(20261202)
+
+    def command(out: Path) -> list[str]:
+        demo = str(PLANS / "demo.toml")
+        return [sys.executable, "-m", "benchseq", "run", demo, "--out", str(out), "--seed", "5"]
+
+    # kill moments spread over what a whole run takes on this machine now (not a check:
+    # only where the kills land), so they interrupt runs however fast the software is
+    started = time.perf_counter()
+    subprocess.run(command(tmp_path / "timed.h5"), capture_output=True, cwd=tmp_path, timeout=300)
+    whole = time.perf_counter() - started
     partial_seen = 0
     for k in range(KILLS):
         out = tmp_path / f"killed-{k}.h5"
         proc = subprocess.Popen(
-            [
-                sys.executable,
-                "-m",
-                "benchseq",
-                "run",
-                str(PLANS / "demo.toml"),
-                "--out",
-                str(out),
-                "--seed",
-                "5",
-            ],
+            command(out),
             stdout=subprocess.DEVNULL,
             stderr=subprocess.DEVNULL,
             cwd=tmp_path,
         )
-        time.sleep(rng.uniform(1.0, 6.0))
+        time.sleep(rng.uniform(0.3, 0.9) * whole)
         if proc.poll() is None:
             os.kill(proc.pid, signal.SIGKILL)
         proc.wait(timeout=30)

@@ -11,6 +11,11 @@ Every offered (sample interval, record length) is tried; triggered averages M mu
 (each record costs its duration plus the re-arm time); a record must hold min_cycles and
 each cycle ≥ min_samples_per_cycle samples. The plan with the least bench time that meets
 the target wins; if none does within max_time_s, the most accurate one that fits does.
+Among plans of that same least bench time (a cycle-bound point: min_cycles, not noise, sets
+its length, so slower sampling of the same record costs no bench time), ``lean`` takes the
+fewest samples read whose expected uncertainty stays within LEAN_MARGIN of the target and
+that keeps LEAN_SAMPLES_PER_CYCLE samples per cycle (harmonics 2-5 stay below Nyquist for
+the distortion fit): less to transfer from the scope and to fit, at equal bench time.
 The point is measured at the planned frequency: the three-parameter sine fit at a known
 frequency (IEEE Std 1057, 4.1.3.1) does not need whole cycles in the record. Only where the
 nearest whole number of cycles J/T (IEEE Std 1241 coherent sampling, J = round(f·T)) lies
@@ -33,6 +38,9 @@ from benchseq.analysis.rejection import DB_PER_NEPER
 
 DEFAULT_MIN_SAMPLES_PER_CYCLE = 8
 DEFAULT_FREQUENCY_TOLERANCE = 1e-3  # relative: a coherent move of at most 0.1 %
+LEAN_MARGIN = 0.5  # a lean plan's expected u stays within this share of the target: the
+#                    noise may then be 4x the guess in power before a top-up is needed
+LEAN_SAMPLES_PER_CYCLE = 12  # harmonic 5 under 0.95 x Nyquist (distortion.NYQUIST_MARGIN)
 
 
 class ScopeLimits(Protocol):
@@ -160,6 +168,7 @@ def plan_capture(
     pin_density_at_f: float = 0.0,
     max_record_time: float | None = None,
     frequency_tolerance: float = DEFAULT_FREQUENCY_TOLERANCE,
+    lean: bool = False,
 ) -> CapturePlan:
     """Least-bench-time capture of one point (amplitudes peak V at the scope input).
 
@@ -176,6 +185,8 @@ def plan_capture(
 
     frequency_tolerance (relative) bounds the move to a coherent J/T (coherent_frequency);
     outside it the plan keeps the requested frequency.
+
+    lean: among the plans of the least bench time, the fewest samples read (see above).
     """
     if not (frequency > 0 and pin_amplitude > 0 and output_amplitude > 0):
         raise AnalysisError(
@@ -208,6 +219,7 @@ def plan_capture(
         ]
         longest = max(max_record_time, min(holding, default=math.inf))
     best: tuple[tuple[float, ...], CapturePlan] | None = None
+    meeting: list[tuple[float, int, float, float, int, int, int, float]] = []
     for dt in intervals:
         if dt * frequency * min_samples_per_cycle > 1.0:
             continue
@@ -241,6 +253,10 @@ def plan_capture(
             u = math.sqrt(DB_PER_NEPER**2 * weight / recorded + cal_db2)
             meets = u <= target_uncertainty_db * (1 + 1e-9) and bench <= max_time_s
             within = bench <= max_time_s
+            if meets and lean:
+                meeting.append(
+                    (bench, records * length, u, dt, length, records, averages, recorded)
+                )
             key = (
                 0.0 if meets else 1.0,
                 0.0 if within else 1.0,
@@ -273,6 +289,37 @@ def plan_capture(
                         meets_target=meets,
                         coherent=coherent,
                     ),
+                )
+    if best is not None and lean and best[1].meets_target:
+        chosen_plan = best[1]
+        fewest = [
+            m
+            for m in meeting
+            if m[0] <= chosen_plan.bench_time * (1 + 1e-9)
+            and m[2]
+            <= max(chosen_plan.expected_uncertainty_db, LEAN_MARGIN * target_uncertainty_db)
+            and m[3] * frequency * LEAN_SAMPLES_PER_CYCLE <= 1.0 + 1e-9
+        ]
+        if fewest:
+            bench, _, u, dt, length, records, averages, recorded = min(
+                fewest, key=lambda m: (m[1], m[2])
+            )
+            if records * length < chosen_plan.records * chosen_plan.record_length:
+                chosen, cycles, coherent = coherent_frequency(
+                    frequency, length * dt, frequency_tolerance
+                )
+                return dataclasses.replace(
+                    chosen_plan,
+                    sample_interval=dt,
+                    record_length=length,
+                    averages=averages,
+                    records=records,
+                    frequency=chosen,
+                    cycles=cycles,
+                    coherent=coherent,
+                    expected_uncertainty_db=u,
+                    capture_time=recorded,
+                    bench_time=bench,
                 )
     if best is None:
         raise AnalysisError(

@@ -125,12 +125,14 @@ TRIM_CAPTURE = "trim recaptures"
 TRIM_SETTLE = "trim settling"
 EXTENSION = "extension captures"
 SETTLE = "settling"
+OPERATING = "operating-point waits"
 RAMP = "DC ramp + bias filter"
 PIN_DC = "pin DC check"
 FLOOR = "floor captures (plan)"
 OTHER = "other"
 ACTIVITIES = (
     SETTLE,
+    OPERATING,
     PLANNED,
     RANGING,
     RERANGE,
@@ -175,6 +177,8 @@ class BenchClock:
             if self._point is not None and tag == "point":
                 if getattr(sequencer, "activity", None) == "trim":
                     tag = TRIM_SETTLE
+                elif getattr(sequencer, "activity", None) == "operating point":
+                    tag = OPERATING
                 elif hasattr(sequencer, "activity"):
                     tag = SETTLE
                 else:

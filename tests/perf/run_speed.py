@@ -16,6 +16,10 @@
 (d) memory of sequencer + store against points (500, 1000, 2000; --full adds 10,000), each
     size in a fresh subprocess with a timeout: peak RSS (VmHWM), RSS during the run,
     tracemalloc peak, and journal/HDF5 bytes per point.
+(e) plans/overnight.toml under the two settle rules side by side (settle.rule =
+    "time-constants" with 6 time constants, as the plan was written before, and the default
+    "transient" rule): the check's planned bench time, the sequencer's bench time per decade
+    on the same --points points, and coverage of the simulator's truth per decade.
 
 Wall-time figures mean something only on a quiet machine: the load average is printed at
 the start and the end.
@@ -205,25 +209,59 @@ def plan_points(plan: Any) -> dict[str, np.ndarray]:
     return points
 
 
-def part_b(folder: Path, points: int, noise_trials: int) -> None:
+def overnight_bench(folder: Path, ringing: bool = False) -> Any:
+    """The embedded demo bench with an electronic load (the overnight plan steps the load):
+    sim/scenarios/demo.bench.toml plus a [load] table, written into ``folder``; ``ringing``:
+    on the demo scenario with injector_transients switched on."""
     from benchseq.bench import load_bench
-    from benchseq.check import check_plan
+
+    text = (ROOT / "sim" / "scenarios" / "demo.bench.toml").read_text(encoding="utf-8")
+    load = '[load]\naddress = "SIM::load"\nprofile = "scpi-load"\nmax_current = "300 mA"\n\n'
+    text = text.replace("[injector]", load + "[injector]", 1)
+    if ringing:  # the demo scenario with generator changes ringing through the injector
+        scenario = (ROOT / "sim" / "scenarios" / "demo.toml").read_text(encoding="utf-8")
+        scenario = scenario.replace("injector_transients = false", "injector_transients = true")
+        (folder / "ringing-demo.toml").write_text(scenario, encoding="utf-8")
+        text = text.replace('simulation = "demo"', 'simulation = "ringing-demo.toml"')
+    path = folder / f"{'ringing' if ringing else 'demo'}-with-load.bench.toml"
+    path.write_text(text, encoding="utf-8")
+    return load_bench(path)
+
+
+def planned_waits(plan: Any, bench: Any, every: dict[str, np.ndarray]) -> tuple[Any, Any]:
+    """Per point (as plan_points lists them, in the sequencer's run order): the settle wait
+    after the change from the point before it, and the wait after switching off for a floor
+    capture, by the plan's settle rule (benchseq.settling, as the run waits)."""
     from benchseq.injector import InjectorModel
+    from benchseq.settling import Settling, previous_in
+
+    model = InjectorModel(bench.injector, bench.generator, bench.pin)
+    settling = Settling(plan.settle, model, plan.capture.target_uncertainty_db)
+    try:
+        from benchseq.sequencer import run_order, with_repeats
+
+        order = run_order(with_repeats(plan)[1])
+    except ImportError:
+        order = list(range(every["id"].size))
+    f, pin = every["frequency"], every["ripple"]
+    settle = settling.planned(f, pin, previous_in(order, f.size))
+    off_wait = settling.switch_off(f, settling.emf_for(f, pin), pin)
+    return np.asarray(settle, dtype=float), np.asarray(off_wait, dtype=float)
+
+
+def part_b(folder: Path, points: int, noise_trials: int) -> None:
+    from benchseq.check import check_plan
     from benchseq.plan import load_plan
     from benchseq.store import read_results, read_truth
 
     print("\n== (b) plans/overnight.toml: planned bench time against its lower bound")
     plan = load_plan(PLANS / "overnight.toml")
-    bench = load_bench(None)
+    bench = overnight_bench(folder)
     report = check_plan(plan, bench)
     every = plan_points(plan)
     n_all = every["id"].size
     sweep_pos = np.nonzero(~every["repeat"])[0]
-    corners = InjectorModel(bench.injector, bench.generator, bench.pin).corners()
-    settle = plan.settle.fixed_s + plan.settle.time_constants * corners.slowest_time_constant_s
-    # a floor capture's wait after the generator goes off: the run's (Sequencer._floor_capture
-    # waits 5 slowest time constants), so floor captures are compared capture to capture
-    off_wait = plan.settle.fixed_s + 5.0 * corners.slowest_time_constant_s
+    settle, off_wait = planned_waits(plan, bench, every)
     start = time.perf_counter()
     bound = lower_bounds(plan, bench, every["frequency"], every["dc"], every["ripple"])
     truth_s = time.perf_counter() - start
@@ -232,14 +270,14 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     b = report.time_breakdown
     operating = b.get("dc_ramps", 0.0) + b.get("bias_filter", 0.0)
     unmet = sum(not x.meets_target for x in bound)
-    lb_total = n_all * settle + cap.sum() + (off_wait * floor + cap * floor).sum() + operating
+    lb_total = settle.sum() + cap.sum() + (off_wait * floor + cap * floor).sum() + operating
     print(
         f"{sweep_pos.size} points + {n_all - sweep_pos.size} linearity repeats + "
-        f"{int(floor.sum())} floor captures; settle {settle:.3f} s per point (wait "
-        f"{plan.settle.fixed_s:g} s + {plan.settle.time_constants:g} x "
-        f"{corners.slowest_time_constant_s:.3g} s), {off_wait:.3f} s before a floor capture (the "
-        "run waits 5 time constants there); truth + least captures computed in "
-        f"{truth_s:.2f} s"
+        f"{int(floor.sum())} floor captures; settle (rule {plan.settle.rule!r}, "
+        "benchseq.settling, each point after the one before it in run order) "
+        f"{settle.sum():.1f} s in all, {settle.min():.3g}-{settle.max():.3g} s per point, "
+        f"{off_wait[floor].sum():.3f} s before the floor captures; truth + least captures "
+        f"computed in {truth_s:.2f} s"
     )
     print(
         f"check_plan estimated_time_s = {report.estimated_time_s:.1f} s: "
@@ -260,7 +298,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     worst = float(cap.max())
     meetable = max(x.bench_time for x in bound if x.meets_target)
     captures_total = n_all + int(floor.sum())
-    waits = n_all * settle + int(floor.sum()) * off_wait + operating
+    waits = settle.sum() + off_wait[floor].sum() + operating
     fixed_total = captures_total * worst + waits
     fixed_meet = captures_total * meetable + waits
     print(
@@ -327,7 +365,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
     run_pos = np.array([position[p.point_id] for p in clock.points], dtype=np.int64)
     ramps = totals.get(rb.RAMP, 0.0)  # the plan's DC steps: the bound takes them too
     lb_caps = cap[run_pos].sum() + cap[run_pos][floor[run_pos]].sum()
-    lb_settle = settle * run_pos.size + off_wait * int(floor[run_pos].sum())
+    lb_settle = settle[run_pos].sum() + off_wait[run_pos][floor[run_pos]].sum()
     lb_sub_total = lb_settle + lb_caps + ramps
     print(
         f"run {outcome.status}: {len(clock.points)} points measured "
@@ -357,7 +395,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         f"{cap[run_pos].sum():.2f} s ({planned - cap[run_pos].sum():+.2f} s); ranging, "
         f"re-ranging, trims and pin DC checks, which the bound does not spend, {overhead:.2f} s; "
         f"floor captures {totals.get(rb.FLOOR, 0.0):.2f} s against "
-        f"{off_wait * floor[run_pos].sum() + cap[run_pos][floor[run_pos]].sum():.2f} s"
+        f"{(off_wait * floor)[run_pos].sum() + cap[run_pos][floor[run_pos]].sum():.2f} s"
     )
     flags = rows["flags"].fillna("")
     err = (rows["rejection_db"] - rows["rejection_db_true"]).abs()
@@ -389,7 +427,7 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
         group = per_decade[d]
         seq = sum(sum(p.seconds.values()) - p.seconds.get(rb.RAMP, 0.0) for p, _ in group)
         plan_cap = sum(p.seconds.get(rb.PLANNED, 0.0) for p, _ in group)
-        lb = sum(settle + off_wait * floor[k] + cap[k] * (1 + floor[k]) for _, k in group)
+        lb = sum(settle[k] + off_wait[k] * floor[k] + cap[k] * (1 + floor[k]) for _, k in group)
         print(
             f"{10**d:>9.0f} Hz {len(group):>4} {seq / len(group):>9.3f} {lb / len(group):>10.3f} "
             f"{seq / lb:>6.2f} {np.mean([captures[p.point_id] for p, _ in group]):>8.2f} "
@@ -410,6 +448,127 @@ def part_b(folder: Path, points: int, noise_trials: int) -> None:
             f"sequencer ~{full + operating:.0f} s against the bound's {lb_total:.0f} s "
             f"({(full + operating) / lb_total:.2f}x)"
         )
+
+
+# -- (e) settle rules side by side -----------------------------------------------------------------
+def part_e(folder: Path, points: int) -> None:
+    """The overnight plan under the fixed rule (settle.rule = "time-constants", 6 slowest
+    time constants, as the plan was written before) and under the model's transient rule:
+    the check's planned bench time, the sequencer's simulated bench time per decade, and
+    coverage of the truth per decade, in one process on the same points."""
+    import dataclasses
+
+    from benchseq.check import check_plan
+    from benchseq.plan import load_plan
+    from benchseq.store import read_results, read_truth
+
+    print("\n== (e) plans/overnight.toml: settle rules side by side (same points, seed 0)")
+    plan = load_plan(PLANS / "overnight.toml")
+    bench = overnight_bench(folder, ringing=True)
+    rules = {
+        "time-constants x6": dataclasses.replace(
+            plan,
+            settle=dataclasses.replace(plan.settle, rule="time-constants", time_constants=6.0),
+        ),
+        "transient": plan,
+    }
+    every = plan_points(plan)
+    sweep_pos = np.nonzero(~every["repeat"])[0]
+    keep = sweep_pos[rb.stratified(every["frequency"][sweep_pos], points)]
+    decades = np.floor(np.log10(every["frequency"]) + 1e-9)
+    results: dict[str, dict[str, Any]] = {}
+    for name, variant in rules.items():
+        report = check_plan(variant, bench)
+        settle, _ = planned_waits(variant, bench, every)
+        start = time.perf_counter()
+        outcome, clock = rb.run_sweep(
+            variant, bench, folder / f"rules-{len(results)}.h5", keep=keep, attach=rb.BenchClock
+        )
+        wall = time.perf_counter() - start
+        rows = read_results(folder / f"rules-{len(results)}.h5").merge(
+            read_truth(folder / f"rules-{len(results)}.h5"), on="point_id", suffixes=("", "_true")
+        )
+        position = {int(i): k for k, i in enumerate(every["id"])}
+        per_point = {  # the plan's operating-point steps apart (a subset takes more of them)
+            position[p.point_id]: sum(p.seconds.values())
+            - p.seconds.get(rb.RAMP, 0.0)
+            - p.seconds.get(rb.OPERATING, 0.0)
+            for p in clock.points
+        }
+        settled = {position[p.point_id]: p.seconds.get(rb.SETTLE, 0.0) for p in clock.points}
+        rows["pos"] = [position[int(i)] for i in rows["point_id"]]
+        results[name] = {
+            "check": report.estimated_time_s,
+            "check_settling": report.time_breakdown["settling"],
+            "planned_settle": float(settle.sum()),
+            "operating": report.time_breakdown["dc_ramps"]
+            + report.time_breakdown["bias_filter"]
+            + report.time_breakdown["operating_point_waits"],
+            "bench": outcome.bench_time,
+            "status": outcome.status,
+            "per_point": per_point,
+            "settled": settled,
+            "rows": rows,
+            "wall": wall,
+        }
+    names = list(rules)
+    old, new = (results[n] for n in names)
+    print(
+        f"check's planned bench time (all {every['id'].size} points): {old['check']:.0f} s -> "
+        f"{new['check']:.0f} s (ratio {new['check'] / old['check']:.3f}); its settling "
+        f"{old['check_settling']:.0f} s -> {new['check_settling']:.1f} s"
+    )
+    print(
+        f"sequencer on {keep.size} of {sweep_pos.size} points (+ repeats; --points {points}): "
+        f"bench time {old['bench']:.1f} s ({old['status']}, wall {old['wall']:.0f} s) -> "
+        f"{new['bench']:.1f} s ({new['status']}, wall {new['wall']:.0f} s), ratio "
+        f"{new['bench'] / old['bench']:.3f}"
+    )
+    header = (
+        f"{'decade':>12} {'pts':>4} {'old s/pt':>9} {'new s/pt':>9} {'ratio':>6} "
+        f"{'old settle':>10} {'new settle':>10}   coverage old | new: values, within 1.96u, "
+        "beyond 4u, bounds above truth"
+    )
+    print(header)
+
+    def coverage(rows: Any, sel: Any) -> str:
+        part = rows[rows["pos"].isin(sel)]
+        values = part[~part["is_bound"]]
+        z = (values["rejection_db"] - values["rejection_db_true"]) / values["uncertainty_db"]
+        bounds = part[part["is_bound"]]
+        above = int((bounds["bound_db"] > bounds["rejection_db_true"]).sum())
+        inside = float(np.mean(np.abs(z) <= 1.96)) if len(z) else math.nan
+        return f"{len(z):>3}, {inside:>6.1%}, {int((np.abs(z) > 4).sum())}, {above}/{len(bounds)}"
+
+    total_old = total_new = 0.0
+    extrapolated_old = extrapolated_new = 0.0
+    for d in np.unique(decades):
+        sel = [k for k in old["per_point"] if decades[k] == d]
+        if not sel:
+            continue
+        o = sum(old["per_point"][k] for k in sel)
+        n = sum(new["per_point"][k] for k in sel)
+        total_old, total_new = total_old + o, total_new + n
+        weight = int(np.sum(decades == d)) / len(sel)  # the decade's points in the whole plan
+        extrapolated_old += o * weight
+        extrapolated_new += n * weight
+        print(
+            f"{10**d:>9.0f} Hz {len(sel):>4} {o / len(sel):>9.3f} {n / len(sel):>9.3f} "
+            f"{n / o:>6.3f} {sum(old['settled'][k] for k in sel) / len(sel):>10.4f} "
+            f"{sum(new['settled'][k] for k in sel) / len(sel):>10.4f}   "
+            f"{coverage(old['rows'], sel)} | {coverage(new['rows'], sel)}"
+        )
+    operating = new["operating"]
+    print(
+        f"points' bench time (DC ramps, bias-filter and after_operating_point waits apart) "
+        f"{total_old:.1f} s -> {total_new:.1f} s, ratio {total_new / total_old:.3f}; "
+        f"extrapolated to the whole plan by decade, plus its {operating:.0f} s of operating-point "
+        f"steps (the check's): {extrapolated_old + operating:.0f} s -> "
+        f"{extrapolated_new + operating:.0f} s, ratio "
+        f"{(extrapolated_new + operating) / (extrapolated_old + operating):.3f}"
+    )
+    print(f"all bands: old {coverage(old['rows'], list(old['per_point']))}")
+    print(f"           new {coverage(new['rows'], list(new['per_point']))}")
 
 
 # -- (c) cost of a durable point -------------------------------------------------------------
@@ -531,6 +690,7 @@ dc = ["5 V"]
 ripple = ["100 mVpp"]
 frequency = {{ from = "200 kHz", to = "1 MHz", points = {n} }}
 [settle]
+rule = "time-constants"
 time_constants = 1
 [capture]
 min_cycles = 1
@@ -725,7 +885,7 @@ def main() -> None:
         default=96,
         help="overnight points the sequencer runs in (b) (default 96; 832 = all)",
     )
-    parser.add_argument("--parts", default="abcd", help="which parts to run (default abcd)")
+    parser.add_argument("--parts", default="abcde", help="which parts to run (default abcde)")
     parser.add_argument("--full", action="store_true", help="(d) also at 10,000 points")
     parser.add_argument(
         "--sizes", default="500,1000,2000", help="(d) points per run, comma-separated"
@@ -770,6 +930,8 @@ def main() -> None:
                 (FULL_SIZE,) if args.full else ()
             )
             part_d(folder, sizes, 0 if args.no_tracemalloc else 2000)
+        if "e" in args.parts:
+            part_e(folder, args.points)
     print(f"\nscript wall time {time.perf_counter() - started:.0f} s")
     load_line("at end")
 
