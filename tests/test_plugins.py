@@ -133,7 +133,6 @@ dc = ["4.5 V"]
 ripple = ["100 mVpp"]
 frequency = ["50 Hz", "500 Hz", "5 kHz"]
 [settle]
-time_constants = 5
 after_operating_point = "0.2 s"
 [capture]
 min_cycles = 10
