@@ -762,17 +762,21 @@ def _catalog_build(args: argparse.Namespace) -> int:
         return EXIT_OK
     err = _console(stderr=True)
     for source, reason in report.skipped:
-        err.print(f"[bold yellow]skipped (damaged):[/] {_escape(source)}: {_escape(reason)}")
+        err.print(
+            f"[bold yellow]skipped (damaged):[/] {_escape(source)}: {_escape(reason)}",
+            soft_wrap=True,
+        )
     for source, notice in report.notices:
-        err.print(f"[bold yellow]notice:[/] {_escape(source)}: {_escape(notice)}")
+        err.print(f"[bold yellow]notice:[/] {_escape(source)}: {_escape(notice)}", soft_wrap=True)
     for source, same in report.duplicates:
-        err.print(f"skipped (same content as {_escape(same)}): {_escape(source)}")
+        err.print(f"skipped (same content as {_escape(same)}): {_escape(source)}", soft_wrap=True)
     _console().print(
         f"catalog {_escape(report.catalog)}: {report.found} result file(s) found; "
         f"{len(report.added)} added, {len(report.replaced)} replaced, "
         f"{report.unchanged} unchanged (skipped), {len(report.skipped)} damaged (skipped), "
         f"{len(report.not_runs)} calibration file(s) ignored; now {report.files} run(s), "
-        f"{report.rows} point(s), {report.incomplete_runs} incomplete run(s)"
+        f"{report.rows} point(s), {report.incomplete_runs} incomplete run(s)",
+        soft_wrap=True,
     )
     return EXIT_OK
 
