@@ -175,7 +175,7 @@ def content_hash(path: Path) -> str:
         inner = hashlib.sha256()
         if part.is_file():
             with open(part, "rb") as handle:
-                for block in iter(lambda h=handle: h.read(1 << 20), b""):  # type: ignore[misc]
+                while block := handle.read(1 << 20):
                     inner.update(block)
             outer.update(label + b":" + inner.digest())
     return outer.hexdigest()
