@@ -585,18 +585,20 @@ def summary(con: Any, name: str, filters: Filters | None = None) -> Table:
 
 
 def worst_sql(f: Filters) -> str:
-    """Lowest measured rejection (lower bounds left out) per device, lab and night, among
-    the points the filters keep; at ``f.frequency`` each run contributes its points at the
-    planned frequency nearest to it (log distance)."""
+    """Lowest measured rejection per device, lab and night among the points the filters
+    keep; at ``f.frequency`` each run contributes its points at its planned frequency nearest
+    to it (log distance), chosen before lower bounds are set aside: bounds are not values,
+    the lowest of them is given beside the worst value."""
     if f.frequency is None and f.band is None:
         raise BadInput("worst needs --frequency F or --band LOW HIGH")
-    where = ["NOT is_bound", "rejection_db IS NOT NULL", *_where(f)]
-    chosen = f"SELECT * FROM points WHERE {' AND '.join(where)}"
+    where = _where(f)
+    chosen = "SELECT * FROM points" + (f" WHERE {' AND '.join(where)}" if where else "")
     if f.frequency is not None:
         chosen += (
             f" QUALIFY abs(ln(frequency_planned / {f.frequency!r})) = "
             f"min(abs(ln(frequency_planned / {f.frequency!r}))) OVER (PARTITION BY source)"
         )
+    value = "(NOT is_bound AND rejection_db IS NOT NULL)"
     return (
         "SELECT device, lab, night, min(rejection_db) AS worst_db, "
         "arg_min(uncertainty_db, rejection_db) AS u_db, "
@@ -604,6 +606,8 @@ def worst_sql(f: Filters) -> str:
         "arg_min(dc_level, rejection_db) AS dc_level, "
         "arg_min(load_current, rejection_db) AS load_current, "
         "arg_min(point_id, rejection_db) AS point_id, "
+        "min(bound_db) FILTER (WHERE is_bound) AS lowest_bound_db, "
         "count(DISTINCT source) AS runs, arg_min(source, rejection_db) AS source "
-        f"FROM ({chosen}) GROUP BY device, lab, night ORDER BY device, lab, night"
+        f"FROM ({chosen}) WHERE {value} OR is_bound GROUP BY device, lab, night "
+        "ORDER BY device, lab, night"
     )

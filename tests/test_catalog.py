@@ -205,11 +205,12 @@ def test_worst_matches_pandas_groupby(
                          "--dc", "5 V", "--load", "100 mA", "--json"])["rows"]  # fmt: skip
     # reference: pandas over read_results, each run's planned frequency nearest 1 kHz
     frame: pd.DataFrame = campaign["frames"]  # type: ignore[assignment]
-    frame = frame[(frame["dc_level"] == 5.0) & np.isclose(frame["load_current"], 0.1)]
-    frame = frame[~frame["is_bound"] & frame["rejection_db"].notna()].copy()
+    frame = frame[(frame["dc_level"] == 5.0) & np.isclose(frame["load_current"], 0.1)].copy()
     frame["distance"] = np.abs(np.log(frame["frequency_planned"] / 1000.0))
     nearest = frame.groupby("source")["distance"].transform("min")
     frame = frame[frame["distance"] == nearest]
+    bounds = frame[frame["is_bound"]]
+    frame = frame[~frame["is_bound"] & frame["rejection_db"].notna()].copy()
     night_of = {str(p.resolve()): n.isoformat() for p, n in nights.items()}
     frame = frame[frame["source"].isin(night_of)]  # the simulated runs have no load axis
     frame["night"] = frame["source"].map(night_of)
@@ -218,7 +219,15 @@ def test_worst_matches_pandas_groupby(
     for r in got:
         assert r["worst_db"] == pytest.approx(expected[(r["device"], r["lab"], r["night"])],
                                               abs=1e-9)  # fmt: skip
-        assert r["frequency_planned"] == 1.2e3
+        assert r["frequency_planned"] == 1.2e3  # the plan's frequency nearest 1 kHz
+    lowest = bounds.assign(night=bounds["source"].map(night_of)).groupby(
+        ["device", "lab", "night"])["bound_db"].min()  # fmt: skip
+    assert len(lowest) > 0
+    for r in got:
+        key = (r["device"], r["lab"], r["night"])
+        assert (r["lowest_bound_db"] is None) == (key not in lowest)
+        if key in lowest:
+            assert r["lowest_bound_db"] == pytest.approx(lowest[key], abs=1e-9)
     # a band instead of a frequency: every planned frequency inside it counts
     band = _json(capsys, ["catalog", "query", str(cat), "worst", "--band", "50 Hz", "200 kHz",
                           "--device", "FV-12", "--json"])["rows"]  # fmt: skip
