@@ -744,6 +744,120 @@ def _add_watch_parser(sub: Any) -> None:
     p.set_defaults(func=cmd_watch)
 
 
+# -- catalog: many runs in one queryable dataset (benchseq/catalog.py) -------------------
+def cmd_catalog(args: argparse.Namespace) -> int:
+    if args.catalog_command == "build":
+        return _catalog_build(args)
+    if args.catalog_command == "query":
+        return _catalog_query(args)
+    raise BadInput("catalog needs an action: build or query")
+
+
+def _catalog_build(args: argparse.Namespace) -> int:
+    from benchseq.catalog import build
+
+    report = build(args.dirs, args.into)
+    if args.json:
+        _print_json(report.to_dict())
+        return EXIT_OK
+    err = _console(stderr=True)
+    for source, reason in report.skipped:
+        err.print(
+            f"[bold yellow]skipped (damaged):[/] {_escape(source)}: {_escape(reason)}",
+            soft_wrap=True,
+        )
+    for source, notice in report.notices:
+        err.print(f"[bold yellow]notice:[/] {_escape(source)}: {_escape(notice)}", soft_wrap=True)
+    for source, same in report.duplicates:
+        err.print(f"skipped (same content as {_escape(same)}): {_escape(source)}", soft_wrap=True)
+    _console().print(
+        f"catalog {_escape(report.catalog)}: {report.found} result file(s) found; "
+        f"{len(report.added)} added, {len(report.replaced)} replaced, "
+        f"{report.unchanged} unchanged (skipped), {len(report.skipped)} damaged (skipped), "
+        f"{len(report.not_runs)} calibration file(s) ignored; now {report.files} run(s), "
+        f"{report.rows} point(s), {report.incomplete_runs} incomplete run(s)",
+        soft_wrap=True,
+    )
+    return EXIT_OK
+
+
+def _catalog_query(args: argparse.Namespace) -> int:
+    from benchseq.catalog import Filters, connect, run_sql, summary
+    from benchseq.units import parse_quantity
+
+    if (args.summary is None) == (args.sql is None):
+        raise BadInput("catalog query: give a summary (runs, worst, flags) or --sql, not both")
+    filters = Filters(
+        frequency=None if args.frequency is None else parse_quantity(args.frequency, "Hz", "--frequency"),
+        band=None if args.band is None else (
+            parse_quantity(args.band[0], "Hz", "--band"), parse_quantity(args.band[1], "Hz", "--band")
+        ),
+        dc_level=None if args.dc is None else parse_quantity(args.dc, "V", "--dc"),
+        load_current=None if args.load is None else parse_quantity(args.load, "A", "--load"),
+        device=args.device,
+        lab=args.lab,
+        night=args.night,
+    )  # fmt: skip
+    if args.frequency is not None and args.band is not None:
+        raise BadInput("catalog query: --frequency and --band exclude each other")
+    con = connect(args.catalog)
+    try:
+        table = (
+            run_sql(con, args.sql, "query") if args.sql else summary(con, args.summary, filters)
+        )
+    finally:
+        con.close()
+    if args.json:
+        _print_json({"query": table.title, "columns": table.columns, "rows": table.records()})
+        return EXIT_OK
+    from rich.table import Table
+
+    shown = table.rows[: args.limit]
+    out = Table(title=f"{table.title} ({len(table.rows)} row(s))")
+    for column in table.columns:
+        out.add_column(column, overflow="fold")
+    for row in shown:
+        out.add_row(*(_catalog_cell(v) for v in row))
+    console = _console()
+    console.print(out)
+    if len(table.rows) > len(shown):
+        console.print(f"{len(table.rows) - len(shown)} more row(s): raise --limit or use --json")
+    return EXIT_OK
+
+
+def _catalog_cell(value: Any) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, float):
+        return f"{value:.6g}"
+    return _escape(value)
+
+
+def _add_catalog_parser(sub: Any) -> None:
+    p = sub.add_parser("catalog", help="many runs in one queryable Parquet dataset (DuckDB)")
+    csub = p.add_subparsers(dest="catalog_command", metavar="ACTION")
+    q = csub.add_parser("build", help="add every result file under folders (incremental)")
+    q.add_argument("dirs", nargs="+", metavar="DIR", help="folder(s) searched for result files")
+    q.add_argument("--into", required=True, metavar="CATALOG_DIR", help="the catalog folder")
+    q.add_argument("--json", action="store_true", help="print what was done as JSON")
+    q.set_defaults(func=cmd_catalog)
+    q = csub.add_parser("query", help="a named summary, or SQL over the views points and runs")
+    q.add_argument("catalog", metavar="CATALOG_DIR", help="a folder made by catalog build")
+    q.add_argument("summary", nargs="?", choices=("runs", "worst", "flags"), help="summary")
+    q.add_argument("--sql", help='SQL over the views points and runs, e.g. "SELECT ..."')
+    q.add_argument("--frequency", help="worst: at each run's planned frequency nearest this")
+    q.add_argument("--band", nargs=2, metavar=("LOW", "HIGH"), help="worst: planned frequencies in")
+    q.add_argument("--dc", help="only points at this DC level (e.g. 5 V)")
+    q.add_argument("--load", help="only points at this load current (e.g. 100 mA)")
+    q.add_argument("--device", help="only devices whose name contains this")
+    q.add_argument("--lab", help="only benches whose name contains this")
+    q.add_argument("--night", metavar="YYYY-MM-DD", help="only runs of this night")
+    q.add_argument("--limit", type=int, default=200, help="rows shown in the table (default 200)")
+    q.add_argument("--json", action="store_true", help="print the rows as JSON")
+    q.set_defaults(func=cmd_catalog)
+    p.set_defaults(func=cmd_catalog, catalog_command=None)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="benchseq",
@@ -917,6 +1031,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     q.set_defaults(func=cmd_sim_serve)
     _add_watch_parser(sub)
+    _add_catalog_parser(sub)
     _verbosity_options(parser, sub)
     return parser
 

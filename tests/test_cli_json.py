@@ -75,6 +75,8 @@ RECIPES: dict[str, Callable[[Folder], list[str]]] = {
     "compare": lambda f: ["compare", str(f.result), str(f.root / "replayed.h5")],
     # pyvisa-sim's own resources: no network, a bounded wait per resource
     "scan": lambda f: ["scan", "--visa-library", "@sim", "--timeout", "0.5"],
+    "catalog build": lambda f: ["catalog", "build", str(f.root), "--into", str(f.root / "cat")],
+    "catalog query": lambda f: ["catalog", "query", str(f.root / "cat"), "runs"],
 }
 
 # a refused input for each command (in-process: exit 2 or 1, JSON on stdout all the same)
@@ -88,6 +90,8 @@ REFUSED: dict[str, Callable[[Folder], list[str]]] = {
     "report": lambda f: ["report", str(f.root / "no-such-result.h5")],
     "compare": lambda f: ["compare", str(f.result), str(f.root / "no-such-result.h5")],
     "scan": lambda f: ["scan", "not an address"],
+    "catalog build": lambda f: ["catalog", "build", str(f.root / "absent"), "--into", "cat"],
+    "catalog query": lambda f: ["catalog", "query", str(f.root / "no-such-catalog"), "runs"],
 }
 
 
@@ -117,6 +121,8 @@ def test_stdout_is_the_json_alone(command: str, folder: Folder) -> None:
         assert _benchseq(folder, RECIPES["run"](folder)).returncode == 0
     if command == "compare" and not (folder.root / "replayed.h5").exists():
         assert _benchseq(folder, RECIPES["replay"](folder)).returncode == 0
+    if command == "catalog query" and not (folder.root / "cat").exists():
+        assert _benchseq(folder, RECIPES["catalog build"](folder)).returncode == 0
     done = _benchseq(folder, RECIPES[command](folder))
     assert "Traceback" not in done.stderr, done.stderr
     assert done.returncode == 0, done.stderr
