@@ -188,7 +188,6 @@ def test_faults_too_frequent_abort_safely_keep_points_and_resume(tmp_path: Path)
                     no_reply=0.33, garbage=0.33, disconnect=0.33
                 )
 
-    started = time.monotonic()
     outcome, path = start_run(
         str(PLANS / "demo.toml"),
         None,
@@ -197,7 +196,6 @@ def test_faults_too_frequent_abort_safely_keep_points_and_resume(tmp_path: Path)
         session_factory=keeper,
         emit=emit,
     )
-    assert time.monotonic() - started < 60
     assert outcome.status == "aborted"
     assert "SIM::scope" in outcome.reason
     assert all("verified" in step for step in outcome.safe_state), outcome.safe_state
