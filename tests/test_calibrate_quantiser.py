@@ -63,8 +63,7 @@ def test_fitted_amplitude_error_stays_within_the_bound(seed: int) -> None:
     for amplitude in AMPLITUDES:
         bound = float(quantiser_bound(amplitude))
         worst = max(
-            abs(_fitted_amplitude(_record(rng, amplitude)[1]) / amplitude - 1)
-            for _ in range(DRAWS)
+            abs(_fitted_amplitude(_record(rng, amplitude)[1]) / amplitude - 1) for _ in range(DRAWS)
         )
         assert worst <= bound, (amplitude, worst, bound)
 
@@ -81,4 +80,3 @@ def test_the_rectangular_standard_uncertainty_covers_the_scatter(seed: int) -> N
         )
         rms = float(np.sqrt(np.mean(errors**2)))
         assert rms <= float(quantiser_bound(amplitude)) / math.sqrt(3.0), (amplitude, rms)
-
