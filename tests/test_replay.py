@@ -191,21 +191,45 @@ def test_pchip_matches_scipy(n: int) -> None:
     np.testing.assert_allclose(ours(np.array([x[0] - 5, x[-1] + 5])), [y[0], y[-1]])
 
 
-def test_scope_noise_formula_is_the_simulated_scopes(demo_run: Path) -> None:
-    """The learned noise takes out the simulated scope's own noise: the same figure as the
-    simulated scope's channel set-up (sim/instruments.py)."""
+@pytest.mark.parametrize(("full_scale", "limit"), [(0.008, 20e6), (0.8, None)])
+def test_scope_noise_formula_is_what_the_simulated_scope_produces(
+    demo_run: Path, full_scale: float, limit: float | None
+) -> None:
+    """The learned device takes the simulated scope's own noise out with front_end_noise:
+    that figure must be what the simulated scope's records show. Records of a quiet node
+    (no ripple, no node noise) on a range where the noise is about a code: their variance
+    is the front end's plus the rounding's q²/12 (GUM, JCGM 100:2008, F.2.2.1; additive
+    here since the noise spans about a step). The sample standard deviation of N values
+    has relative standard uncertainty 1/√(2(N−1)) (normal noise; GUM, JCGM 100:2008, E.4.3);
+    each of several seeds lies within K = 4 of them."""
     from benchseq.drivers.session import open_session
+    from benchseq.sim.synth import NodeSignal, acquire_channel
 
     stored = read_stored(demo_run)
     session = open_session(stored.bench)
     try:
         sim = session.simulator
-        session.scope.configure_channel(2, 0.008, 0.0, "AC", 20e6)
+        session.scope.configure_channel(2, full_scale, 0.0, "AC", limit)
         setup = sim.scope.channel_setup(2)
-        expected = front_end_noise(sim.scenario.scope, setup.full_scale, 20e6)
-        assert setup.noise_rms == pytest.approx(expected, rel=1e-12)
+        expected = front_end_noise(sim.scenario.scope, setup.full_scale, setup.bandwidth_limit)
     finally:
         session.close()
+    quiet = NodeSignal(
+        dc=0.0, frequencies=np.array([]), phasors=np.array([], dtype=complex),
+        white_noise=0.0, flicker_corner=0.0, noise_bandwidth=1e6,
+    )  # fmt: skip
+    q = setup.full_scale / 256.0
+    n = 20000
+    for seed in range(5):
+        record = acquire_channel(
+            np.random.default_rng(seed), quiet, setup, probe=1.0, points=n,
+            sample_interval=1e-6, averages=1, synchronous=True, trigger_jitter=0.0,
+        )  # fmt: skip
+        measured = float(np.std(record.codes.astype(float), ddof=1)) * q
+        with_rounding = math.sqrt(expected**2 + q**2 / 12.0)
+        assert 0.5 < expected / q < 2.0  # the regime where the rounding adds q²/12
+        u = with_rounding / math.sqrt(2.0 * (n - 1))
+        assert abs(measured - with_rounding) <= 4.0 * u, (seed, measured, with_rounding)
 
 
 # -- (3) bounds stay bounds and are never reproduced values --------------------------------
