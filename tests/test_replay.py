@@ -294,6 +294,7 @@ def test_longer_captures_resolve_the_stored_bounds(short_run: Path, folder: Path
 
 
 # -- (6) re-analysis from stored waveforms -------------------------------------------------
+@pytest.mark.slow
 def test_reanalysis_gives_the_stored_numbers(demo_run: Path, folder: Path) -> None:
     outcome = reanalyse(demo_run, folder / "demo-reanalysed.h5")
     c = outcome.comparison

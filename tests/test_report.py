@@ -186,6 +186,7 @@ def test_csv_of_several_files_and_new_columns(
 
 
 # -- PDF and PNG ------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_pdf_pages(demo_file: Path, edge_files: dict[str, Path], tmp_path: Path) -> None:
     """Summary+rejection, phase, points (16 rows fit one page), conditions, flags+safety: 5;
     two files add one points page and one conditions page each: 7."""
@@ -198,6 +199,7 @@ def test_pdf_pages(demo_file: Path, edge_files: dict[str, Path], tmp_path: Path)
     assert two.startswith(b"%PDF-") and len(PDF_PAGE.findall(two)) == 7
 
 
+@pytest.mark.slow
 def test_png_is_the_stacked_plots(
     demo_file: Path, edge_files: dict[str, Path], tmp_path: Path
 ) -> None:

@@ -265,7 +265,9 @@ def _resume_completes(served: Served, out: Path, stored: list[int]) -> None:
     _check_safe(served, mark)
 
 
-@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM, signal.SIGHUP])
+@pytest.mark.parametrize(
+    "sig", [signal.SIGINT, pytest.param(signal.SIGTERM, marks=pytest.mark.slow), signal.SIGHUP]
+)
 def test_a_stop_signal_finishes_the_point_then_goes_to_the_safe_state(
     served: Served, tmp_path: Path, sig: signal.Signals
 ) -> None:
