@@ -200,7 +200,8 @@ def test_scope_noise_formula_is_what_the_simulated_scope_produces(
     (no ripple, no node noise) on a range where the noise is about a code: their variance
     is the front end's plus the rounding's q²/12 (GUM, JCGM 100:2008, F.2.2.1; additive
     here since the noise spans about a step). The sample standard deviation of N values
-    has relative standard uncertainty 1/√(2(N−1)) (normal noise; GUM, JCGM 100:2008, E.4.3);
+    has relative standard uncertainty 1/√(2(N−1)) (normal noise; GUM, JCGM 100:2008, E.4.3,
+    from memory);
     each of several seeds lies within K = 4 of them."""
     from benchseq.drivers.session import open_session
     from benchseq.sim.synth import NodeSignal, acquire_channel
