@@ -114,6 +114,7 @@ def learned_replay(demo_run: Path, folder: Path) -> Any:
 
 
 # -- (1) the learned device reproduces the stored curve ------------------------------------
+@pytest.mark.slow
 def test_learned_replay_reproduces_the_stored_curve(demo_run: Path, learned_replay: Any) -> None:
     """Acceptance: every detected stored point is replayed within k·u_c (k = 3)."""
     stored = read_results(demo_run)
@@ -128,6 +129,7 @@ def test_learned_replay_reproduces_the_stored_curve(demo_run: Path, learned_repl
     assert learned_replay.summary["max_abs_z"] == pytest.approx(float(z.max()))
 
 
+@pytest.mark.slow
 def test_learned_replay_floor_follows_the_stored_floor(demo_run: Path, learned_replay: Any) -> None:
     """The learned noise (stored floor minus the simulated scope's own noise) gives back a
     floor within a factor 1.5 of the stored one at every point (same capture settings)."""
@@ -257,6 +259,7 @@ def test_bounds_are_not_counted_reproduced(short_run: Path, folder: Path) -> Non
 
 
 # -- (4) a scenario's device: compared with the simulator's truth --------------------------
+@pytest.mark.slow
 def test_scenario_replay_agrees_with_the_simulators_truth(demo_run: Path, folder: Path) -> None:
     """--device demo, another seed: the replay is an independent measurement of the demo
     device. Above the AC-coupling region (≥ 200 Hz, as in test_run_sim) each value is
@@ -320,6 +323,7 @@ def test_reanalysis_without_waveforms_is_bad_input(short_run: Path, folder: Path
 
 
 # -- (7) what the replay records; bad inputs -----------------------------------------------
+@pytest.mark.slow
 def test_replay_file_records_what_it_replayed(demo_run: Path, learned_replay: Any) -> None:
     meta = read_meta(learned_replay.path)
     stored = read_meta(demo_run)
@@ -344,6 +348,7 @@ def test_replay_bad_inputs_name_what_is_wrong(demo_run: Path, folder: Path) -> N
         replay(demo_run, out=demo_run)
 
 
+@pytest.mark.slow
 def test_render_escapes_markup(learned_replay: Any) -> None:
     learned_replay.notes.append("[bold]not markup[/bold]")
     try:
