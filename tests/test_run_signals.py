@@ -295,6 +295,7 @@ def test_a_stop_signal_finishes_the_point_then_goes_to_the_safe_state(
 @pytest.mark.skipif(
     not Path("/proc/self/status").exists(), reason="reads signal delivery from /proc (Linux)"
 )
+@pytest.mark.slow
 def test_a_second_ctrl_c_abandons_the_point_but_still_reaches_the_safe_state(
     served: Served, tmp_path: Path
 ) -> None:
