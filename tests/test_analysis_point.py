@@ -41,6 +41,7 @@ def test_a_detected_point_gives_a_value_near_the_truth() -> None:
     assert row["is_bound"] is False and row["flags"] == "" and isinstance(row["ratio"], complex)
 
 
+@pytest.mark.slow
 def test_normalised_errors_have_unit_spread() -> None:
     """Over 150 points with the output at A/σ_c ≈ 10, (result − truth)/u has a spread near 1
     and no offset beyond chance (the Rice bias of the output amplitude removed)."""

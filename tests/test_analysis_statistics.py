@@ -96,6 +96,7 @@ def test_lower_bound_covers_every_true_amplitude() -> None:
     assert threshold_coverage < 0.85
 
 
+@pytest.mark.slow
 def test_bound_with_the_neighbour_floor_keeps_its_coverage() -> None:
     """Same coverage when σ_c comes from neighbour-bin fits, with the quantile widened to
     Student-t for the floor's degrees of freedom (pooled over 0…10 σ_c)."""

@@ -97,34 +97,73 @@ def _result(pin: float, pin_sigma: float, out: float, floor: float, bound: bool 
     )
 
 
-def test_top_up_follows_the_uncertainty_formula() -> None:
-    """u_n² = (20/ln 10)²·[(σ_c/A_out)² + (σ_pin/A_pin)²] falls as 1/T: the pool needs
-    T·u_n²/u_t²; the top-up is the whole records making that up, with the margin."""
+def _after(u: float, records: int, more: int) -> float:
+    """The noise part of the uncertainty after ``more`` records on ``records``: a fitted
+    amplitude's variance falls as 1/T for white noise (Kay, Estimation Theory, ch. 3), and
+    T grows with the count of equal records."""
+    return u * math.sqrt(records / (records + more))
+
+
+@pytest.mark.parametrize(
+    ("pin", "pin_sigma", "out", "floor", "records", "target"),
+    [
+        (0.05, 5e-6, 5e-6, 1e-7, 4, 0.1),
+        (0.05, 5e-6, 5e-6, 1e-7, 1, 0.05),
+        (0.2, 1e-4, 1e-4, 4e-6, 16, 0.2),
+        (0.01, 1e-6, 2e-6, 1e-7, 3, 0.3),
+        (1.0, 1e-5, 3e-5, 2e-6, 7, 0.5),
+    ],
+)
+def test_top_up_meets_the_target_without_asking_for_much_more(
+    pin: float, pin_sigma: float, out: float, floor: float, records: int, target: float
+) -> None:
+    """u_n = (20/ln 10)·√((σ_c/A_out)² + (σ_pin/A_pin)²) (dB from nepers; the two
+    relative uncertainties in quadrature, GUM JCGM 100 §5.1.2). With the records asked for,
+    the 1/T law brings u_n to the target; the pool asked for is at most 10 % (plus one
+    record) larger than the one that meets the target exactly (a stated margin, no more)."""
+    u = DB * math.hypot(floor / out, pin_sigma / pin)
+    assert u > target  # the case needs a top-up
+    got = batches.top_up(_result(pin, pin_sigma, out, floor), records, records * 1.001,
+                         1.0, 0.002, target, 1e6, 1e-4)  # fmt: skip
+    assert not got.capped and not got.detecting
+    assert _after(u, records, got.records) <= target
+    exact = records * (u / target) ** 2  # the pool that meets the target exactly
+    assert records + got.records <= 1.1 * exact + 1
+
+
+def test_top_up_nothing_when_met_and_what_fits_under_the_cap() -> None:
+    # met already (u_n = 0.087 dB < 0.1 dB): nothing more
+    met = batches.top_up(_result(0.05, 5e-6, 5e-5, 1e-8), 4, 4.0, 1.0, 0.002, 0.1, 10.0, 1e-3)
+    assert met.records == 0
+    # the time cap: 8.5 s of 10 s used, records of 1 s + 2 ms re-arm: one more fits, flagged
     res = _result(0.05, 5e-6, 5e-6, 1e-7)
-    u = DB * math.hypot(1e-7 / 5e-6, 5e-6 / 0.05)  # 0.195 dB on 4 records
-    got = batches.top_up(res, 4, 4.01, 1.0, 0.002, 0.1, 100.0, 1e-4)
-    want = math.ceil(4 * ((u / 0.1) ** 2 * batches.TOP_UP_MARGIN - 1))
-    assert got.records == want and not got.capped and not got.detecting
-    # met already: nothing more
-    assert (
-        batches.top_up(_result(0.05, 5e-6, 5e-5, 1e-8), 4, 4.0, 1.0, 0.002, 0.1, 10.0, 1e-3).records
-        == 0
-    )
-    # the time cap: what still fits, flagged
     capped = batches.top_up(res, 4, 8.5, 1.0, 0.002, 0.1, 10.0, 1e-4)
     assert capped.records == 1 and capped.capped
-    # a calibration uncertainty takes its share of the target first
+
+
+def test_top_up_leaves_the_calibrations_share_of_the_target() -> None:
+    """A calibration uncertainty u_cal (relative) adds in quadrature (GUM §5.1.2): after the
+    top-up √(u_n² + (20/ln 10·u_cal)²) meets the target; without the share it would not."""
+    u = DB * math.hypot(1e-7 / 5e-6, 5e-6 / 0.05)
+    res = _result(0.05, 5e-6, 5e-6, 1e-7)
+    plain = batches.top_up(res, 4, 4.01, 1.0, 0.002, 0.1, 100.0, 1e-4)
     cal = batches.top_up(res, 4, 4.01, 1.0, 0.002, 0.1, 100.0, 1e-4, calibration_uncertainty=0.005)
-    budget = 0.1**2 - (DB * 0.005) ** 2
-    assert cal.records == math.ceil(4 * (u**2 / budget * batches.TOP_UP_MARGIN - 1))
+    assert math.hypot(_after(u, 4, cal.records), DB * 0.005) <= 0.1
+    assert math.hypot(_after(u, 4, plain.records), DB * 0.005) > 0.1
+    assert cal.records > plain.records
 
 
 def test_top_up_to_detect_aims_at_one_db_at_the_expected_level() -> None:
+    """A bound: the floor σ_c must fall to 1 dB (ln 10/20 = 0.115 in relative terms) of the
+    output it expects, the larger of expected_ratio·A_pin and four times the floor (the
+    value threshold, k = 4); the 1/T law gives the records."""
     res = _result(0.05, 5e-6, 0.0, 1e-7, bound=True)
     got = batches.top_up(res, 2, 2.0, 1.0, 0.0, 0.1, 100.0, expected_ratio=1e-5)
     goal = max(1e-5 * 0.05, 4 * 1e-7)
     assert got.detecting
-    assert got.records == math.ceil(2 * ((1e-7 / (0.115 * goal)) ** 2 * batches.TOP_UP_MARGIN - 1))
+    one_db = math.log(10) / 20
+    assert _after(1e-7, 2, got.records) <= one_db * goal
+    assert 2 + got.records <= 1.1 * 2 * (1e-7 / (one_db * goal)) ** 2 + 1
 
 
 def test_noise_guess_splits_white_and_coloured() -> None:

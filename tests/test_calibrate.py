@@ -86,6 +86,7 @@ def lab(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
 
 
 # -- (1) the calibration measures the simulator's configured mismatch ------------------------
+@pytest.mark.slow
 def test_calibration_measures_the_scenarios_mismatch(lab: dict[str, Any]) -> None:
     """Every point's H_cal equals the ScopeTruth mismatch (+0.3 % and +0.5° on channel 2, the
     pin probe 10.02:1 where the bench says 10:1) within 3 standard uncertainties, in gain and
@@ -105,6 +106,7 @@ def test_calibration_measures_the_scenarios_mismatch(lab: dict[str, Any]) -> Non
     assert DB * math.log(abs(truth[0])) == pytest.approx(0.04337, abs=1e-5)
 
 
+@pytest.mark.slow
 def test_calibration_covers_the_plan_with_guard_points(lab: dict[str, Any]) -> None:
     """The sweep goes one guard step beyond each end of the plan (a run's frequency may move
     by the plan's tolerance, its refined frequency a little more), records the ranges it used,
@@ -141,6 +143,7 @@ def _mismatch_error(path: Path) -> tuple[float, float, float, int]:
     return DB * mean.real, math.degrees(mean.imag), 1.0 / math.sqrt(np.sum(weight)), len(used)
 
 
+@pytest.mark.slow
 def test_acceptance_calibration_removes_the_channel_mismatch(lab: dict[str, Any]) -> None:
     """plans/demo.toml with the calibration applied: the systematic ratio error against the
     simulator's truth is under 0.02 dB and 0.2°; without it, the scenario's mismatch shows."""
@@ -152,6 +155,7 @@ def test_acceptance_calibration_removes_the_channel_mismatch(lab: dict[str, Any]
     assert abs(cal_db) < 0.02 and abs(cal_deg) < 0.2, (cal_db, cal_deg)
 
 
+@pytest.mark.slow
 def test_calibrated_run_records_what_it_applied(lab: dict[str, Any]) -> None:
     meta = read_meta(lab["calibrated"])
     applied = meta["calibration"]
@@ -168,6 +172,7 @@ def test_calibrated_run_records_what_it_applied(lab: dict[str, Any]) -> None:
 
 
 # -- (3) CAL.h5: round trip, atomic write, no overwrite without force ----------------------------
+@pytest.mark.slow
 def test_file_round_trip_and_self_description(lab: dict[str, Any]) -> None:
     loaded = lab["result"].loaded
     again = cal.load_calibration(loaded.path)
@@ -190,6 +195,7 @@ def test_file_round_trip_and_self_description(lab: dict[str, Any]) -> None:
         assert "calibration" in h5["meta/bench_text"][()].decode()
 
 
+@pytest.mark.slow
 def test_no_overwrite_without_force_and_atomic_replace(
     lab: dict[str, Any], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
@@ -236,6 +242,7 @@ def test_unreadable_files_are_bad_input(tmp_path: Path) -> None:
 
 
 # -- (4) coverage and conditions flagged ---------------------------------------------------------
+@pytest.mark.slow
 def test_uncovered_frequencies_and_other_conditions_are_flagged_also_after_resume(
     lab: dict[str, Any], tmp_path: Path
 ) -> None:
@@ -288,6 +295,7 @@ def test_uncovered_frequencies_and_other_conditions_are_flagged_also_after_resum
     assert len(applied["mismatches"]) == 2
 
 
+@pytest.mark.slow
 def test_condition_mismatches_names_each_difference(lab: dict[str, Any]) -> None:
     loaded = lab["result"].loaded
     bench = load_bench(None)
@@ -343,6 +351,7 @@ def test_missing_calibration_is_bad_input_before_anything_switches_on(tmp_path: 
     assert keeper.sessions == [] and not (tmp_path / "r.h5").exists()
 
 
+@pytest.mark.slow
 def test_changed_calibration_refuses_resume_with_nothing_switched_on(
     lab: dict[str, Any], tmp_path: Path
 ) -> None:

@@ -117,6 +117,7 @@ def _plain(text: str) -> str:
 
 
 # -- frequencies as planned ------------------------------------------------------------------
+@pytest.mark.slow
 def test_close_planned_frequencies_stay_distinct_and_within_tolerance(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -213,6 +214,7 @@ def test_amplitude_units_carry_their_convention(run: tuple[Path, Path], tmp_path
 
 
 # -- smaller untruths ------------------------------------------------------------------------
+@pytest.mark.slow
 def test_reanalysis_names_a_calibration_only_when_one_was_applied(
     run: tuple[Path, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -186,6 +186,7 @@ def test_csv_of_several_files_and_new_columns(
 
 
 # -- PDF and PNG ------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_pdf_pages(demo_file: Path, edge_files: dict[str, Path], tmp_path: Path) -> None:
     """Summary+rejection, phase, points (16 rows fit one page), conditions, flags+safety: 5;
     two files add one points page and one conditions page each, and their differences: 8."""
@@ -198,6 +199,7 @@ def test_pdf_pages(demo_file: Path, edge_files: dict[str, Path], tmp_path: Path)
     assert two.startswith(b"%PDF-") and len(PDF_PAGE.findall(two)) == 8
 
 
+@pytest.mark.slow
 def test_png_is_the_stacked_plots(
     demo_file: Path, edge_files: dict[str, Path], tmp_path: Path
 ) -> None:
@@ -387,8 +389,10 @@ def test_floor_and_repeats_when_present(edge_files: dict[str, Path], tmp_path: P
 
 
 def test_demo_verdict_agrees_with_the_simulators_truth(demo_file: Path) -> None:
-    """The simulator's true rejection judged by the same mask gives the same status, and the
-    measured margins are within 1 dB of the true margins (the demo targets 0.2 dB)."""
+    """The simulator's true rejection judged by the same mask gives the same status. A
+    detected point's margin differs from the true margin by its rejection error: within
+    K = 4 of its stated standard uncertainty (an outlier limit); a point under the floor
+    has a lower bound for its value, so its margin is at most the true one."""
     source = gather([demo_file]).sources[0]
     truth = read_truth(demo_file).set_index("point_id").loc[source.frame["point_id"]]
     true_frame = source.frame.assign(
@@ -396,9 +400,13 @@ def test_demo_verdict_agrees_with_the_simulators_truth(demo_file: Path) -> None:
     )
     expected = mask_verdict(source.mask, true_frame)
     assert source.verdict.status == expected.status == "pass"
-    np.testing.assert_allclose(
-        source.verdict.points["margin_db"], expected.points["margin_db"], atol=1.0
-    )
+    measured = source.verdict.points["margin_db"].to_numpy()
+    true = expected.points["margin_db"].to_numpy()
+    bound = source.frame["is_bound"].to_numpy(dtype=bool)
+    u = source.frame["uncertainty_db"].to_numpy(dtype=float)
+    judged = np.isfinite(true)
+    assert np.all(np.abs(measured - true)[judged & ~bound] <= 4.0 * u[judged & ~bound])
+    assert np.all(measured[judged & bound] <= true[judged & bound] + 1e-9)
 
 
 def test_markdown_names_its_pictures(demo_file: Path, tmp_path: Path) -> None:

@@ -199,6 +199,7 @@ def test_near_the_ceiling_values_are_true_and_bounds_hold(tmp_path: Path) -> Non
     assert np.mean(bounds["bound_db"] <= bounds["rejection_db_true"]) >= 0.95
 
 
+@pytest.mark.slow
 def test_a_high_rejection_point_measured_first_uses_the_plans_time(tmp_path: Path) -> None:
     """A single point with nothing measured before it (the run's first guess is 40 dB):
     at 5.6 kHz (truth 115 dB) it is found and reported as a value within 4u; at 1 kHz

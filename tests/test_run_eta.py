@@ -6,7 +6,9 @@ levels so the second block repeats the first one's frequencies)."""
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -56,21 +58,37 @@ def test_estimates_learn_from_measured_points() -> None:
     assert eta.left({other}) == pytest.approx(10 * float(eta.estimate[other]))
 
 
+SEEDS = [1, 2, 3, 4]
+K = 4.0  # coverage factor of the limit
+
+
+@pytest.mark.slow
 def test_shown_bench_time_left_follows_what_the_rest_took(tmp_path: Path) -> None:
-    """After the first block the figure shown is within 25 % of the bench time the second
-    block then took; the check's cycle-bound estimate of the same points is far below it."""
+    """After the first block the figure shown predicts the bench time the second block then
+    takes. What a block takes varies from run to run (its captures top up on noise), so no
+    prediction can beat that scatter: its standard deviation s over the seeds (sample
+    standard deviation) is the stated uncertainty of one block's time, and the prediction
+    (learnt from one block) and the outcome (another) differ by √2·s at k = 1; each seed
+    must be within K·√2·s. The check's cycle-bound estimate of the same points, which
+    ignores top-ups and settling overheads, is far below what they took."""
     (tmp_path / "eta.toml").write_text(PLAN, encoding="utf-8")
-    events = []
-    outcome, path = start_run(
-        str(tmp_path / "eta.toml"), None, str(tmp_path / "eta.h5"), emit=events.append
-    )
-    assert outcome.status == "complete"
-    rows = read_results(path).sort_values("point_id")
-    stored = [e for e in events if e.kind == "point_stored"]
-    assert len(stored) == 10
-    shown = stored[4].bench_time_left  # after the 4.5 V block
-    actual = float(rows["bench_time"].iloc[5:].sum())
-    assert abs(shown / actual - 1) <= 0.25, (shown, actual)
+    shown: list[float] = []
+    actual: list[float] = []
+    for seed in SEEDS:
+        events: list[Any] = []
+        outcome, path = start_run(
+            str(tmp_path / "eta.toml"), None, str(tmp_path / f"eta-{seed}.h5"),
+            emit=events.append, seed=seed,
+        )  # fmt: skip
+        assert outcome.status == "complete"
+        rows = read_results(path).sort_values("point_id")
+        stored = [e for e in events if e.kind == "point_stored"]
+        assert len(stored) == 10
+        assert stored[-1].bench_time_left == 0.0
+        shown.append(float(stored[4].bench_time_left))  # after the 4.5 V block
+        actual.append(float(rows["bench_time"].iloc[5:].sum()))
+    u = math.sqrt(2.0) * float(np.std(actual, ddof=1))
+    for seed, predicted, took in zip(SEEDS, shown, actual, strict=True):
+        assert abs(predicted - took) <= K * u, (seed, predicted, took, u)
     eta = BenchTimeLeft(_plan(), _plan().expand(), 0.1)
-    assert float(np.sum(eta.estimate[5:])) < 0.8 * actual
-    assert stored[-1].bench_time_left == 0.0
+    assert float(np.sum(eta.estimate[5:])) < 0.8 * min(actual)

@@ -16,7 +16,6 @@ import subprocess
 import sys
 import tempfile
 import threading
-import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -299,8 +298,9 @@ def _free_port() -> int:
 
 
 @contextlib.contextmanager
-def _silent_server() -> Iterator[int]:
-    """A TCP server on 127.0.0.1 that accepts and reads everything, and never answers."""
+def _silent_server(heard: bytearray) -> Iterator[int]:
+    """A TCP server on 127.0.0.1 that accepts and reads everything (into ``heard``), and
+    never answers."""
     listener = socket.socket()
     listener.bind(("127.0.0.1", 0))
     listener.listen(8)
@@ -316,7 +316,7 @@ def _silent_server() -> Iterator[int]:
                 connections.append(conn)
             for conn in list(connections):
                 with contextlib.suppress(TimeoutError, OSError):
-                    conn.recv(65536)
+                    heard.extend(conn.recv(65536))
 
     worker = threading.Thread(target=serve, daemon=True)
     worker.start()
@@ -332,21 +332,20 @@ def _silent_server() -> Iterator[int]:
 
 def _unanswered(
     capsys: pytest.CaptureFixture[str], tmp_path: Path, port: int
-) -> tuple[int, str, Path, float]:
+) -> tuple[int, str, Path]:
     plan = _plan(tmp_path, '"1 kHz"')
     bench = _tcp_bench(tmp_path, port)
     out = tmp_path / "unanswered.h5"
-    started = time.monotonic()
     code, _, err = _cli(capsys, "run", str(plan), "--bench", str(bench), "--out", str(out))
-    return code, err, out, time.monotonic() - started
+    return code, err, out
 
 
 def test_nobody_listening_fails_fast_naming_the_instrument(
     tmp_path: Path, opened: Keeper, capsys: pytest.CaptureFixture[str]
 ) -> None:
     port = _free_port()
-    code, err, out, took = _unanswered(capsys, tmp_path, port)
-    assert code == 1 and took < 15
+    code, err, out = _unanswered(capsys, tmp_path, port)
+    assert code == 1
     assert "generator" in err and f"TCPIP::127.0.0.1::{port}::SOCKET" in err
     assert "refused" in err
     if out.exists():
@@ -356,10 +355,13 @@ def test_nobody_listening_fails_fast_naming_the_instrument(
 def test_a_server_that_never_replies_fails_within_its_timeouts(
     tmp_path: Path, opened: Keeper, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    """1 s timeouts and three tries of *IDN?: well under 20 s, naming instrument and command."""
-    with _silent_server() as port:
-        code, err, out, took = _unanswered(capsys, tmp_path, port)
-    assert code == 1 and took < 20, (code, took)
+    """1 s timeouts and a bounded number of tries of *IDN? (counted at the server, not
+    timed): the run gives up, naming instrument and command."""
+    heard = bytearray()
+    with _silent_server(heard) as port:
+        code, err, out = _unanswered(capsys, tmp_path, port)
+    assert code == 1, code
+    assert 1 <= heard.count(b"*IDN?") <= 3, bytes(heard)
     assert "generator" in err and f"TCPIP::127.0.0.1::{port}::SOCKET" in err
     assert "*IDN?" in err
     if out.exists():
@@ -413,7 +415,7 @@ def test_the_result_file_of_an_unanswered_bench_says_aborted(
     """The result file is created before the bench is opened; when the bench then does not
     answer, that file must not be left saying "running": it says aborted, and why."""
     port = _free_port()
-    code, _, out, _ = _unanswered(capsys, tmp_path, port)
+    code, _, out = _unanswered(capsys, tmp_path, port)
     assert code == 1 and out.exists()
     meta = read_meta(out)
     assert meta["status"] == "aborted", meta["status"]

@@ -247,6 +247,7 @@ def _switch_off_by_hand(served: Served) -> None:
 
 
 # -- outages over TCP ------------------------------------------------------------------------------
+@pytest.mark.slow
 def test_a_short_outage_during_a_point_is_ridden_through_over_tcp(
     served: Served, proxy: OutageProxy, tmp_path: Path
 ) -> None:
@@ -274,6 +275,7 @@ def test_a_short_outage_during_a_point_is_ridden_through_over_tcp(
         assert topic in caution, topic
 
 
+@pytest.mark.slow
 def test_an_outage_outlasting_the_patience_and_the_safe_state_exits_1_and_says_so(
     served: Served, proxy: OutageProxy, tmp_path: Path
 ) -> None:
@@ -297,6 +299,7 @@ def test_an_outage_outlasting_the_patience_and_the_safe_state_exits_1_and_says_s
     _switch_off_by_hand(served)
 
 
+@pytest.mark.slow
 def test_an_outage_that_ends_during_the_safe_state_still_makes_the_bench_safe(
     served: Served, proxy: OutageProxy, tmp_path: Path
 ) -> None:

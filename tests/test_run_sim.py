@@ -12,17 +12,20 @@ from typing import Any
 import numpy as np
 import pytest
 from fakebench import Keeper
+from scipy import stats
 
+from benchseq.bench import load_bench
 from benchseq.runner import RefusedPlan, resume_run, start_run
 from benchseq.stopping import StopControl
 from benchseq.store import read_meta, read_results, read_truth
 
 PLANS = Path(__file__).resolve().parent.parent / "plans"
+K = 4.0  # coverage factor of the per-point outlier limits
 
 
 def _tightened_demo(folder: Path) -> Path:
-    """The demo plan aiming at 0.1 dB: a 0.3 dB agreement check is then three standard
-    uncertainties wide (with the demo's 0.2 dB it would fail by chance at some points)."""
+    """The demo plan aiming at 0.1 dB (the demo's own 0.2 dB would also do: the checks
+    below are in units of each point's stated uncertainty)."""
     text = (PLANS / "demo.toml").read_text(encoding="utf-8")
     assert 'target_uncertainty = "0.2 dB"' in text
     plan = folder / "demo-0.1dB.toml"
@@ -79,29 +82,67 @@ def _with_truth(path: Path) -> Any:
 def test_rejection_agrees_with_the_simulators_truth(
     which: str, demo_run: tuple[Path, Keeper], amplifier_run: Path
 ) -> None:
-    """Every detected point whose true rejection is at most 80 dB is within 0.3 dB of the
-    simulator's nodal-analysis truth, and within 4 standard uncertainties (+0.05 dB: the
-    uncalibrated channel mismatch of the demo scope, 0.3 % and 0.5°, is not in the budget)."""
+    """Every detected point whose true rejection is at most 80 dB is within K = 4 of its
+    stated standard uncertainties (an outlier limit; the budget includes the uncalibrated
+    channels' match) of the simulator's nodal-analysis truth. The coverage over several
+    seeds is judged in test_rejection_coverage_over_seeds (slow tier)."""
     frame = _with_truth(demo_run[0] if which == "demo" else amplifier_run)
     band = frame[(frame["rejection_db_true"] <= 80) & ~frame["is_bound"]]
     assert len(band) >= 5
-    error = band["rejection_db"] - band["rejection_db_true"]
-    assert np.all(np.abs(error) < 0.3), error.to_numpy()
-    assert np.all(np.abs(error) < 4 * band["uncertainty_db"] + 0.05)
+    error = (band["rejection_db"] - band["rejection_db_true"]).to_numpy()
+    assert np.all(np.abs(error) <= K * band["uncertainty_db"].to_numpy()), error
+
+
+COVERAGE_SEEDS = [11, 12, 13]
+
+
+@pytest.mark.slow
+def test_rejection_coverage_over_seeds(tmp_path: Path) -> None:
+    """Over several seeds of the demo run, a detected point's error against the truth
+    exceeds twice its stated standard uncertainty (k = 2, 95.45 % for a normal error; GUM
+    JCGM 100 §6.2, G.1.3) no more often than chance allows: the count of misses is at most
+    the 99.9 % quantile of Binomial(M, 0.0455) (scipy.stats.binom), M the points judged; and
+    none is beyond the K = 4 outlier limit."""
+    plan = _tightened_demo(tmp_path)
+    errors: list[float] = []
+    uncertainties: list[float] = []
+    for seed in COVERAGE_SEEDS:
+        outcome, path = start_run(str(plan), None, str(tmp_path / f"cov-{seed}.h5"), seed=seed)
+        assert outcome.status == "complete"
+        frame = _with_truth(path)
+        band = frame[(frame["rejection_db_true"] <= 80) & ~frame["is_bound"]]
+        errors += list(band["rejection_db"] - band["rejection_db_true"])
+        uncertainties += list(band["uncertainty_db"])
+    e, u = np.abs(np.array(errors)), np.array(uncertainties)
+    m = e.size
+    assert m >= 30
+    misses = int(np.sum(e > 2.0 * u))
+    allowed = int(stats.binom.ppf(0.999, m, 2.0 * stats.norm.sf(2.0)))
+    print(f"{misses} of {m} points beyond 2u (allowed {allowed})")
+    assert misses <= allowed, (misses, m, allowed)
+    assert np.all(e <= K * u)
 
 
 @pytest.mark.parametrize("which", ["demo", "amplifier"])
 def test_pin_ripple_reaches_target(
     which: str, demo_run: tuple[Path, Keeper], amplifier_run: Path
 ) -> None:
-    """The generator is set through the injector model and trimmed: the TRUE pin ripple
-    (the simulator's) is within 5 % of target at every point, including those near the
-    scope's AC-coupling corner (whose loss the run measures and takes out)."""
+    """The generator is set through the injector model and trimmed until the measured pin
+    ripple is within 2 % of target (the trim rule, DEVELOPERS.md), plus the measurement's
+    own noise (K = 4 times its stated σ). The TRUE pin ripple (the simulator's) may differ
+    from the measured one by the pin channel's stated tolerances, the bench file's scope
+    gain accuracy and pin probe accuracy (bounds, so they add), at every point, including
+    those near the scope's AC-coupling corner (whose loss the run measures and takes out)."""
     frame = _with_truth(demo_run[0] if which == "demo" else amplifier_run)
-    ratio = np.abs(frame["pin_true"].to_numpy()) / frame["ripple_target"].to_numpy()
-    assert np.all(np.abs(ratio - 1) < 0.05), ratio
-    measured = np.abs(frame["pin"].to_numpy()) / frame["ripple_target"].to_numpy()
-    assert np.all(np.abs(measured - 1) < 0.05), measured
+    tolerances = load_bench(None if which == "demo" else "sim:amplifier").scope.tolerances()
+    target = frame["ripple_target"].to_numpy()
+    pin = np.abs(frame["pin"].to_numpy())
+    noise = K * frame["pin_sigma"].to_numpy() / pin
+    measured = pin / target
+    assert np.all(np.abs(measured - 1) <= 0.02 + noise), measured
+    true = np.abs(frame["pin_true"].to_numpy()) / target
+    limit = 0.02 + noise + tolerances.gain_pin + tolerances.probe_pin
+    assert np.all(np.abs(true - 1) <= limit), (true, limit)
 
 
 def test_amplifier_bounds_are_at_or_below_the_truth(amplifier_run: Path) -> None:

@@ -202,6 +202,7 @@ def test_bounds_on_a_noisy_board_stay_at_or_below_ngspice_truth(tmp_path: Path) 
     assert e.size == 0 or np.max(np.abs(e)) <= 4.0
 
 
+@pytest.mark.slow
 def test_rehearsal_file_records_the_netlist_scenario(rehearsals: list[Path]) -> None:
     from benchseq.store import read_meta
 
@@ -411,6 +412,7 @@ def device_alone_rejection(netlist: Path, pin_dc: float, current: float, freqs: 
     return -20.0 * np.log10(np.abs(result["out"]))
 
 
+@pytest.mark.slow
 def test_report_model_overlay_draws_ngspice_prediction_and_difference(
     rehearsals: list[Path], tmp_path: Path
 ) -> None:
@@ -438,6 +440,7 @@ def test_report_model_overlay_draws_ngspice_prediction_and_difference(
     assert "model-curve-0" in text  # the predicted curve's SVG group
 
 
+@pytest.mark.slow
 def test_report_model_errors_are_bad_input(rehearsals: list[Path], tmp_path: Path) -> None:
     out = str(tmp_path / "r.html")
     base = ["report", str(rehearsals[0]), "-o", out, "--model", str(NETLIST)]

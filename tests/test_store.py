@@ -13,7 +13,7 @@ import json
 import math
 import os
 import struct
-import time
+import threading
 
 import h5py
 import numpy as np
@@ -256,10 +256,24 @@ def test_reader_holding_old_file_sees_it_consistent_and_never_blocks_writer(tmp_
     writer = write_run(path, 3)
     with h5py.File(path, "r", locking=False) as old:
         before = old["points/frequency"][:]
-        started = time.monotonic()
-        for i in range(3, 8):
-            writer.append(i, row_for(i))
-        assert time.monotonic() - started < 10.0
+        appended = threading.Event()
+        failed: list[BaseException] = []
+
+        def append_more() -> None:
+            try:
+                for i in range(3, 8):
+                    writer.append(i, row_for(i))
+            except BaseException as exc:  # handed to the test's thread
+                failed.append(exc)
+            finally:
+                appended.set()
+
+        worker = threading.Thread(target=append_more, daemon=True)
+        worker.start()
+        # a deadline for a writer that would wait for the reader (it never should)
+        assert appended.wait(timeout=120.0), "the writer waited for the reader"
+        worker.join(timeout=10.0)
+        assert not failed, failed
         assert old["points/point_id"].shape == (3,)
         assert np.array_equal(old["points/frequency"][:], before, equal_nan=True)
         assert old.attrs["point_rows"] == 3

@@ -136,6 +136,7 @@ class Writer:
         self.wait(timeout=10)
 
 
+@pytest.mark.slow
 def test_sigkill_at_random_moments_loses_no_acknowledged_point(tmp_path):
     """12 SIGKILLs at random times and at write boundaries; then resume completes exactly."""
     script = tmp_path / "writer.py"

@@ -340,6 +340,7 @@ def test_replay_and_report_never_overwrite_their_input(
 
 
 # -- how a run that ended early reads ---------------------------------------------------
+@pytest.mark.slow
 def test_a_killed_run_reads_as_interrupted_and_its_sessions_are_recorded(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
