@@ -8,6 +8,7 @@ Library code: returns rich renderables, never prints."""
 from __future__ import annotations
 
 import math
+import os
 from typing import Any
 
 import numpy as np
@@ -284,6 +285,8 @@ def is_calibration_file(path: str) -> bool:
     """True when ``path`` is an HDF5 file written by `benchseq calibrate`."""
     from benchseq.calibrate import FORMAT, h5py
 
+    if not os.path.isfile(path):  # a FIFO or device would block the open; the reader refuses it
+        return False
     try:
         with h5py.File(path, "r", locking=False) as h5:
             return h5.attrs.get("format") == FORMAT
