@@ -50,6 +50,7 @@ ripple = ["200 mVpp"]
 load = ["20 mA"]
 frequency = ["200 Hz", "1 kHz", "10 kHz", "100 kHz"]
 [settle]
+wait = "1.5 s"                  # each point lasts long enough to be signalled during it
 after_operating_point = "0.2 s"
 [capture]
 max_time = "1 s"
@@ -191,18 +192,24 @@ def _wait_for_points(proc: subprocess.Popen[bytes], out: Path, count: int) -> in
     pytest.fail(f"no {count} points stored within {RUN_LIMIT_S} s")
 
 
-def _wait_for_second_point(served: Served, proc: subprocess.Popen[bytes], out: Path) -> None:
-    """Until point 1 (1 kHz) is in progress: point 0 stored, then the generator moved to
-    about 1 kHz (the first thing a point does; its capture takes over a second here)."""
+def _wait_for_second_point(
+    served: Served, proc: subprocess.Popen[bytes], out: Path, since: int
+) -> None:
+    """Until point 1 (1 kHz) is in progress: point 0 stored and the generator moved to about
+    1 kHz (the first thing a point does; the plan's 1.5 s least wait then holds the point),
+    not yet to 10 kHz. ``since``: the log entries before this run started."""
     _wait_for_points(proc, out, 1)
-    mark = len(served.entries())
     deadline = time.monotonic() + RUN_LIMIT_S
     while time.monotonic() < deadline:
-        for entry in served.entries()[mark:]:
-            if entry["role"] == "generator" and entry["what"] == "frequency":
-                assert abs(float(entry["value"]) / 1000.0 - 1.0) < 0.01, entry
-                assert _points_in_journal(out) == 1
-                return
+        told = [
+            float(entry["value"])
+            for entry in served.entries()[since:]
+            if entry["role"] == "generator" and entry["what"] == "frequency"
+        ]
+        if any(abs(f / 1000.0 - 1.0) < 0.01 for f in told):
+            assert not any(abs(f / 10000.0 - 1.0) < 0.01 for f in told), told
+            assert _points_in_journal(out) == 1
+            return
         assert proc.poll() is None, "the run ended before it was signalled"
         time.sleep(0.02)
     pytest.fail("point 1 did not start")
@@ -279,7 +286,7 @@ def test_a_stop_signal_finishes_the_point_then_goes_to_the_safe_state(
     mark = len(served.entries())
     proc, text = _start(served, out)
     try:
-        _wait_for_second_point(served, proc, out)
+        _wait_for_second_point(served, proc, out, mark)
         os.kill(proc.pid, sig)
         proc.wait(timeout=RUN_LIMIT_S)
     finally:
@@ -310,7 +317,7 @@ def test_a_second_ctrl_c_abandons_the_point_but_still_reaches_the_safe_state(
     mark = len(served.entries())
     proc, text = _start(served, out)
     try:
-        _wait_for_second_point(served, proc, out)
+        _wait_for_second_point(served, proc, out, mark)
         os.kill(proc.pid, signal.SIGINT)
         _wait_until_delivered(proc, signal.SIGINT)
         os.kill(proc.pid, signal.SIGINT)
