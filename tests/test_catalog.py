@@ -164,6 +164,7 @@ def _frames(results: Path) -> pd.DataFrame:
     return pd.concat(parts, ignore_index=True)
 
 
+@pytest.mark.slow
 def test_build_counts_every_point_and_marks_unfinished_runs(
     campaign: dict, capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -196,6 +197,7 @@ def test_build_counts_every_point_and_marks_unfinished_runs(
     assert "points/device_key=fv-33-regulator-evaluation-board/night=2026-03-02" in folders
 
 
+@pytest.mark.slow
 def test_worst_matches_pandas_groupby(
     campaign: dict, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -3,6 +3,7 @@ the injector table's phase, and a user's own scenario file named by a bench file
 
 from __future__ import annotations
 
+import contextlib
 import json
 import re
 import socket
@@ -126,6 +127,8 @@ def idn_server() -> Iterator[int]:
     thread = threading.Thread(target=serve, daemon=True)
     thread.start()
     yield port
+    with contextlib.suppress(OSError):  # wakes the accept() the thread is blocked in
+        server.shutdown(socket.SHUT_RDWR)
     server.close()
     thread.join(10.0)
 

@@ -74,6 +74,7 @@ def _points(printed: str) -> list[dict]:
     return data["comparisons"][0]["points"]
 
 
+@pytest.mark.slow
 def test_same_device_two_seeds_differ_no_more_than_coverage_allows(
     runs: dict[str, Path], capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -100,6 +101,7 @@ def test_same_device_two_seeds_differ_no_more_than_coverage_allows(
     assert f"{len(values)} values compared" in head and "expected by chance" in head
 
 
+@pytest.mark.slow
 def test_a_changed_device_shows_where_the_truth_differs(
     runs: dict[str, Path], capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -204,6 +206,7 @@ def test_bounds_give_only_bounds_of_the_difference(
     assert "themselves only bounds" in printed
 
 
+@pytest.mark.slow
 def test_plot_and_bad_input(
     runs: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

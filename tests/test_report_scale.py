@@ -100,6 +100,7 @@ def test_a_report_of_several_runs_shows_their_differences(
     assert any(p.name == "two-differences.png" for p in md)
 
 
+@pytest.mark.slow
 def test_pdf_and_png_carry_the_small_multiples(files: dict[str, Path], tmp_path: Path) -> None:
     from matplotlib.image import imread
 

@@ -277,7 +277,12 @@ def _resume_completes(served: Served, out: Path, stored: list[int]) -> None:
 
 
 @pytest.mark.parametrize(
-    "sig", [signal.SIGINT, pytest.param(signal.SIGTERM, marks=pytest.mark.slow), signal.SIGHUP]
+    "sig",
+    [
+        signal.SIGINT,
+        pytest.param(signal.SIGTERM, marks=pytest.mark.slow),
+        pytest.param(signal.SIGHUP, marks=pytest.mark.slow),
+    ],
 )
 def test_a_stop_signal_finishes_the_point_then_goes_to_the_safe_state(
     served: Served, tmp_path: Path, sig: signal.Signals

@@ -202,6 +202,7 @@ def test_existing_output_is_never_overwritten(demo_run: tuple[Path, Keeper]) -> 
         start_run(str(PLANS / "demo.toml"), None, str(demo_run[0]))
 
 
+@pytest.mark.slow
 def test_stop_then_resume_matches_an_uninterrupted_run(
     tmp_path: Path, demo_run: tuple[Path, Keeper]
 ) -> None:

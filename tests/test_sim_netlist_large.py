@@ -91,6 +91,7 @@ tolerance = "1 dB"
 """
 
 
+@pytest.mark.slow
 def test_dropout_at_a_large_ripple_is_flagged_only_in_large_signal_mode(tmp_path: Path) -> None:
     """At 3.6 V DC an 800 mVpp ripple takes the pin to 3.2 V, below the 3.3 V output plus
     its dropout: the transient output follows the troughs (harmonics, a larger fundamental),

@@ -108,6 +108,7 @@ def _h5_status_and_rows(path: Path) -> tuple[str, int]:
 
 
 # -- one writer per file -----------------------------------------------------------------
+@pytest.mark.slow
 def test_a_second_writer_is_refused_naming_the_holder(tmp_path: Path) -> None:
     """While a run writes X, `run --resume X` and `run --force --out X` are refused (exit 2)
     naming the holder; the first run's points all stay, each once."""

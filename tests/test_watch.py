@@ -368,6 +368,7 @@ def _drawn(facts: dict[str, Any], count: int) -> bool:
     return facts["stored"] == str(count) and facts["values"] + facts["bounds"] == count
 
 
+@pytest.mark.slow
 def test_page_in_chromium_shows_points_as_they_are_stored(tmp_path: Path) -> None:
     chromium, driver = require_browser()
     with Browser(chromium, driver) as browser, gated_run(tmp_path, HOSTILE_TITLE) as (run, out):
