@@ -140,7 +140,8 @@ class RunDisplay:
             "sweep",
             total=total,
             completed=done,
-            left=f"planned bench time ≈ {duration_text(bench_time_left)} (at least)",
+            left=f"planned bench time ≈ {duration_text(bench_time_left)}, "
+            f"{finish_text(bench_time_left)}",
         )
         self.live = Live(self._render(), console=console, refresh_per_second=4, transient=False)
 
