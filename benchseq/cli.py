@@ -807,9 +807,7 @@ def _catalog_query(args: argparse.Namespace) -> int:
         raise BadInput("catalog query: --frequency and --band exclude each other")
     con = connect(args.catalog)
     try:
-        table = (
-            run_sql(con, args.sql, "query") if args.sql else summary(con, args.summary, filters)
-        )
+        table = run_sql(con, args.sql, "query") if args.sql else summary(con, args.summary, filters)
     finally:
         con.close()
     if args.json:

@@ -162,8 +162,12 @@ class Sequencer:
         self.settling = Settling(plan.settle, self.model, plan.capture.target_uncertainty_db)
         self._emf_now: float | None = 0.0
         self._emf_frequency = float("nan")
-        self._eta = BenchTimeLeft(
-            plan,
+        self._eta = self.time_left()
+
+    def time_left(self) -> BenchTimeLeft:
+        """A new learner of the bench time left for this sequencer's sweep and run order."""
+        return BenchTimeLeft(
+            self.plan,
             self.sweep,
             self.settling.planned(
                 self.sweep.frequency,
@@ -186,7 +190,7 @@ class Sequencer:
             load = float(self.sweep.load_current[i])
             step = dc - dc_now
             moved = abs(step) > 1e-9
-            loaded = math.isfinite(load) and not load == load_now
+            loaded = math.isfinite(load) and load != load_now
             if moved:
                 out[i] += abs(step) / self.bench.supply.ramp_rate
                 out[i] += float(np.sum(self.settling.dc_step(np.array([step]), smallest)))
@@ -1192,7 +1196,9 @@ class BenchTimeLeft:
         if known.any():
             distance = np.abs(self._log_f[:, None] - self._log_f[None, known])
             weight = 1.0 / (1.0 + (distance / self.NEAR_DECADES) ** 2) ** 2
-            ratio = np.exp((weight @ self._ratio[known]) / weight.sum(axis=1))
+            # the prior (ratio 1) weighs as a measured frequency NEAR_DECADES away: far
+            # from every measured frequency the estimate falls back to the check's
+            ratio = np.exp((weight @ self._ratio[known]) / (weight.sum(axis=1) + 0.25))
         else:
             ratio = np.ones(self._log_f.size)
         key = self._key[index]

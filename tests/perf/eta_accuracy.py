@@ -25,13 +25,13 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from _runbench import BenchClock, run_sweep, stratified  # noqa: E402
-from run_speed import overnight_bench  # noqa: E402
+from _runbench import BenchClock, run_sweep, stratified
+from run_speed import overnight_bench
 
-from benchseq.bench import load_bench  # noqa: E402
-from benchseq.check import check_plan, load_likeness  # noqa: E402
-from benchseq.plan import load_plan, parse_plan  # noqa: E402
-from benchseq.tomlfile import parse_toml_text  # noqa: E402
+from benchseq.bench import load_bench
+from benchseq.check import check_plan, load_likeness
+from benchseq.plan import load_plan, parse_plan
+from benchseq.tomlfile import parse_toml_text
 
 ROOT = Path(__file__).resolve().parents[2]
 HEAD = """
@@ -66,6 +66,7 @@ class Watch:
 
     def __init__(self, sequencer: Any) -> None:
         self.clock = sequencer.session.clock
+        sequencer._eta = sequencer.time_left()  # for the subset restrict() left it
         self.shown: list[tuple[int, int, float, float]] = []  # done, total, clock, left
         self.split = BenchClock(sequencer)
         self.end = float("nan")
