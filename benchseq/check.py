@@ -243,7 +243,7 @@ def capture_seconds(frequency: np.ndarray, plan: Plan) -> tuple[np.ndarray, str]
 # POINT_ROUND_TRIPS_S per point; power-up (outputs on, first ranges) RUN_START_S once, and
 # the AC-coupling corner measurement AC_CORNER_S when the plan reaches low enough for it.
 CAPTURE_SPREAD = (1.3, 2.6)
-POINT_ROUND_TRIPS_S = 0.02
+POINT_ROUND_TRIPS_S = 0.002
 RUN_START_S = 0.3
 AC_CORNER_S = 2.9
 # Without a previous result: the noise and the device's rejection the estimate assumes.

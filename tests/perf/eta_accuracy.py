@@ -5,11 +5,13 @@ again with --like a previous run of the same plan at another seed) beside the si
 bench time the run took, and the running estimate's error (bench time left shown against
 what the rest of the run then took) once 10 %, 25 % and 50 % of the points are stored.
 Plans: plans/demo.toml, plans/overnight.toml (on the demo bench with an electronic load;
-``--points N`` runs a frequency-stratified subset, as tests/perf/run_speed.py does), a
+``--points N`` runs its first N points in run order, default 102: both ripples at the first
+load and DC level; ``--stratified`` spreads them over frequency as tests/perf/run_speed.py
+does, which jumps frequency from point to point far more than a run does), a
 high-frequency-only plan and a multi-operating-point plan. Also prints the bench time
 split by activity of the demo run, from which benchseq.check's per-point overheads come.
 
-    .venv/bin/python tests/perf/eta_accuracy.py [--points 96] [--seeds 0 1]
+    .venv/bin/python tests/perf/eta_accuracy.py [--points 102] [--stratified] [--seeds 0 1]
 """
 
 from __future__ import annotations
@@ -115,10 +117,15 @@ def main() -> None:
         folder = Path(tmp)
         demo_bench = load_bench(None)
         overnight = load_plan(ROOT / "plans" / "overnight.toml")
-        keep = stratified(overnight.expand().frequency, args.points)
+        everything = len(overnight.expand())
+        keep = (
+            stratified(overnight.expand().frequency, args.points)
+            if args.stratified
+            else np.arange(min(args.points, everything))
+        )
         cases = [
             ("demo", load_plan(ROOT / "plans" / "demo.toml"), demo_bench, None),
-            (f"overnight ({min(args.points, len(overnight.expand()))} pts)", overnight,
+            (f"overnight ({keep.size} pts)", overnight,
              overnight_bench(folder), keep),
             ("high-frequency only", _own(HIGH_ONLY, "high.toml"), demo_bench, None),
             ("three DC x two ripples", _own(OPERATING, "operating.toml"), demo_bench, None),
