@@ -172,6 +172,7 @@ class CheckReport:
     feasibility: Feasibility = field(repr=False)
     estimated_range_s: tuple[float, float] = (math.nan, math.nan)  # low, high
     assumed: dict[str, Any] = field(default_factory=dict)  # what the estimate assumed
+    range_breakdown: dict[str, dict[str, float]] = field(default_factory=dict)  # low/high
 
     @property
     def exit_code(self) -> int:
@@ -198,6 +199,7 @@ class CheckReport:
                 "capture_estimate": self.capture_estimate,
                 "estimated_time_range_s": list(self.estimated_range_s),
                 "estimate_assumes": self.assumed,
+                "estimated_time_range_breakdown_s": self.range_breakdown,
                 "corners": corners_dict(self.corners),
                 "warnings": list(self.warnings),
                 "reasons": [g.__dict__ for g in self.groups],
@@ -431,7 +433,7 @@ def _time_budget(
     repeats: dict[str, np.ndarray],
     model: InjectorModel,
     like: Likeness | None = None,
-) -> tuple[float, dict[str, float], str, tuple[float, float]]:
+) -> tuple[float, dict[str, float], str, tuple[float, float], dict[str, dict[str, float]]]:
     n = len(sweep)
     settling = Settling(plan.settle, model, plan.capture.target_uncertainty_db)
     rf, rp = repeats["frequency"], repeats["ripple_peak"]
@@ -485,19 +487,19 @@ def _time_budget(
         "captures": float(np.sum(captures)),
         "floor_captures": floor_s,
     }
-    fixed = settle_waits + ramp + bias_wait + operating + RUN_START_S + corner
     # a floor capture takes about what the point's own planned capture takes
-    floor_low = float(np.sum(low[:n][floor_hit]))
-    floor_high = float(np.sum(high[:n][floor_hit]))
-    span = (
-        fixed + float(np.sum(low)) + floor_low,
-        fixed + float(np.sum(high)) + floor_high,
-    )
-    breakdown.update(
-        captures_low=float(np.sum(low)),
-        captures_high=float(np.sum(high)),
-        run_start=RUN_START_S + corner,
-    )
+    ends = {}
+    for end, per_point in (("low", low), ("high", high)):
+        ends[end] = {
+            "settling": settle_waits,
+            "dc_ramps": ramp,
+            "bias_filter": bias_wait,
+            "operating_point_waits": operating,
+            "captures": float(np.sum(per_point)),
+            "floor_captures": float(np.sum(per_point[:n][floor_hit])),
+            "run_start": RUN_START_S + corner,
+        }
+    span = (float(sum(ends["low"].values())), float(sum(ends["high"].values())))
     total = math.sqrt(span[0] * span[1]) if span[0] > 0 else 0.0
     method = (
         "capture planner's noise-bound captures"
@@ -506,12 +508,13 @@ def _time_budget(
             if like
             else f" assuming {format_si(ASSUMED_NOISE_V, 'V', 2)} rms scope noise per sample, "
             f"{format_si(ASSUMED_DENSITY, 'V', 2)}/√Hz output noise with a 1/f corner at "
-            f"{format_si(ASSUMED_FLICKER_CORNER_HZ, 'Hz', 2)} and "
-            f"{ASSUMED_REJECTION_DB[0]:g}–{ASSUMED_REJECTION_DB[1]:g} dB rejection"
+            f"{format_si(ASSUMED_FLICKER_CORNER_HZ, 'Hz', 3)} and "
+            f"{ASSUMED_REJECTION_DB[0]:g}–{ASSUMED_REJECTION_DB[1]:g} dB rejection falling "
+            f"20 dB/decade above {format_si(ASSUMED_LOOP_CORNER_HZ, 'Hz', 3)}"
         )
         + ", plus settle waits, ramps, operating-point waits and per-point round trips"
     )
-    return total, breakdown, method, span
+    return total, breakdown, method, span, ends
 
 
 def check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckReport:
@@ -540,7 +543,7 @@ def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> Check
         device=device,
         supply_protection_v=bench.supply.overvoltage_protection,
     )
-    total, breakdown, method, span = _time_budget(plan, bench, sweep, repeats, model, like)
+    total, breakdown, method, span, ends = _time_budget(plan, bench, sweep, repeats, model, like)
     groups = _groups(feas)
     worst_ids = sorted({g.worst_point for g in groups if g.severity == "refused"})
     worst_ids += sorted(
@@ -561,6 +564,7 @@ def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> Check
         time_breakdown=breakdown,
         capture_estimate=method,
         estimated_range_s=span,
+        range_breakdown=ends,
         assumed=assumptions(plan, like),
         corners=corners,
         warnings=tuple(

@@ -108,7 +108,13 @@ def _running_errors(watch: Watch) -> dict[int, float]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument(
-        "--points", type=int, default=96, help="overnight points to run (832 = all)"
+        "--points", type=int, default=102, help="overnight points to run (832 = all)"
+    )
+    parser.add_argument(
+        "--stratified",
+        action="store_true",
+        help="spread the overnight points over frequency (as run_speed.py) instead of "
+        "the first ones in run order (whose frequency rises point to point, as in a run)",
     )
     parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1])
     args = parser.parse_args()
