@@ -1135,9 +1135,10 @@ class BenchTimeLeft:
     Each point's prior is the check's estimate (benchseq.check.point_seconds: the middle
     of its capture range), the settle wait before it and, where the operating point
     changes before it, the DC ramp, bias-filter wait and after_operating_point wait. The
-    operating-point part is known in advance and stays as planned; the rest is learnt: a
-    point at a frequency already measured is expected to take what the last point there
-    took, any other its prior times the measured/estimated ratio of the measured
+    operating-point part is known in advance and stays as planned; the rest is learnt as
+    the ratio measured/estimated: a point at a frequency already measured is expected to
+    take its prior times the ratio the last point there showed (so a larger ripple, whose
+    prior is shorter, stays shorter), any other its prior times the ratios of the measured
     frequencies nearest to it (on a log scale), since noise and rejection, which set a
     capture's length, change smoothly with frequency."""
 
@@ -1168,7 +1169,6 @@ class BenchTimeLeft:
             np.round(np.asarray(sweep.frequency, dtype=float), 6), return_inverse=True
         )
         self._log_f = np.log10(np.maximum(keys, 1e-30))
-        self._seen = np.full(keys.size, np.nan)  # s the last point at each frequency took
         self._ratio = np.full(keys.size, np.nan)  # measured/estimated there (log)
         self._todo = np.zeros(self.estimate.size, dtype=bool)
 
@@ -1180,7 +1180,6 @@ class BenchTimeLeft:
     def learn(self, i: int, bench_time: float) -> None:
         own = max(float(bench_time) - float(self.operating[i]), 0.0)
         key = self._key[i]
-        self._seen[key] = own
         if self.estimate[i] > 0 and own > 0:
             self._ratio[key] = math.log(own / float(self.estimate[i]))
         self._todo[i] = False
@@ -1193,17 +1192,15 @@ class BenchTimeLeft:
         else:
             index = np.fromiter(remaining, dtype=np.int64, count=len(remaining))
         known = np.isfinite(self._ratio)
+        log_ratio = np.zeros(self._log_f.size)
         if known.any():
             distance = np.abs(self._log_f[:, None] - self._log_f[None, known])
             weight = 1.0 / (1.0 + (distance / self.NEAR_DECADES) ** 2) ** 2
             # the prior (ratio 1) weighs as a measured frequency NEAR_DECADES away: far
             # from every measured frequency the estimate falls back to the check's
-            ratio = np.exp((weight @ self._ratio[known]) / (weight.sum(axis=1) + 0.25))
-        else:
-            ratio = np.ones(self._log_f.size)
-        key = self._key[index]
-        seen = self._seen[key]
-        own = np.where(np.isnan(seen), self.estimate[index] * ratio[key], seen)
+            log_ratio = (weight @ self._ratio[known]) / (weight.sum(axis=1) + 0.25)
+            log_ratio[known] = self._ratio[known]  # measured here: the last point's own
+        own = self.estimate[index] * np.exp(log_ratio[self._key[index]])
         return float(np.sum(own + self.operating[index]))
 
 
