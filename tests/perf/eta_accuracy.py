@@ -168,7 +168,9 @@ def main() -> None:
                     f"{f'{lo:.1f}–{hi:.1f} ({mid:.1f})':>26s} {(mid / took - 1) * 100:+7.0f} %"
                     f" {like_text:>26s} {like_err:>8s}  "
                     + " / ".join(
-                        f"{running.get(s, float('nan')) * 100:+.0f} %" for s in (10, 25, 50)
+                        f"{running[s][0] * 100:+.0f} % ({running[s][1]:+.1f} s)"
+                        for s in (10, 25, 50)
+                        if s in running
                     )
                     + f"   [{time.perf_counter() - wall:.0f} s wall]"
                 )
