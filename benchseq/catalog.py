@@ -390,9 +390,7 @@ def build(
             _prune_empty(path.parent, into / POINTS_DIR)
     report.files = len(entries)
     report.rows = sum(e.rows for e in entries.values())
-    report.incomplete_runs = sum(
-        1 for e in entries.values() if e.partial or e.status != "complete"
-    )
+    report.incomplete_runs = sum(1 for e in entries.values() if e.partial or e.status != "complete")
     return report
 
 
@@ -405,9 +403,7 @@ def _prune_empty(folder: Path, stop: Path) -> None:
         folder = folder.parent
 
 
-def _catalogue_one(
-    con: Any, into: Path, path: Path, sha: str, report: BuildReport
-) -> Entry | None:
+def _catalogue_one(con: Any, into: Path, path: Path, sha: str, report: BuildReport) -> Entry | None:
     """Write one result file's rows as a Parquet file; None (with the reason in the report)
     when the file cannot be read."""
     source = str(path)
@@ -490,9 +486,7 @@ class Table:
     rows: list[tuple[Any, ...]]
 
     def records(self) -> list[dict[str, Any]]:
-        return [
-            {c: _plain(v) for c, v in zip(self.columns, row, strict=True)} for row in self.rows
-        ]
+        return [{c: _plain(v) for c, v in zip(self.columns, row, strict=True)} for row in self.rows]
 
 
 def _plain(value: Any) -> Any:

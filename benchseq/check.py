@@ -170,6 +170,9 @@ class CheckReport:
     groups: tuple[ReasonGroup, ...]
     worst: tuple[PointVerdict, ...]
     feasibility: Feasibility = field(repr=False)
+    estimated_range_s: tuple[float, float] = (math.nan, math.nan)  # low, high
+    assumed: dict[str, Any] = field(default_factory=dict)  # what the estimate assumed
+    range_breakdown: dict[str, dict[str, float]] = field(default_factory=dict)  # low/high
 
     @property
     def exit_code(self) -> int:
@@ -194,6 +197,9 @@ class CheckReport:
                 "estimated_time_s": self.estimated_time_s,
                 "time_breakdown_s": self.time_breakdown,
                 "capture_estimate": self.capture_estimate,
+                "estimated_time_range_s": list(self.estimated_range_s),
+                "estimate_assumes": self.assumed,
+                "estimated_time_range_breakdown_s": self.range_breakdown,
                 "corners": corners_dict(self.corners),
                 "warnings": list(self.warnings),
                 "reasons": [g.__dict__ for g in self.groups],
@@ -220,7 +226,7 @@ def _linearity_points(plan: Plan, sweep: Any) -> dict[str, np.ndarray]:
 
 
 def capture_seconds(frequency: np.ndarray, plan: Plan) -> tuple[np.ndarray, str]:
-    """Capture time per point: the analysis capture planner when present, else cycle-bound."""
+    """Cycle-bound capture time per point: the least any capture takes (min_cycles periods)."""
     rules = plan.capture
     cycles = rules.min_cycles / np.asarray(frequency, dtype=float)
     estimate = np.minimum(np.maximum(cycles, 1e-3), rules.max_time_s)
@@ -230,9 +236,204 @@ def capture_seconds(frequency: np.ndarray, plan: Plan) -> tuple[np.ndarray, str]
     )
 
 
+# What the sequencer spends on a point besides the planned capture and the settle wait,
+# measured from simulated runs' bench time split by activity (tests/perf/eta_accuracy.py
+# prints the split and these figures' fit): the first batch that ranges both channels, the
+# trim recapture, top-ups and range retries make a point's captures take between
+# CAPTURE_SPREAD[0] and CAPTURE_SPREAD[1] times its planned bench time (re-arms included);
+# instrument round trips (generator set, trigger, waveform reads, pin DC check) add
+# POINT_ROUND_TRIPS_S per point; power-up (outputs on, first ranges) RUN_START_S once, and
+# the AC-coupling corner measurement AC_CORNER_S when the plan reaches low enough for it.
+CAPTURE_SPREAD = (1.3, 2.6)
+POINT_ROUND_TRIPS_S = 0.002
+RUN_START_S = 0.3
+AC_CORNER_S = 2.9
+# Without a previous result: the noise and the device's rejection the estimate assumes.
+ASSUMED_NOISE_V = 40e-6  # V rms per sample at the output channel's scope input (front end)
+# the device's output noise: white density with a 1/f rise below a corner (a low-noise
+# regulator's output, from memory), and its low-frequency rejection (common practice for
+# a linear regulator: 60 to 80 dB below its loop's corner)
+ASSUMED_DENSITY = 40e-9  # V/√Hz, white part
+ASSUMED_FLICKER_CORNER_HZ = 300.0
+ASSUMED_REJECTION_DB = (60.0, 80.0)  # the range's low and high ends, at low frequency,
+ASSUMED_LOOP_CORNER_HZ = 1e3  # falling 20 dB per decade above this corner
+ASSUMED_LEAST_REJECTION_DB = 20.0
+
+
+@dataclass(frozen=True)
+class Likeness:
+    """What a previous result of the same bench and device says of each frequency: the
+    noise its captures showed and the rejection it measured (from its stored rows)."""
+
+    source: str
+    frequency: np.ndarray  # Hz, sorted
+    noise: tuple[Any, ...]  # batches.NoiseGuess | None per frequency
+    rejection_db: np.ndarray
+    notes: tuple[str, ...] = ()
+
+    def at(self, frequency: float) -> tuple[Any, float]:
+        """The nearest stored frequency's (noise, rejection), nearest on a log scale."""
+        k = int(np.argmin(np.abs(np.log(self.frequency / frequency))))
+        return self.noise[k], float(self.rejection_db[k])
+
+
+def load_likeness(path: str | Path, plan: Plan, bench: Bench) -> Likeness:
+    """A previous result file read for the estimate (BadInput naming it when unreadable or
+    without measured points); a different bench or device is noted, not refused."""
+    from benchseq import batches
+    from benchseq.results import read_meta, read_results
+
+    try:
+        meta = read_meta(path)
+        rows = read_results(path)
+    except Exception as exc:  # any unreadable file: one clear message
+        raise BadInput(f"--like {path}: cannot read it as a result file ({exc})") from None
+    needed = ("frequency", "output_floor", "output_noise", "pin_sigma", "sample_interval")
+    if len(rows) == 0 or any(name not in rows for name in needed):
+        raise BadInput(f"--like {path}: holds no measured points to estimate from")
+    notes = []
+    if str(meta.get("bench_name", "")) != bench.name:
+        notes.append(f"{path} was measured on {meta.get('bench_name')!r}, not {bench.name!r}")
+    if str(meta.get("device", "")) != plan.device_name:
+        notes.append(f"{path} measured {meta.get('device')!r}, not {plan.device_name!r}")
+    rows = rows.sort_values("frequency")
+    noise = []
+    rejection = []
+    for _, row in rows.iterrows():
+        noise.append(
+            batches.NoiseGuess.from_point(
+                float(row["output_floor"]),
+                float(row["output_noise"]),
+                float(row["pin_sigma"]),
+                float(row["sample_interval"]),
+                int(row["record_length"]),
+                int(row["averages"]),
+            )
+        )
+        value = float(row["bound_db"] if row["is_bound"] else row["rejection_db"])
+        rejection.append(value if math.isfinite(value) else ASSUMED_REJECTION_DB[0])
+    return Likeness(
+        str(path),
+        np.asarray(rows["frequency"], dtype=float),
+        tuple(noise),
+        np.asarray(rejection, dtype=float),
+        tuple(notes),
+    )
+
+
+def scope_timebase(plan: Plan, bench: Bench) -> Any:
+    """The bench scope's timebase limits (from its profile) with the plan's averaging cap."""
+    from benchseq import analysis
+    from benchseq.drivers.factory import profile_for
+
+    caps = profile_for(bench.instruments["scope"], bench).capabilities
+    if caps is None:
+        raise BadInput(f"{bench.source}: the scope's profile gives no capabilities")
+    return analysis.ScopeTimebase(
+        caps.sample_intervals,
+        caps.record_lengths,
+        max(1, min(int(caps.max_averages), int(plan.capture.max_averages))),
+        caps.rearm_time,
+    )
+
+
+def planned_capture_s(
+    plan: Plan,
+    bench: Bench,
+    frequency: np.ndarray,
+    ripple_peak: np.ndarray,
+    like: Likeness | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per point, the capture planner's bench time (re-arms included; noise-bound or
+    cycle-bound, whichever the point needs) under the low and the high end's assumptions:
+    a previous result's noise and rejection at the nearest frequency (both ends), else
+    ASSUMED_NOISE_V with ASSUMED_REJECTION_DB's two values."""
+    from benchseq import batches
+
+    rules = plan.capture
+    timebase = scope_timebase(plan, bench)
+    f = np.asarray(frequency, dtype=float)
+    pin = np.asarray(ripple_peak, dtype=float)
+    out = np.zeros((2, f.size))
+    cache: dict[tuple[float, float], tuple[float, float]] = {}
+    for k in range(f.size):
+        key = (round(float(f[k]), 6), round(float(pin[k]), 12))
+        if key not in cache:
+            if like is not None:
+                noise, rejection = like.at(float(f[k]))
+                cases = [(noise or batches.NoiseGuess(ASSUMED_NOISE_V), rejection)] * 2
+            else:
+                density = ASSUMED_DENSITY**2 * (1.0 + ASSUMED_FLICKER_CORNER_HZ / float(f[k]))
+                assumed = batches.NoiseGuess(ASSUMED_NOISE_V, density)
+                fall = 20.0 * math.log10(1.0 + float(f[k]) / ASSUMED_LOOP_CORNER_HZ)
+                cases = [
+                    (assumed, max(r - fall, ASSUMED_LEAST_REJECTION_DB))
+                    for r in ASSUMED_REJECTION_DB
+                ]
+            seconds = []
+            for guess, rejection in cases:
+                expected = batches.predicted_plan(
+                    timebase,
+                    float(f[k]),
+                    float(pin[k]),
+                    max(float(pin[k]) * 10 ** (-rejection / 20.0), 1e-12),
+                    guess,
+                    rules.target_uncertainty_db,
+                    rules.min_cycles,
+                    rules.max_time_s,
+                    lean=True,
+                )
+                seconds.append(float(expected.bench_time))
+            cache[key] = (seconds[0], seconds[1])
+        out[0, k], out[1, k] = cache[key]
+    return out[0], out[1]
+
+
+def point_seconds(
+    plan: Plan,
+    bench: Bench,
+    frequency: np.ndarray,
+    ripple_peak: np.ndarray,
+    like: Likeness | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per point, the bench time (s) of its captures and round trips, low and high ends
+    (settle waits, ramps and operating-point waits are counted apart)."""
+    low, high = planned_capture_s(plan, bench, frequency, ripple_peak, like)
+    return (
+        CAPTURE_SPREAD[0] * low + POINT_ROUND_TRIPS_S,
+        CAPTURE_SPREAD[1] * high + POINT_ROUND_TRIPS_S,
+    )
+
+
+def assumptions(plan: Plan, like: Likeness | None) -> dict[str, Any]:
+    """What the estimate assumed, for the report and its JSON."""
+    out: dict[str, Any] = {
+        "capture_spread": list(CAPTURE_SPREAD),
+        "round_trips_per_point_s": POINT_ROUND_TRIPS_S,
+        "target_uncertainty_db": plan.capture.target_uncertainty_db,
+    }
+    if like is None:
+        out.update(
+            source="assumed",
+            noise_v_rms=ASSUMED_NOISE_V,
+            output_noise_density_v_per_rthz=ASSUMED_DENSITY,
+            flicker_corner_hz=ASSUMED_FLICKER_CORNER_HZ,
+            rejection_db=list(ASSUMED_REJECTION_DB),
+            rejection_corner_hz=ASSUMED_LOOP_CORNER_HZ,
+        )
+    else:
+        out.update(source=like.source, notes=list(like.notes))
+    return out
+
+
 def _time_budget(
-    plan: Plan, bench: Bench, sweep: Any, repeats: dict[str, np.ndarray], model: InjectorModel
-) -> tuple[float, dict[str, float], str]:
+    plan: Plan,
+    bench: Bench,
+    sweep: Any,
+    repeats: dict[str, np.ndarray],
+    model: InjectorModel,
+    like: Likeness | None = None,
+) -> tuple[float, dict[str, float], str, tuple[float, float], dict[str, dict[str, float]]]:
     n = len(sweep)
     settling = Settling(plan.settle, model, plan.capture.target_uncertainty_db)
     rf, rp = repeats["frequency"], repeats["ripple_peak"]
@@ -253,19 +454,31 @@ def _time_budget(
     steps = (dc - previous_dc)[dc_moves]
     bias_wait = float(np.sum(settling.dc_step(steps, smallest))) if steps.size else 0.0
     operating = plan.settle.operating_point_s * float(np.count_nonzero(dc_moves | load_moves))
-    captures, method = capture_seconds(
-        np.concatenate([sweep.frequency, repeats["frequency"]]), plan
-    )
+    every_f = np.concatenate([sweep.frequency, rf])
+    every_ripple = np.concatenate([sweep.ripple_peak, rp])
+    captures, method = capture_seconds(every_f, plan)
+    low, high = point_seconds(plan, bench, every_f, every_ripple, like)
     floor = getattr(plan, "floor", None)
     floor_s = 0.0
+    floor_hit = np.zeros(n, dtype=bool)
     if floor is not None:
         if floor.every_point:
-            floor_s = float(np.sum(captures[:n]))
+            floor_hit[:] = True
         elif len(floor.frequencies):
             hit = np.isclose(
                 sweep.frequency[:, None], np.asarray(floor.frequencies)[None, :], rtol=1e-3
             )
-            floor_s = float(np.sum(captures[:n][hit.any(axis=1)]))
+            floor_hit = hit.any(axis=1)
+        floor_s = float(np.sum(captures[:n][floor_hit]))
+    from benchseq.coupling import MEASURE_BELOW_HZ
+
+    corner = (
+        AC_CORNER_S
+        if n
+        and bench.scope.pin.coupling == "AC"
+        and float(np.min(sweep.frequency)) < MEASURE_BELOW_HZ
+        else 0.0
+    )
     breakdown = {
         "settling": settle_waits,
         "dc_ramps": ramp,
@@ -274,16 +487,44 @@ def _time_budget(
         "captures": float(np.sum(captures)),
         "floor_captures": floor_s,
     }
-    return float(sum(breakdown.values())), breakdown, method
+    # a floor capture takes about what the point's own planned capture takes
+    ends = {}
+    for end, per_point in (("low", low), ("high", high)):
+        ends[end] = {
+            "settling": settle_waits,
+            "dc_ramps": ramp,
+            "bias_filter": bias_wait,
+            "operating_point_waits": operating,
+            "captures": float(np.sum(per_point)),
+            "floor_captures": float(np.sum(per_point[:n][floor_hit])),
+            "run_start": RUN_START_S + corner,
+        }
+    span = (float(sum(ends["low"].values())), float(sum(ends["high"].values())))
+    total = math.sqrt(span[0] * span[1]) if span[0] > 0 else 0.0
+    method = (
+        "capture planner's noise-bound captures"
+        + (
+            f" with the noise and rejection measured in {like.source}"
+            if like
+            else f" assuming {format_si(ASSUMED_NOISE_V, 'V', 2)} rms scope noise per sample, "
+            f"{format_si(ASSUMED_DENSITY, 'V', 2)}/√Hz output noise with a 1/f corner at "
+            f"{format_si(ASSUMED_FLICKER_CORNER_HZ, 'Hz', 3)} and "
+            f"{ASSUMED_REJECTION_DB[0]:g}–{ASSUMED_REJECTION_DB[1]:g} dB rejection falling "
+            f"20 dB/decade above {format_si(ASSUMED_LOOP_CORNER_HZ, 'Hz', 3)}"
+        )
+        + ", plus settle waits, ramps, operating-point waits and per-point round trips"
+    )
+    return total, breakdown, method, span, ends
 
 
-def check_plan(plan: Plan, bench: Bench) -> CheckReport:
-    """Feasibility of every planned point (and linearity repeat), bench time, reasons."""
+def check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckReport:
+    """Feasibility of every planned point (and linearity repeat), bench time, reasons.
+    ``like``: a previous result's noise and rejection for the time estimate."""
     with injector_guard(bench):
-        return _check_plan(plan, bench)
+        return _check_plan(plan, bench, like)
 
 
-def _check_plan(plan: Plan, bench: Bench) -> CheckReport:
+def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckReport:
     model = InjectorModel(bench.injector, bench.generator, bench.pin)
     corners = model.corners()
     sweep = plan.expand()
@@ -302,7 +543,7 @@ def _check_plan(plan: Plan, bench: Bench) -> CheckReport:
         device=device,
         supply_protection_v=bench.supply.overvoltage_protection,
     )
-    total, breakdown, method = _time_budget(plan, bench, sweep, repeats, model)
+    total, breakdown, method, span, ends = _time_budget(plan, bench, sweep, repeats, model, like)
     groups = _groups(feas)
     worst_ids = sorted({g.worst_point for g in groups if g.severity == "refused"})
     worst_ids += sorted(
@@ -322,6 +563,9 @@ def _check_plan(plan: Plan, bench: Bench) -> CheckReport:
         estimated_time_s=total,
         time_breakdown=breakdown,
         capture_estimate=method,
+        estimated_range_s=span,
+        range_breakdown=ends,
+        assumed=assumptions(plan, like),
         corners=corners,
         warnings=tuple(
             bench_warnings(model, corners)
@@ -573,8 +817,10 @@ def render_check(report: CheckReport) -> Any:
     head.append(f"{report.point_count} points")
     if report.repeat_count:
         head.append(f" + {report.repeat_count} linearity repeats")
+    low, high = report.estimated_range_s
     head.append(
-        f"; about {_duration(report.estimated_time_s)} on the bench ({report.capture_estimate})\n"
+        f"; {_duration(low)} – {_duration(high)} on the bench "
+        f"(about {_duration(report.estimated_time_s)}; {report.capture_estimate})\n"
     )
     head.append(f"ok {report.ok_count}", style="green")
     head.append("  ")

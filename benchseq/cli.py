@@ -102,7 +102,12 @@ def cmd_check(args: argparse.Namespace) -> int:
     bench = load_bench(args.bench)
     plan = load_plan(args.plan)
     preflight(plan, bench)  # what `run` needs of both files, before its feasibility
-    report = check_plan(plan, bench)
+    like = None
+    if args.like:
+        from benchseq.check import load_likeness
+
+        like = load_likeness(args.like, plan, bench)
+    report = check_plan(plan, bench, like)
     if args.json:
         _print_json(report.to_dict())
     else:
@@ -802,9 +807,7 @@ def _catalog_query(args: argparse.Namespace) -> int:
         raise BadInput("catalog query: --frequency and --band exclude each other")
     con = connect(args.catalog)
     try:
-        table = (
-            run_sql(con, args.sql, "query") if args.sql else summary(con, args.summary, filters)
-        )
+        table = run_sql(con, args.sql, "query") if args.sql else summary(con, args.summary, filters)
     finally:
         con.close()
     if args.json:
@@ -872,6 +875,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("plan", help="plan file (TOML)")
     p.add_argument("--bench", help="bench file; omit (or 'sim') for the embedded simulated bench")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.add_argument(
+        "--like",
+        metavar="RESULT",
+        help="a previous result of this bench and device: estimate the bench time from the "
+        "noise and rejection it measured (else from stated assumptions)",
+    )
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("injector", help="the injector's computed response, corners and usable band")

@@ -1,9 +1,11 @@
-"""Terminal rendering of a run (rich): progress with the planned bench time left, a live
+"""Terminal rendering of a run (rich): progress with the bench time left and the clock time
+of the finish (learnt as the run goes), a live
 table of the latest points, and the closing summary. Library code never prints; the CLI
 hands ``RunDisplay.handle`` to the sequencer as its event sink."""
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 from collections import deque
 from typing import Any
@@ -66,6 +68,19 @@ def duration_text(seconds: float) -> str:
     return f"{hours} h {minutes:02d} min"
 
 
+def finish_text(seconds_left: float, now: dt.datetime | None = None) -> str:
+    """'finish ≈ 02:47' (local clock time ``seconds_left`` from ``now``); the day is named
+    when the finish is not today ('finish ≈ Sun 02:47'), the date beyond a week."""
+    start = now if now is not None else dt.datetime.now().astimezone()
+    left = max(0.0, float(seconds_left)) if math.isfinite(seconds_left) else 0.0
+    end = start + dt.timedelta(seconds=min(left, 3.0e8))  # past ~10 years: not a clock time
+    if end.date() == start.date():
+        return f"finish ≈ {end:%H:%M}"
+    if (end.date() - start.date()).days < 7:
+        return f"finish ≈ {end:%a %H:%M}"
+    return f"finish ≈ {end:%Y-%m-%d %H:%M}"
+
+
 def points_table(rows: list[dict[str, Any]], title: str = "latest points") -> Table:
     """The points: planned frequency (with the generator's move in ppm, when moved towards
     a coherent capture), rejection with U = k·u (k = 2), and input-referred rejection
@@ -125,7 +140,8 @@ class RunDisplay:
             "sweep",
             total=total,
             completed=done,
-            left=f"planned bench time ≈ {duration_text(bench_time_left)} (at least)",
+            left=f"planned bench time ≈ {duration_text(bench_time_left)}, "
+            f"{finish_text(bench_time_left)}",
         )
         self.live = Live(self._render(), console=console, refresh_per_second=4, transient=False)
 
@@ -153,7 +169,9 @@ class RunDisplay:
             if not left > 0:  # a sink without the learnt figure: the plan's share
                 left = max(0.0, (self.total - done) * self.per_point)
             self.progress.update(
-                self.task, completed=done, left=f"bench time left ≈ {duration_text(left)}"
+                self.task,
+                completed=done,
+                left=f"bench time left ≈ {duration_text(left)}, {finish_text(left)}",
             )
         elif event.kind == "point_started":
             self.progress.update(self.task, completed=event.done)

@@ -57,8 +57,7 @@ def load(kind: str, name: str, source: str, key: str) -> Any:
         raise FileKeyError(
             source,
             key,
-            f"no {kind} named {name!r} is registered (entry-point group {GROUPS[kind]}: "
-            f"{listed})",
+            f"no {kind} named {name!r} is registered (entry-point group {GROUPS[kind]}: {listed})",
         )
     try:
         return point.load()

@@ -1,5 +1,6 @@
 """A run's progress as plain log lines, through the ``benchseq.run`` logger: one line per
-stored point, one per change of operating point, the run's states and warnings.
+stored point (with the bench time left and the local clock time of the finish, until the
+last), one per change of operating point, the run's states and warnings.
 
 ``ProgressLog`` is an event sink like the live display; it only logs. Where the lines go
 (the terminal's stderr, the run log file beside the result) is the command line's choice:
@@ -13,7 +14,13 @@ import math
 from pathlib import Path
 from typing import Any
 
-from benchseq.display import expanded_text, frequency_text, rejection_text
+from benchseq.display import (
+    duration_text,
+    expanded_text,
+    finish_text,
+    frequency_text,
+    rejection_text,
+)
 from benchseq.units import format_si
 
 RUN_LOGGER = "benchseq.run"
@@ -74,7 +81,11 @@ class ProgressLog:
                 self._operating_point = here
                 self.logger.info("operating point %s", here)
             self.points += 1
-            self.logger.info("%s", point_line(event.row, event.done, event.total))
+            line = point_line(event.row, event.done, event.total)
+            if event.done < event.total:  # what is left, learnt from the points so far
+                left = float(getattr(event, "bench_time_left", 0.0))
+                line += f"; bench time left ≈ {duration_text(left)}, {finish_text(left)}"
+            self.logger.info("%s", line)
         elif kind == "warning":
             self.logger.warning("%s", event.message)
         elif kind == "caution":  # before the bench opens (a real bench): said, never asked

@@ -162,15 +162,55 @@ class Sequencer:
         self.settling = Settling(plan.settle, self.model, plan.capture.target_uncertainty_db)
         self._emf_now: float | None = 0.0
         self._emf_frequency = float("nan")
-        self._eta = BenchTimeLeft(
-            plan,
+        self._eta = self.time_left()
+
+    def time_left(self) -> BenchTimeLeft:
+        """A new learner of the bench time left for this sequencer's sweep and run order."""
+        return BenchTimeLeft(
+            self.plan,
             self.sweep,
             self.settling.planned(
                 self.sweep.frequency,
                 self.sweep.ripple_peak,
                 previous_in(self.run_order, len(self.sweep)),
             ),
+            self._capture_prior(),
+            self._operating_prior(),
         )
+
+    def _operating_prior(self) -> np.ndarray:
+        """Per point, the bench time of the operating-point change before it in run order
+        (DC ramp at the supply's rate, bias-filter wait, after_operating_point), 0 where
+        the operating point stays."""
+        out = np.zeros(len(self.sweep))
+        dc_now, load_now = 0.0, float("nan")
+        smallest = float(np.min(self.sweep.ripple_peak)) if len(self.sweep) else 0.0
+        for i in self.run_order:
+            dc = float(self.sweep.dc_level[i])
+            load = float(self.sweep.load_current[i])
+            step = dc - dc_now
+            moved = abs(step) > 1e-9
+            loaded = math.isfinite(load) and load != load_now
+            if moved:
+                out[i] += abs(step) / self.bench.supply.ramp_rate
+                out[i] += float(np.sum(self.settling.dc_step(np.array([step]), smallest)))
+            if moved or loaded:
+                out[i] += self.plan.settle.operating_point_s
+            dc_now, load_now = dc, load
+        return out
+
+    def _capture_prior(self) -> np.ndarray | None:
+        """Each point's captures and round trips as the check estimates them (the middle of
+        its range); None (cycle-bound) when the bench's scope profile gives no timebase."""
+        from benchseq.check import point_seconds
+
+        try:
+            low, high = point_seconds(
+                self.plan, self.bench, self.sweep.frequency, self.sweep.ripple_peak
+            )
+        except (BenchseqError, KeyError, OSError, ValueError):  # a driver class, no profile
+            return None
+        return np.sqrt(low * high)
 
     # -- the whole run ---------------------------------------------------------------
     def run(self) -> RunOutcome:
@@ -1092,26 +1132,45 @@ class Sequencer:
 class BenchTimeLeft:
     """The bench time the points still to measure will take, learnt as the run goes.
 
-    Before any point: the check's cycle-bound estimate per point (settle + capture), which
-    is a lower bound (noise-bound points take longer). Then a point at a frequency already
-    measured is expected to take what the last point there took (same frequency, the same
-    noise to average), and any other its estimate times the ratio measured/estimated over
-    the points so far."""
+    Each point's prior is the check's estimate (benchseq.check.point_seconds: the middle
+    of its capture range), the settle wait before it and, where the operating point
+    changes before it, the DC ramp, bias-filter wait and after_operating_point wait. The
+    operating-point part is known in advance and stays as planned; the rest is learnt as
+    the ratio measured/estimated: a point at a frequency already measured is expected to
+    take its prior times the ratio the last point there showed (so a larger ripple, whose
+    prior is shorter, stays shorter), any other its prior times the ratios of the measured
+    frequencies nearest to it (on a log scale), since noise and rejection, which set a
+    capture's length, change smoothly with frequency."""
 
-    def __init__(self, plan: Plan, sweep: Sweep, settle_s: Any) -> None:
+    NEAR_DECADES = 0.3  # ratios of frequencies within this many decades weigh most
+
+    def __init__(
+        self,
+        plan: Plan,
+        sweep: Sweep,
+        settle_s: Any,
+        captures_s: Any | None = None,
+        operating_s: Any = 0.0,
+    ) -> None:
         """``settle_s``: the wait before each point (s, per point or one for all), as
-        benchseq.settling.Settling.planned gives it."""
+        benchseq.settling.Settling.planned gives it; ``captures_s``: each point's captures
+        and round trips as the check estimates them (default: cycle-bound captures);
+        ``operating_s``: the operating-point change before each point (s)."""
         from benchseq.check import capture_seconds
 
-        captures, _ = capture_seconds(np.asarray(sweep.frequency), plan)
-        self.estimate = np.asarray(captures, dtype=float) + np.asarray(settle_s, dtype=float)
+        if captures_s is None:
+            captures_s, _ = capture_seconds(np.asarray(sweep.frequency), plan)
+        captures = np.asarray(captures_s, dtype=float)
+        self.estimate = captures + np.asarray(settle_s, dtype=float)
+        self.operating = np.broadcast_to(
+            np.asarray(operating_s, dtype=float), self.estimate.shape
+        ).copy()
         keys, self._key = np.unique(
             np.round(np.asarray(sweep.frequency, dtype=float), 6), return_inverse=True
         )
-        self._seen = np.full(keys.size, np.nan)  # s the last point at each frequency took
+        self._log_f = np.log10(np.maximum(keys, 1e-30))
+        self._ratio = np.full(keys.size, np.nan)  # measured/estimated there (log)
         self._todo = np.zeros(self.estimate.size, dtype=bool)
-        self._estimated = 0.0
-        self._measured = 0.0
 
     def begin(self, todo: list[int]) -> None:
         """The points this session will measure (by position in the sweep)."""
@@ -1119,21 +1178,30 @@ class BenchTimeLeft:
         self._todo[np.asarray(todo, dtype=np.int64)] = True
 
     def learn(self, i: int, bench_time: float) -> None:
-        self._seen[self._key[i]] = bench_time
+        own = max(float(bench_time) - float(self.operating[i]), 0.0)
+        key = self._key[i]
+        if self.estimate[i] > 0 and own > 0:
+            self._ratio[key] = math.log(own / float(self.estimate[i]))
         self._todo[i] = False
-        self._estimated += float(self.estimate[i])
-        self._measured += bench_time
 
     def left(self, remaining: set[int] | None = None) -> float:
         """Bench time (s) of ``remaining`` (positions; default: the points not yet learnt
-        of those begun). Vectorised: one pass over the points, whatever their number."""
+        of those begun). Vectorised over the distinct frequencies."""
         if remaining is None:
             index = np.flatnonzero(self._todo)
         else:
             index = np.fromiter(remaining, dtype=np.int64, count=len(remaining))
-        ratio = self._measured / self._estimated if self._estimated > 0 else 1.0
-        seen = self._seen[self._key[index]]
-        return float(np.where(np.isnan(seen), self.estimate[index] * ratio, seen).sum())
+        known = np.isfinite(self._ratio)
+        log_ratio = np.zeros(self._log_f.size)
+        if known.any():
+            distance = np.abs(self._log_f[:, None] - self._log_f[None, known])
+            weight = 1.0 / (1.0 + (distance / self.NEAR_DECADES) ** 2) ** 2
+            # the prior (ratio 1) weighs as a measured frequency NEAR_DECADES away: far
+            # from every measured frequency the estimate falls back to the check's
+            log_ratio = (weight @ self._ratio[known]) / (weight.sum(axis=1) + 0.25)
+            log_ratio[known] = self._ratio[known]  # measured here: the last point's own
+        own = self.estimate[index] * np.exp(log_ratio[self._key[index]])
+        return float(np.sum(own + self.operating[index]))
 
 
 class _StopRun(Exception):

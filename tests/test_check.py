@@ -82,7 +82,12 @@ def test_bench_time_estimate() -> None:
     assert report.point_count == 2
     assert report.time_breakdown["settling"] == pytest.approx(1.0, rel=1e-3)
     assert report.time_breakdown["captures"] == pytest.approx(1.0 + 0.5, rel=1e-9)
-    assert report.estimated_time_s == pytest.approx(sum(report.time_breakdown.values()))
+    # the range's ends are the sums of their parts; the estimate lies between them
+    low, high = report.estimated_range_s
+    assert low == pytest.approx(sum(report.range_breakdown["low"].values()))
+    assert high == pytest.approx(sum(report.range_breakdown["high"].values()))
+    assert low <= report.estimated_time_s <= high
+    assert report.range_breakdown["low"]["settling"] == pytest.approx(1.0, rel=1e-3)
     # the default rule waits for the injector's transient alone: at 10 and 20 Hz the
     # coupling mode (Rg·Cc ≈ 10.5 ms) needs well under the 0.5 s of five bias time constants
     default = check_plan(plan_with(frequency={"at": ["10 Hz", "20 Hz"]}), load_bench(None))

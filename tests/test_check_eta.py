@@ -1,0 +1,130 @@
+"""The bench time `check` estimates and the finish the run shows, against the simulated
+bench's own clock (the bench time a run really spent, from its virtual clock).
+
+Reference: the simulated bench (Fernhollow bay 2, FV-33 board) and its clock; the run
+log's clock stamps. The estimate is a range from stated assumptions (noise, rejection);
+its tolerance is the run-to-run scatter of the bench time over the seeds (captures top up
+on the noise each run meets): each seed's bench time must lie within the range widened by
+K times that scatter's sample standard deviation."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from benchseq.cli import main
+from benchseq.runner import start_run
+
+RUN_LIMIT_S = 180.0
+SEEDS = [1, 2, 3, 4]
+K = 3.0  # coverage factor of the run-to-run scatter
+PLAN = """
+title = "FV-33 estimate check"
+operator = "T. Varga-Ellison"
+[device]
+name = "FV-33 regulator evaluation board (3.3 V out, 0.25 V dropout)"
+absolute_max = "6 V"
+min_operating = "3.8 V"
+[sweep]
+dc = ["4.5 V", "5 V"]
+ripple = ["100 mVpp"]
+frequency = { at = ["50 Hz", "500 Hz", "5 kHz", "50 kHz"] }
+[settle]
+after_operating_point = "0.5 s"
+[capture]
+max_time = "2 s"
+target_uncertainty = "0.2 dB"
+"""
+STAMP = re.compile(
+    r"^(\d{4}-\d\d-\d\d \d\d:\d\d:\d\d) point (\d+)/(\d+) .*; bench time left ≈ "
+    r"(.+), finish ≈ (?:\w{3} )?(\d\d):(\d\d)$"
+)
+
+
+def _seconds(text: str) -> tuple[float, float]:
+    """A shown duration ('12.3 s', '3 min 05 s', '1 h 02 min') in s, and its rounding (s)."""
+    if m := re.fullmatch(r"([\d.]+) s", text):
+        return float(m.group(1)), 0.05
+    if m := re.fullmatch(r"(\d+) min (\d+) s", text):
+        return 60.0 * int(m.group(1)) + int(m.group(2)), 0.5
+    m = re.fullmatch(r"(\d+) h (\d+) min", text)
+    assert m, text
+    return 3600.0 * int(m.group(1)) + 60.0 * int(m.group(2)), 30.0
+
+
+@pytest.fixture
+def plan_path(tmp_path: Path) -> Path:
+    path = tmp_path / "estimate.toml"
+    path.write_text(PLAN, encoding="utf-8")
+    return path
+
+
+def test_check_range_holds_the_bench_time_over_seeds(
+    plan_path: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert main(["check", str(plan_path), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    low, high = report["estimated_time_range_s"]
+    took = []
+    for seed in SEEDS:
+        outcome, _ = start_run(str(plan_path), None, str(tmp_path / f"e{seed}.h5"), seed=seed)
+        assert outcome.status == "complete"
+        took.append(outcome.bench_time)
+    scatter = float(np.std(took, ddof=1))
+    for seed, seconds in zip(SEEDS, took, strict=True):
+        assert low - K * scatter <= seconds <= high + K * scatter, (seed, seconds, low, high)
+
+
+def test_check_json_carries_the_range_and_what_it_assumed(
+    plan_path: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert main(["check", str(plan_path), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    low, high = report["estimated_time_range_s"]
+    assert 0 < low <= report["estimated_time_s"] <= high
+    assumed = report["estimate_assumes"]
+    assert assumed["source"] == "assumed"
+    assert assumed["noise_v_rms"] > 0 and len(assumed["rejection_db"]) == 2
+    assert "time_breakdown_s" in report and "capture_estimate" in report  # kept keys
+    previous = tmp_path / "previous.h5"
+    outcome, _ = start_run(str(plan_path), None, str(previous), seed=5)
+    assert outcome.status == "complete"
+    assert main(["check", str(plan_path), "--json", "--like", str(previous)]) == 0
+    liked = json.loads(capsys.readouterr().out)
+    assert liked["estimate_assumes"]["source"] == str(previous)
+    assert liked["estimate_assumes"]["notes"] == []  # same bench, same device
+    assert main(["check", str(plan_path), "--like", str(tmp_path / "none.h5")]) == 2
+    assert "--like" in capsys.readouterr().err
+
+
+def test_log_lines_show_a_finish_consistent_with_the_time_left(
+    plan_path: Path, tmp_path: Path
+) -> None:
+    """finish − the line's clock stamp = the time left shown, to the rounding of the two
+    shown figures (the finish to the minute, the time left to its last digit) plus 1 s
+    between reading the clock for the finish and stamping the line; a finish past
+    midnight wraps."""
+    done = subprocess.run(
+        [sys.executable, "-m", "benchseq", "run", str(plan_path), "--out", str(tmp_path / "r.h5")],
+        capture_output=True, text=True, cwd=tmp_path, timeout=RUN_LIMIT_S,
+    )  # fmt: skip
+    assert done.returncode == 0, done.stderr
+    lines = [m for line in done.stderr.splitlines() if (m := STAMP.match(line))]
+    points = [line for line in done.stderr.splitlines() if " point " in f" {line}"]
+    assert len(lines) == 7 and len(points) >= 8  # every point but the last says when
+    for m in lines:
+        stamp = dt.datetime.strptime(m.group(1), "%Y-%m-%d %H:%M:%S")
+        left, rounding = _seconds(m.group(4))
+        finish = stamp.replace(hour=int(m.group(5)), minute=int(m.group(6)), second=0)
+        gap = (finish - stamp).total_seconds()
+        if gap < -120.0:  # the finish is after midnight
+            gap += 86400.0
+        # the shown finish is truncated to its minute: the true one is up to 60 s later
+        assert -rounding - 1.0 <= left - gap <= 60.0 + rounding + 1.0, m.group(0)
