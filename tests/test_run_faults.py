@@ -31,6 +31,10 @@ FAULTY = FaultRates(
 )
 ROLES = ("generator", "supply", "scope")
 POINTS = 16  # plans/demo.toml: one DC level, one ripple, 10 Hz - 1 MHz at 3 per decade
+# An outlier limit in units of each point's stated standard uncertainty (k = 4: a normal
+# error passes it with probability 0.99994, JCGM 100:2008 (GUM) G.1.3 and table G.1's
+# normal quantiles); a number a fault made silently wrong is far outside it.
+K = 4.0
 
 
 def _faulty() -> dict[str, FaultRates]:
@@ -114,8 +118,8 @@ def test_run_completes_through_faults_with_every_point_once(
 @pytest.mark.slow
 def test_no_stored_number_is_silently_wrong(runs: dict[int, dict[str, Any]], seed: int) -> None:
     """Against the simulator's truth: above the scope's AC-coupling corner region (≥ 200 Hz)
-    and where the truth is not under the noise floor (≤ 80 dB), a value is within 0.3 dB
-    plus its stated uncertainty; a lower bound is at or below the truth."""
+    and where the truth is not under the noise floor (≤ 80 dB), a value is within K = 4 of its
+    stated standard uncertainties; a lower bound is at or below the truth."""
     path = runs[seed]["path"]
     frame = read_results(path).merge(read_truth(path), on="point_id", suffixes=("", "_true"))
     assert len(frame) == POINTS
@@ -123,7 +127,7 @@ def test_no_stored_number_is_silently_wrong(runs: dict[int, dict[str, Any]], see
     assert len(band) >= 10
     values = band[~band["is_bound"]]
     error = (values["rejection_db"] - values["rejection_db_true"]).abs()
-    assert np.all(error <= 0.3 + values["uncertainty_db"]), error.to_numpy()
+    assert np.all(error <= K * values["uncertainty_db"]), error.to_numpy()
     bounds = band[band["is_bound"]]
     assert np.all(bounds["bound_db"] <= bounds["rejection_db_true"])
     # the pin ripple the point was measured with is the one the simulator really had
@@ -226,7 +230,7 @@ def test_faults_too_frequent_abort_safely_keep_points_and_resume(tmp_path: Path)
     truth = read_truth(path).set_index("point_id").sort_index()
     band = final[(final["frequency"] >= 200) & ~final["is_bound"]]
     error = (band["rejection_db"] - truth.loc[band.index, "rejection_db"]).abs()
-    assert np.all(error <= 0.3 + band["uncertainty_db"])
+    assert np.all(error <= K * band["uncertainty_db"])
 
 
 class FailOnce:
@@ -292,7 +296,7 @@ def test_a_fault_in_a_point_is_recovered_and_flagged(tmp_path: Path) -> None:
     flagged = {int(r.point_id): "instrument_retry" in r.flags.split() for r in frame.itertuples()}
     assert flagged == {0: False, 1: True}
     error = (frame["rejection_db"] - frame["rejection_db_true"]).abs()
-    assert np.all(error <= 0.3 + frame["uncertainty_db"])
+    assert np.all(error <= K * frame["uncertainty_db"])
     _ends_safe(factory.sessions[0])
 
 
