@@ -25,7 +25,9 @@ EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
 def _console(stderr: bool = False) -> Any:
     from rich.console import Console
 
-    return Console(stderr=stderr, highlight=False)
+    # Messages on stderr are never wrapped by rich (soft_wrap): a path or a key in an error
+    # stays on one line, whole, for a terminal to wrap and a script or a log to read.
+    return Console(stderr=stderr, highlight=False, soft_wrap=stderr)
 
 
 def _escape(value: object) -> str:
