@@ -120,6 +120,52 @@ def predicted_plan(
     )
 
 
+def predicted_bench_times(
+    scope: analysis.ScopeTimebase,
+    frequency: Any,
+    pin: Any,
+    output: Any,
+    white_sigma: Any,
+    coloured: Any,
+    pin_sigma: Any,
+    target_db: float,
+    min_cycles: int,
+    max_time_s: float,
+    lean: bool = False,
+) -> np.ndarray:
+    """``predicted_plan(...).bench_time`` for many points at once (arrays; ``pin_sigma``
+    NaN where the guess has none), from the same two-step choice."""
+    from benchseq.analysis.capture_many import plan_capture_many
+
+    common: dict[str, Any] = dict(
+        noise_sigma=white_sigma, density_at_f=coloured, pin_noise_sigma=pin_sigma, lean=lean
+    )
+    args = (scope, frequency, pin, output, target_db, min_cycles, max_time_s)
+    whole = plan_capture_many(*args, **common)
+    bench = whole.bench_time.copy()
+    again = ~whole.cycles_bound
+    if np.any(again):
+        picked = [
+            np.broadcast_to(np.asarray(x, dtype=float), bench.shape)[again] for x in args[1:4]
+        ]
+        redo = {
+            k: np.broadcast_to(np.asarray(v, dtype=float), bench.shape)[again]
+            for k, v in common.items()
+            if k != "lean"
+        }
+        bench[again] = plan_capture_many(
+            scope,
+            *picked,
+            target_db,
+            min_cycles,
+            max_time_s,
+            max_record_time=whole.capture_time[again] / RECORD_GRAIN,
+            lean=lean,
+            **redo,
+        ).bench_time
+    return bench
+
+
 def batch(
     plan: analysis.CapturePlan, triggered: int, max_averages: int, rearm: float
 ) -> analysis.CapturePlan:

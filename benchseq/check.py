@@ -352,41 +352,62 @@ def planned_capture_s(
 
     rules = plan.capture
     timebase = scope_timebase(plan, bench)
-    f = np.asarray(frequency, dtype=float)
-    pin = np.asarray(ripple_peak, dtype=float)
-    out = np.zeros((2, f.size))
-    cache: dict[tuple[float, float], tuple[float, float]] = {}
-    for k in range(f.size):
-        key = (round(float(f[k]), 6), round(float(pin[k]), 12))
-        if key not in cache:
+    f = np.asarray(frequency, dtype=float).ravel()
+    pin = np.asarray(ripple_peak, dtype=float).ravel()
+    if f.size == 0:
+        return np.zeros(0), np.zeros(0)
+    # the planner runs once per (frequency, ripple), rounded to 1 µHz and 1 pV: points of
+    # one such key take the first one's estimate (many points share a frequency and ripple)
+    rep, inverse = _first_of_keys(f, pin)
+    fr, pr = f[rep], pin[rep]
+    ends = []
+    for end in (0, 1):
+        white, coloured, pin_sigma, outputs = [], [], [], []
+        for fk, pk in zip(fr.tolist(), pr.tolist(), strict=True):
             if like is not None:
-                noise, rejection = like.at(float(f[k]))
-                cases = [(noise or batches.NoiseGuess(ASSUMED_NOISE_V), rejection)] * 2
+                noise, rejection = like.at(fk)
+                guess = noise or batches.NoiseGuess(ASSUMED_NOISE_V)
             else:
-                density = ASSUMED_DENSITY**2 * (1.0 + ASSUMED_FLICKER_CORNER_HZ / float(f[k]))
-                assumed = batches.NoiseGuess(ASSUMED_NOISE_V, density)
-                fall = 20.0 * math.log10(1.0 + float(f[k]) / ASSUMED_LOOP_CORNER_HZ)
-                cases = [
-                    (assumed, max(r - fall, ASSUMED_LEAST_REJECTION_DB))
-                    for r in ASSUMED_REJECTION_DB
-                ]
-            seconds = []
-            for guess, rejection in cases:
-                expected = batches.predicted_plan(
-                    timebase,
-                    float(f[k]),
-                    float(pin[k]),
-                    max(float(pin[k]) * 10 ** (-rejection / 20.0), 1e-12),
-                    guess,
-                    rules.target_uncertainty_db,
-                    rules.min_cycles,
-                    rules.max_time_s,
-                    lean=True,
-                )
-                seconds.append(float(expected.bench_time))
-            cache[key] = (seconds[0], seconds[1])
-        out[0, k], out[1, k] = cache[key]
-    return out[0], out[1]
+                density = ASSUMED_DENSITY**2 * (1.0 + ASSUMED_FLICKER_CORNER_HZ / fk)
+                guess = batches.NoiseGuess(ASSUMED_NOISE_V, density)
+                fall = 20.0 * math.log10(1.0 + fk / ASSUMED_LOOP_CORNER_HZ)
+                rejection = max(ASSUMED_REJECTION_DB[end] - fall, ASSUMED_LEAST_REJECTION_DB)
+            white.append(guess.white_sigma)
+            coloured.append(guess.coloured)
+            pin_sigma.append(math.nan if guess.pin_sigma is None else guess.pin_sigma)
+            outputs.append(max(pk * 10 ** (-rejection / 20.0), 1e-12))
+        ends.append(
+            batches.predicted_bench_times(
+                timebase,
+                fr,
+                pr,
+                np.array(outputs),
+                np.array(white),
+                np.array(coloured),
+                np.array(pin_sigma),
+                rules.target_uncertainty_db,
+                rules.min_cycles,
+                rules.max_time_s,
+                lean=True,
+            )[inverse]
+        )
+    return ends[0], ends[1]
+
+
+def _first_of_keys(f: np.ndarray, pin: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(index of the first point of each key, each point's position among them), the key
+    being (round(f, 6), round(pin, 12)) as Python rounds."""
+    pairs = np.empty(f.size, dtype=complex)
+    pairs.real, pairs.imag = f, pin
+    _, first, inverse = np.unique(pairs, return_index=True, return_inverse=True)
+    chosen: dict[tuple[float, float], int] = {}
+    for k in sorted(first.tolist()):
+        chosen.setdefault((round(float(f[k]), 6), round(float(pin[k]), 12)), k)
+    keys = [(round(float(f[k]), 6), round(float(pin[k]), 12)) for k in first.tolist()]
+    slot = {k: j for j, k in enumerate(chosen.values())}
+    rep = np.fromiter(chosen.values(), dtype=np.int64, count=len(chosen))
+    per_unique = np.array([slot[chosen[key]] for key in keys], dtype=np.int64)
+    return rep, per_unique[np.ravel(inverse)]
 
 
 def point_seconds(
