@@ -21,6 +21,7 @@ import numpy as np
 from benchseq.bench import Bench, describe_band
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.injector import (
+    REASON_BIT,
     REASON_TITLES,
     REASONS,
     Corners,
@@ -169,7 +170,7 @@ class CheckReport:
     warnings: tuple[str, ...]
     groups: tuple[ReasonGroup, ...]
     worst: tuple[PointVerdict, ...]
-    feasibility: Feasibility = field(repr=False)
+    feasibility: CheckedPoints = field(repr=False)
     estimated_range_s: tuple[float, float] = (math.nan, math.nan)  # low, high
     assumed: dict[str, Any] = field(default_factory=dict)  # what the estimate assumed
     range_breakdown: dict[str, dict[str, float]] = field(default_factory=dict)  # low/high
@@ -548,7 +549,7 @@ def check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckR
 def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckReport:
     model = InjectorModel(bench.injector, bench.generator, bench.pin)
     corners = model.corners()
-    sweep = plan.expand()
+    sweep = plan.point_values()
     n = len(sweep)
     repeats = _linearity_points(plan, sweep)
     device: DeviceLimitsLike = plan.device
@@ -556,21 +557,16 @@ def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> Check
         device.max_load_current is None or bench.load.max_current < device.max_load_current
     ):
         device = _Limits(device.absolute_max_v, device.min_operating_v, bench.load.max_current)
-    feas = model.feasibility(
-        np.concatenate([sweep.frequency, repeats["frequency"]]),
-        np.concatenate([sweep.ripple_peak, repeats["ripple_peak"]]),
-        np.concatenate([sweep.dc_level, repeats["dc_level"]]),
-        np.concatenate([sweep.load_current, repeats["load_current"]]),
-        device=device,
-        supply_protection_v=bench.supply.overvoltage_protection,
-    )
+    feas = _checked_points(model, sweep, repeats, device, bench.supply.overvoltage_protection)
     total, breakdown, method, span, ends = _time_budget(plan, bench, sweep, repeats, model, like)
-    groups = _groups(feas)
+    groups = feas.groups
     worst_ids = sorted({g.worst_point for g in groups if g.severity == "refused"})
     worst_ids += sorted(
         {g.worst_point for g in groups if g.severity == "marginal"} - set(worst_ids)
     )
-    worst = tuple(_point(feas, i, n) for i in worst_ids[:WORST_LISTED])
+    listed = np.array(worst_ids[:WORST_LISTED], dtype=np.int64)
+    figures = feas.at(listed)
+    worst = tuple(_point(figures, k, int(i), n) for k, i in enumerate(listed.tolist()))
     return CheckReport(
         plan_source=plan.source,
         plan_title=plan.title,
@@ -599,25 +595,135 @@ def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> Check
     )
 
 
-@dataclass(frozen=True)
-class _Limits:
-    absolute_max_v: float
-    min_operating_v: float
-    max_load_current: float | None
+CHECK_BLOCK = 1 << 16  # points judged at once (the per-point figures of one block)
 
 
-def _groups(feas: Feasibility) -> tuple[ReasonGroup, ...]:
+@dataclass(frozen=True, eq=False)
+class CheckedPoints:
+    """Every checked point's verdict, compactly (sweep points first, then the linearity
+    repeats): the reasons as bits of REASON_BIT per point; a point's figures and sentences
+    (a Feasibility) are computed again on request with ``at``."""
+
+    refused_bits: np.ndarray  # int16, OR of REASON_BIT
+    marginal_bits: np.ndarray  # int16, OR of REASON_BIT
+    groups: tuple[ReasonGroup, ...]
+    judge: Any = field(repr=False)  # indices -> Feasibility of those points
+
+    def __len__(self) -> int:
+        return int(self.refused_bits.size)
+
+    @property
+    def refused(self) -> np.ndarray:
+        return self.refused_bits != 0
+
+    @property
+    def marginal(self) -> np.ndarray:
+        return (self.refused_bits == 0) & (self.marginal_bits != 0)
+
+    @property
+    def ok(self) -> np.ndarray:
+        return (self.refused_bits == 0) & (self.marginal_bits == 0)
+
+    @property
+    def verdict(self) -> np.ndarray:
+        """'ok' / 'marginal' / 'refused' per point."""
+        out = np.full(len(self), "ok", dtype=object)
+        out[self.marginal] = "marginal"
+        out[self.refused] = "refused"
+        return out
+
+    def count(self, code: str, severity: str = "refused") -> int:
+        bits = self.refused_bits if severity == "refused" else self.marginal_bits
+        return int(np.count_nonzero(bits & REASON_BIT[code]))
+
+    def indices(self, code: str, severity: str = "refused") -> np.ndarray:
+        bits = self.refused_bits if severity == "refused" else self.marginal_bits
+        return np.nonzero(bits & REASON_BIT[code])[0]
+
+    def at(self, indices: Any) -> Feasibility:
+        """The full feasibility (figures, limits, sentences) of the points ``indices``."""
+        return self.judge(np.atleast_1d(np.asarray(indices, dtype=np.int64)))
+
+    def messages(self, i: int) -> list[str]:
+        """Human sentences for point ``i``'s reasons, with the numbers."""
+        return self.at([i]).messages(0)
+
+
+def _checked_points(
+    model: InjectorModel,
+    sweep: Any,
+    repeats: dict[str, np.ndarray],
+    device: DeviceLimitsLike,
+    protection: float | None,
+) -> CheckedPoints:
+    """The feasibility of every point, judged a block at a time: the verdict bits of each
+    point and, per reason, its count, first points and worst point are kept; the figures
+    are not (``CheckedPoints.at`` computes them again for the points asked)."""
+    n = len(sweep)
+    total = n + int(repeats["frequency"].size)
+    names = ("frequency", "ripple_peak", "dc_level", "load_current")
+
+    def values(start: int, stop: int) -> list[np.ndarray]:
+        if stop <= n:
+            return [getattr(sweep, name)[start:stop] for name in names]
+        return [
+            np.concatenate([getattr(sweep, name)[start:n], repeats[name][max(start - n, 0) :]])
+            if start < n
+            else repeats[name][start - n : stop - n]
+            for name in names
+        ]
+
+    def judge(indices: np.ndarray) -> Feasibility:
+        where = [
+            np.where(indices < n, getattr(sweep, name)[np.minimum(indices, max(n - 1, 0))], 0.0)
+            if n
+            else np.zeros(indices.size)
+            for name in names
+        ]
+        if repeats["frequency"].size:
+            back = np.clip(indices - n, 0, repeats["frequency"].size - 1)
+            where = [
+                np.where(indices < n, w, repeats[name][back])
+                for w, name in zip(where, names, strict=True)
+            ]
+        return model.feasibility(*where, device=device, supply_protection_v=protection)
+
+    refused = np.zeros(total, dtype=np.int16)
+    marginal = np.zeros(total, dtype=np.int16)
+    found: dict[tuple[str, str], dict[str, Any]] = {}
+    for start in range(0, total, CHECK_BLOCK):
+        stop = min(start + CHECK_BLOCK, total)
+        feas = model.feasibility(
+            *values(start, stop), device=device, supply_protection_v=protection
+        )
+        refused[start:stop] = feas.refused_bits
+        marginal[start:stop] = feas.marginal_bits
+        for severity in ("refused", "marginal"):
+            for code in REASONS:
+                ids = feas.indices(code, severity)
+                if ids.size == 0:
+                    continue
+                size = np.nan_to_num(feas.severity[code][ids], nan=-np.inf)
+                j = int(np.argmax(size))
+                group = found.setdefault(
+                    (severity, code), {"count": 0, "first": [], "worst": -1, "size": -np.inf}
+                )
+                group["count"] += int(ids.size)
+                group["first"] += [start + int(i) for i in ids[: 20 - len(group["first"])]]
+                if group["worst"] < 0 or size[j] > group["size"]:
+                    group["worst"], group["size"] = start + int(ids[j]), float(size[j])
     out = []
     for severity in ("refused", "marginal"):
         for code in REASONS:
-            ids = feas.indices(code, severity)
-            if ids.size == 0:
+            group = found.get((severity, code))
+            if group is None:
                 continue
-            worst = int(ids[np.argmax(np.nan_to_num(feas.severity[code][ids], nan=-np.inf))])
+            worst = group["worst"]
+            point = judge(np.array([worst]))
             text = next(
                 (
                     m
-                    for (c, _), m in zip(feas.reasons(worst), feas.messages(worst), strict=True)
+                    for (c, _), m in zip(point.reasons(0), point.messages(0), strict=True)
                     if c == code
                 ),
                 REASON_TITLES[code],
@@ -627,26 +733,34 @@ def _groups(feas: Feasibility) -> tuple[ReasonGroup, ...]:
                     code=code,
                     severity=severity,
                     title=REASON_TITLES[code],
-                    count=int(ids.size),
+                    count=group["count"],
                     worst_point=worst,
                     worst_text=text,
-                    first_points=tuple(int(i) for i in ids[:20]),
+                    first_points=tuple(group["first"]),
                 )
             )
-    return tuple(out)
+    return CheckedPoints(refused, marginal, tuple(out), judge)
 
 
-def _point(feas: Feasibility, i: int, n: int) -> PointVerdict:
+@dataclass(frozen=True)
+class _Limits:
+    absolute_max_v: float
+    min_operating_v: float
+    max_load_current: float | None
+
+
+def _point(feas: Feasibility, k: int, i: int, n: int) -> PointVerdict:
+    """Point ``i`` of the check, whose figures are row ``k`` of ``feas``."""
     return PointVerdict(
         index=i,
         kind="sweep" if i < n else "linearity",
-        frequency=float(feas.frequency[i]),
-        ripple_peak=float(feas.ripple_peak[i]),
-        dc_level=float(feas.dc_level[i]),
-        load_current=float(feas.dc_current[i]),
-        verdict=str(feas.verdict[i]),
-        generator_pp=float(feas.generator_pp[i]),
-        messages=tuple(feas.messages(i)),
+        frequency=float(feas.frequency[k]),
+        ripple_peak=float(feas.ripple_peak[k]),
+        dc_level=float(feas.dc_level[k]),
+        load_current=float(feas.dc_current[k]),
+        verdict=str(feas.verdict[k]),
+        generator_pp=float(feas.generator_pp[k]),
+        messages=tuple(feas.messages(k)),
     )
 
 

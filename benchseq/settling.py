@@ -231,14 +231,41 @@ class Settling:
         pin = np.asarray(pin_peak, dtype=float)
         if f.size == 0:
             return np.zeros(0)
-        emf = self.emf_for(f, pin)
         if previous is None:
             previous = np.arange(f.size) - 1
         previous = np.asarray(previous, dtype=np.int64)
-        on = previous >= 0
-        f_old = np.where(on, f[np.maximum(previous, 0)], f)
-        emf_old = np.where(on, emf[np.maximum(previous, 0)], 0.0)
-        return self.change(f_old, emf_old, f, emf, pin)
+        # A wait depends only on the change (old frequency and EMF, new ones, pin ripple):
+        # a sweep repeats the same few changes at every DC level and load, so each distinct
+        # change is computed once (the same arithmetic per change as point by point).
+        setting, uf, upin = _settings(f, pin)
+        emf = self.emf_for(uf, upin)
+        count = uf.size
+        before = np.where(previous >= 0, setting[np.maximum(previous, 0)], count)
+        changes, which = np.unique(before * (count + 1) + setting, return_inverse=True)
+        del before, setting
+        old, new = np.divmod(changes, count + 1)
+        on = old < count
+        old = np.minimum(old, count - 1)
+        waits = self.change(
+            np.where(on, uf[old], uf[new]),
+            np.where(on, emf[old], 0.0),
+            uf[new],
+            emf[new],
+            upin[new],
+        )
+        return waits[np.ravel(which)]
+
+
+def _settings(f: np.ndarray, pin: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(each point's setting number, the distinct settings' frequencies and pin ripples):
+    points of equal frequency and ripple share a number."""
+    uf, fi = np.unique(f, return_inverse=True)
+    up, pi = np.unique(pin, return_inverse=True)
+    pair = np.ravel(fi).astype(np.int64) * up.size + np.ravel(pi)
+    del fi, pi
+    pairs, setting = np.unique(pair, return_inverse=True)
+    fk, pk = np.divmod(pairs, up.size)
+    return np.ravel(setting), uf[fk], up[pk]
 
 
 def previous_in(order: Any, count: int) -> np.ndarray:

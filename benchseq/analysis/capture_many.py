@@ -27,7 +27,7 @@ from benchseq.analysis.capture import (
 from benchseq.analysis.errors import AnalysisError
 from benchseq.analysis.rejection import DB_PER_NEPER
 
-BLOCK_CELLS = 1 << 20  # points x timebases evaluated at once (about 8 MB per array)
+BLOCK_CELLS = 1 << 16  # points x timebases evaluated at once (512 kB per array)
 
 
 @dataclass(frozen=True)
@@ -89,8 +89,10 @@ def plan_capture_many(
     lengths = np.array(sorted(int(k) for k in scope.record_lengths), dtype=float)
     intervals = np.array(sorted(float(dt) for dt in scope.sample_intervals), dtype=float)
     per_block = max(1, BLOCK_CELLS // max(lengths.size * intervals.size, 1))
+    # blocks of neighbouring frequencies: their rows reach the same few timebases
+    order = np.argsort(f, kind="stable")
     for start in range(0, n, per_block):
-        part = slice(start, min(start + per_block, n))
+        part = order[start : start + per_block]
         b, r, c = _block(
             scope,
             intervals,
@@ -115,9 +117,11 @@ def _first_least(keys: list[np.ndarray], allowed: np.ndarray) -> np.ndarray:
     """Per row, the column of the lexicographically least key tuple among the allowed
     columns, the first such column on a tie (Python's tuple order with a strict <)."""
     chosen = allowed.copy()
-    for key in keys:
+    for k, key in enumerate(keys):
         least = np.min(np.where(chosen, key, np.inf), axis=1, keepdims=True)
         chosen &= key == least
+        if k + 1 < len(keys) and not np.any(np.count_nonzero(chosen, axis=1) > 1):
+            break  # no ties left to break
     return np.argmax(chosen, axis=1)
 
 
@@ -159,31 +163,36 @@ def _block(
             f"{DEFAULT_MIN_SAMPLES_PER_CYCLE} samples per cycle: the frequency is out of "
             "this scope's reach"
         )
+    # only the timebases some point of the block can use (the same order kept)
+    used = np.any(allowed, axis=0)
+    dt, length, duration = dt[:, used], length[:, used], duration[:, used]
+    allowed = allowed[:, used]
     nyquist = 0.5 / dt
     weight = (pin_sigma[:, None] ** 2 / nyquist + 0.0) / pin[:, None] ** 2
     weight = weight + (sigma[:, None] ** 2 / nyquist + coloured[:, None]) / out[:, None] ** 2
     needed = db2 * weight / budget if budget > 0 else np.full(weight.shape, np.inf)
     finite = np.isfinite(needed)
     with np.errstate(invalid="ignore", over="ignore"):
-        total = np.where(
-            finite, np.maximum(1.0, np.ceil(needed / duration * (1 - 1e-12))), max_averages
-        )
+        total = np.maximum(1.0, np.ceil(needed / duration * (1 - 1e-12)))
+        if not np.all(finite):
+            total = np.where(finite, total, max_averages)
         records = np.ceil(total / max_averages)
         averages = np.ceil(total / records)
         each = duration + rearm
         bench = records * averages * each
         capped = (bench > max_time) & (total > 1)
-        fit_in = np.maximum(1.0, np.floor_divide(max_time, each))
-        records = np.where(capped, np.ceil(fit_in / max_averages), records)
-        averages = np.where(capped, np.maximum(1.0, np.floor_divide(fit_in, records)), averages)
-        bench = np.where(capped, records * averages * each, bench)
+        if np.any(capped):  # the time cap binds: as many averages as fit
+            fit_in = np.maximum(1.0, np.floor_divide(max_time, each))
+            records = np.where(capped, np.ceil(fit_in / max_averages), records)
+            averages = np.where(capped, np.maximum(1.0, np.floor_divide(fit_in, records)), averages)
+            bench = np.where(capped, records * averages * each, bench)
         recorded = records * averages * duration
         u = np.sqrt(db2 * weight / recorded + 0.0)
     within = bench <= max_time
     meets = (u <= target * (1 + 1e-9)) & within
     keys = [
-        np.where(meets, 0.0, 1.0),
-        np.where(within, 0.0, 1.0),
+        # (not meets, not within) as one key: 0 < 1 < 2 < 3 orders the pairs as tuples do
+        np.where(meets, 0.0, 2.0) + np.where(within, 0.0, 1.0),
         np.where(meets, bench, np.where(within, u, duration)),
         u,
         np.broadcast_to(length, u.shape),
