@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from benchseq.bench import Bench, describe_band
+from benchseq.distinct import first_of, numbered, pairs
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.injector import (
     REASON_BIT,
@@ -361,10 +362,12 @@ def planned_capture_s(
     # one such key take the first one's estimate (many points share a frequency and ripple)
     rep, inverse = _first_of_keys(f, pin)
     fr, pr = f[rep], pin[rep]
+    # what the estimate assumes depends on the frequency alone: once per distinct one
+    fu, fi = numbered(fr)
     ends = []
     for end in (0, 1):
-        white, coloured, pin_sigma, outputs = [], [], [], []
-        for fk, pk in zip(fr.tolist(), pr.tolist(), strict=True):
+        white, coloured, pin_sigma, scale = [], [], [], []
+        for fk in fu.tolist():
             if like is not None:
                 noise, rejection = like.at(fk)
                 guess = noise or batches.NoiseGuess(ASSUMED_NOISE_V)
@@ -376,16 +379,16 @@ def planned_capture_s(
             white.append(guess.white_sigma)
             coloured.append(guess.coloured)
             pin_sigma.append(math.nan if guess.pin_sigma is None else guess.pin_sigma)
-            outputs.append(max(pk * 10 ** (-rejection / 20.0), 1e-12))
+            scale.append(10 ** (-rejection / 20.0))
         ends.append(
             batches.predicted_bench_times(
                 timebase,
                 fr,
                 pr,
-                np.array(outputs),
-                np.array(white),
-                np.array(coloured),
-                np.array(pin_sigma),
+                np.maximum(pr * np.array(scale)[fi], 1e-12),
+                np.array(white)[fi],
+                np.array(coloured)[fi],
+                np.array(pin_sigma)[fi],
                 rules.target_uncertainty_db,
                 rules.min_cycles,
                 rules.max_time_s,
@@ -398,17 +401,13 @@ def planned_capture_s(
 def _first_of_keys(f: np.ndarray, pin: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(index of the first point of each key, each point's position among them), the key
     being (round(f, 6), round(pin, 12)) as Python rounds."""
-    pairs = np.empty(f.size, dtype=complex)
-    pairs.real, pairs.imag = f, pin
-    _, first, inverse = np.unique(pairs, return_index=True, return_inverse=True)
-    chosen: dict[tuple[float, float], int] = {}
-    for k in sorted(first.tolist()):
-        chosen.setdefault((round(float(f[k]), 6), round(float(pin[k]), 12)), k)
-    keys = [(round(float(f[k]), 6), round(float(pin[k]), 12)) for k in first.tolist()]
-    slot = {k: j for j, k in enumerate(chosen.values())}
-    rep = np.fromiter(chosen.values(), dtype=np.int64, count=len(chosen))
-    per_unique = np.array([slot[chosen[key]] for key in keys], dtype=np.int64)
-    return rep, per_unique[np.ravel(inverse)]
+    keys = []
+    for values, digits in ((f, 6), (pin, 12)):
+        distinct, number = numbered(values)
+        rounded, slot = numbered([round(x, digits) for x in distinct.tolist()])
+        keys.append((slot[number], rounded.size))
+    _, _, key = pairs(keys[0][0], keys[0][1], keys[1][0], keys[1][1])
+    return first_of(key, int(key.max()) + 1), key
 
 
 def point_seconds(

@@ -15,6 +15,8 @@ from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 
+from benchseq.distinct import numbered
+
 if TYPE_CHECKING:
     from benchseq.injector import InjectorModel
 
@@ -179,8 +181,7 @@ def evaluate(
 
     # the injector's transfer depends on the frequency alone: computed once per distinct
     # frequency (a plan repeats each at every ripple, DC level and load), then per point
-    uf, at = np.unique(f_eval, return_inverse=True)
-    at = np.ravel(at)
+    uf, at = numbered(f_eval)
     net = model._network(uf)
     ro, rf = amp.output_resistance, model.values.feedback_resistor
     h = -net["alpha"] * (net["a"] - ro / rf) / net["d"]

@@ -53,6 +53,7 @@ from typing import Any
 
 import numpy as np
 
+from benchseq.distinct import numbered, pairs
 from benchseq.injector import TWO_PI, InjectorModel
 
 RESIDUAL_FRACTION = 0.1  # of the target uncertainty (amplitude terms) left of a transient
@@ -237,13 +238,16 @@ class Settling:
         # A wait depends only on the change (old frequency and EMF, new ones, pin ripple):
         # a sweep repeats the same few changes at every DC level and load, so each distinct
         # change is computed once (the same arithmetic per change as point by point).
-        setting, uf, upin = _settings(f, pin)
+        uf, fi = numbered(f)
+        up, pi = numbered(pin)
+        fk, pk, setting = pairs(fi, uf.size, pi, up.size)
+        del fi, pi
+        uf, upin = uf[fk], up[pk]
         emf = self.emf_for(uf, upin)
         count = uf.size
         before = np.where(previous >= 0, setting[np.maximum(previous, 0)], count)
-        changes, which = np.unique(before * (count + 1) + setting, return_inverse=True)
+        old, new, which = pairs(before, count + 1, setting, count)
         del before, setting
-        old, new = np.divmod(changes, count + 1)
         on = old < count
         old = np.minimum(old, count - 1)
         waits = self.change(
@@ -253,19 +257,7 @@ class Settling:
             emf[new],
             upin[new],
         )
-        return waits[np.ravel(which)]
-
-
-def _settings(f: np.ndarray, pin: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(each point's setting number, the distinct settings' frequencies and pin ripples):
-    points of equal frequency and ripple share a number."""
-    uf, fi = np.unique(f, return_inverse=True)
-    up, pi = np.unique(pin, return_inverse=True)
-    pair = np.ravel(fi).astype(np.int64) * up.size + np.ravel(pi)
-    del fi, pi
-    pairs, setting = np.unique(pair, return_inverse=True)
-    fk, pk = np.divmod(pairs, up.size)
-    return np.ravel(setting), uf[fk], up[pk]
+        return waits[which]
 
 
 def previous_in(order: Any, count: int) -> np.ndarray:
