@@ -669,7 +669,7 @@ def _checked_points(
         if stop <= n:
             return [getattr(sweep, name)[start:stop] for name in names]
         return [
-            np.concatenate([getattr(sweep, name)[start:n], repeats[name][max(start - n, 0) :]])
+            np.concatenate([getattr(sweep, name)[start:n], repeats[name][: stop - n]])
             if start < n
             else repeats[name][start - n : stop - n]
             for name in names
