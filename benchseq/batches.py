@@ -137,31 +137,28 @@ def predicted_bench_times(
     NaN where the guess has none), from the same two-step choice."""
     from benchseq.analysis.capture_many import plan_capture_many
 
-    common: dict[str, Any] = dict(
-        noise_sigma=white_sigma, density_at_f=coloured, pin_noise_sigma=pin_sigma, lean=lean
+    f, p, o, w, c, s = (
+        np.asarray(x, dtype=float)
+        for x in (frequency, pin, output, white_sigma, coloured, pin_sigma)
     )
-    args = (scope, frequency, pin, output, target_db, min_cycles, max_time_s)
-    whole = plan_capture_many(*args, **common)
+    whole = plan_capture_many(scope, f, p, o, target_db, min_cycles, max_time_s, w, c, s, lean=lean)
     bench = whole.bench_time.copy()
     again = ~whole.cycles_bound
     if np.any(again):
-        picked = [
-            np.broadcast_to(np.asarray(x, dtype=float), bench.shape)[again] for x in args[1:4]
-        ]
-        redo = {
-            k: np.broadcast_to(np.asarray(v, dtype=float), bench.shape)[again]
-            for k, v in common.items()
-            if k != "lean"
-        }
+        f, p, o, w, c, s = (np.broadcast_to(x, bench.shape)[again] for x in (f, p, o, w, c, s))
         bench[again] = plan_capture_many(
             scope,
-            *picked,
+            f,
+            p,
+            o,
             target_db,
             min_cycles,
             max_time_s,
+            w,
+            c,
+            s,
             max_record_time=whole.capture_time[again] / RECORD_GRAIN,
             lean=lean,
-            **redo,
         ).bench_time
     return bench
 

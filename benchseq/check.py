@@ -717,10 +717,10 @@ def _checked_points(
     out = []
     for severity in ("refused", "marginal"):
         for code in REASONS:
-            group = found.get((severity, code))
-            if group is None:
+            kept = found.get((severity, code))
+            if kept is None:
                 continue
-            worst = group["worst"]
+            worst = kept["worst"]
             point = judge(np.array([worst]))
             text = next(
                 (
@@ -735,10 +735,10 @@ def _checked_points(
                     code=code,
                     severity=severity,
                     title=REASON_TITLES[code],
-                    count=group["count"],
+                    count=kept["count"],
                     worst_point=worst,
                     worst_text=text,
-                    first_points=tuple(group["first"]),
+                    first_points=tuple(kept["first"]),
                 )
             )
     return CheckedPoints(refused, marginal, tuple(out), judge)

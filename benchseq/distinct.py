@@ -40,7 +40,7 @@ def pairs(
         seen[key] = True
         present = np.flatnonzero(seen)
         del seen
-        rank = np.zeros(span, dtype=_small(present.size))
+        rank: np.ndarray = np.zeros(span, dtype=_small(present.size))
         rank[present] = np.arange(present.size)
         number = rank[key]
     else:
