@@ -15,8 +15,6 @@ from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 
-from benchseq.distinct import numbered
-
 if TYPE_CHECKING:
     from benchseq.injector import InjectorModel
 
@@ -181,7 +179,12 @@ def evaluate(
 
     # the injector's transfer depends on the frequency alone: computed once per distinct
     # frequency (a plan repeats each at every ripple, DC level and load), then per point
-    uf, at = numbered(f_eval)
+    uf = np.unique(f_eval)
+    at: Any = slice(None)
+    if 2 * uf.size > f_eval.size:  # mostly distinct: grouping would cost more than it saves
+        uf = f_eval
+    else:
+        at = np.searchsorted(uf, f_eval)
     net = model._network(uf)
     ro, rf = amp.output_resistance, model.values.feedback_resistor
     h = -net["alpha"] * (net["a"] - ro / rf) / net["d"]
