@@ -120,6 +120,49 @@ def predicted_plan(
     )
 
 
+def predicted_bench_times(
+    scope: analysis.ScopeTimebase,
+    frequency: Any,
+    pin: Any,
+    output: Any,
+    white_sigma: Any,
+    coloured: Any,
+    pin_sigma: Any,
+    target_db: float,
+    min_cycles: int,
+    max_time_s: float,
+    lean: bool = False,
+) -> np.ndarray:
+    """``predicted_plan(...).bench_time`` for many points at once (arrays; ``pin_sigma``
+    NaN where the guess has none), from the same two-step choice."""
+    from benchseq.analysis.capture_many import plan_capture_many
+
+    f, p, o, w, c, s = (
+        np.asarray(x, dtype=float)
+        for x in (frequency, pin, output, white_sigma, coloured, pin_sigma)
+    )
+    whole = plan_capture_many(scope, f, p, o, target_db, min_cycles, max_time_s, w, c, s, lean=lean)
+    bench = whole.bench_time.copy()
+    again = ~whole.cycles_bound
+    if np.any(again):
+        f, p, o, w, c, s = (np.broadcast_to(x, bench.shape)[again] for x in (f, p, o, w, c, s))
+        bench[again] = plan_capture_many(
+            scope,
+            f,
+            p,
+            o,
+            target_db,
+            min_cycles,
+            max_time_s,
+            w,
+            c,
+            s,
+            max_record_time=whole.capture_time[again] / RECORD_GRAIN,
+            lean=lean,
+        ).bench_time
+    return bench
+
+
 def batch(
     plan: analysis.CapturePlan, triggered: int, max_averages: int, rearm: float
 ) -> analysis.CapturePlan:

@@ -19,8 +19,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from benchseq.bench import Bench, describe_band
+from benchseq.distinct import first_of, numbered, pairs
 from benchseq.errors import BadInput, FileKeyError
 from benchseq.injector import (
+    REASON_BIT,
     REASON_TITLES,
     REASONS,
     Corners,
@@ -169,7 +171,7 @@ class CheckReport:
     warnings: tuple[str, ...]
     groups: tuple[ReasonGroup, ...]
     worst: tuple[PointVerdict, ...]
-    feasibility: Feasibility = field(repr=False)
+    feasibility: CheckedPoints = field(repr=False)
     estimated_range_s: tuple[float, float] = (math.nan, math.nan)  # low, high
     assumed: dict[str, Any] = field(default_factory=dict)  # what the estimate assumed
     range_breakdown: dict[str, dict[str, float]] = field(default_factory=dict)  # low/high
@@ -214,8 +216,9 @@ def _linearity_points(plan: Plan, sweep: Any) -> dict[str, np.ndarray]:
     lin = getattr(plan, "linearity", None)
     if lin is None or len(lin.frequencies) == 0:
         return {"frequency": empty, "ripple_peak": empty, "dc_level": empty, "load_current": empty}
-    chosen = np.isclose(sweep.frequency[:, None], np.asarray(lin.frequencies)[None, :], rtol=1e-3)
-    at = np.nonzero(chosen.any(axis=1))[0]
+    distinct, number = numbered(sweep.frequency)  # judged once per distinct frequency
+    chosen = np.isclose(distinct[:, None], np.asarray(lin.frequencies)[None, :], rtol=1e-3)
+    at = np.nonzero(chosen.any(axis=1)[number])[0]
     factors = np.asarray(lin.factors, dtype=float)
     return {
         "frequency": np.repeat(sweep.frequency[at], factors.size),
@@ -352,41 +355,62 @@ def planned_capture_s(
 
     rules = plan.capture
     timebase = scope_timebase(plan, bench)
-    f = np.asarray(frequency, dtype=float)
-    pin = np.asarray(ripple_peak, dtype=float)
-    out = np.zeros((2, f.size))
-    cache: dict[tuple[float, float], tuple[float, float]] = {}
-    for k in range(f.size):
-        key = (round(float(f[k]), 6), round(float(pin[k]), 12))
-        if key not in cache:
+    f = np.asarray(frequency, dtype=float).ravel()
+    pin = np.asarray(ripple_peak, dtype=float).ravel()
+    if f.size == 0:
+        return np.zeros(0), np.zeros(0)
+    # the planner runs once per (frequency, ripple), rounded to 1 µHz and 1 pV: points of
+    # one such key take the first one's estimate (many points share a frequency and ripple)
+    rep, inverse = _first_of_keys(f, pin)
+    fr, pr = f[rep], pin[rep]
+    # what the estimate assumes depends on the frequency alone: once per distinct one
+    fu, fi = numbered(fr)
+    ends = []
+    for end in (0, 1):
+        white, coloured, pin_sigma, scale = [], [], [], []
+        for fk in fu.tolist():
             if like is not None:
-                noise, rejection = like.at(float(f[k]))
-                cases = [(noise or batches.NoiseGuess(ASSUMED_NOISE_V), rejection)] * 2
+                noise, rejection = like.at(fk)
+                guess = noise or batches.NoiseGuess(ASSUMED_NOISE_V)
             else:
-                density = ASSUMED_DENSITY**2 * (1.0 + ASSUMED_FLICKER_CORNER_HZ / float(f[k]))
-                assumed = batches.NoiseGuess(ASSUMED_NOISE_V, density)
-                fall = 20.0 * math.log10(1.0 + float(f[k]) / ASSUMED_LOOP_CORNER_HZ)
-                cases = [
-                    (assumed, max(r - fall, ASSUMED_LEAST_REJECTION_DB))
-                    for r in ASSUMED_REJECTION_DB
-                ]
-            seconds = []
-            for guess, rejection in cases:
-                expected = batches.predicted_plan(
-                    timebase,
-                    float(f[k]),
-                    float(pin[k]),
-                    max(float(pin[k]) * 10 ** (-rejection / 20.0), 1e-12),
-                    guess,
-                    rules.target_uncertainty_db,
-                    rules.min_cycles,
-                    rules.max_time_s,
-                    lean=True,
-                )
-                seconds.append(float(expected.bench_time))
-            cache[key] = (seconds[0], seconds[1])
-        out[0, k], out[1, k] = cache[key]
-    return out[0], out[1]
+                density = ASSUMED_DENSITY**2 * (1.0 + ASSUMED_FLICKER_CORNER_HZ / fk)
+                guess = batches.NoiseGuess(ASSUMED_NOISE_V, density)
+                fall = 20.0 * math.log10(1.0 + fk / ASSUMED_LOOP_CORNER_HZ)
+                rejection = max(ASSUMED_REJECTION_DB[end] - fall, ASSUMED_LEAST_REJECTION_DB)
+            white.append(guess.white_sigma)
+            coloured.append(guess.coloured)
+            pin_sigma.append(math.nan if guess.pin_sigma is None else guess.pin_sigma)
+            scale.append(10 ** (-rejection / 20.0))
+        ends.append(
+            batches.predicted_bench_times(
+                timebase,
+                fr,
+                pr,
+                np.maximum(pr * np.array(scale)[fi], 1e-12),
+                np.array(white)[fi],
+                np.array(coloured)[fi],
+                np.array(pin_sigma)[fi],
+                rules.target_uncertainty_db,
+                rules.min_cycles,
+                rules.max_time_s,
+                lean=True,
+            )[inverse]
+        )
+    return ends[0], ends[1]
+
+
+def _first_of_keys(f: np.ndarray, pin: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(index of the first point of each key, each point's position among them), the key
+    being (round(f, 6), round(pin, 12)) as Python rounds."""
+    keys = []
+    for values, digits in ((f, 6), (pin, 12)):
+        distinct, number = numbered(values)
+        rounded, slot = numbered([round(x, digits) for x in distinct.tolist()])
+        keys.append((slot[number], rounded.size))
+        del number
+    _, _, key = pairs(keys[0][0], keys[0][1], keys[1][0], keys[1][1])
+    del keys
+    return first_of(key, int(key.max()) + 1), key
 
 
 def point_seconds(
@@ -399,10 +423,10 @@ def point_seconds(
     """Per point, the bench time (s) of its captures and round trips, low and high ends
     (settle waits, ramps and operating-point waits are counted apart)."""
     low, high = planned_capture_s(plan, bench, frequency, ripple_peak, like)
-    return (
-        CAPTURE_SPREAD[0] * low + POINT_ROUND_TRIPS_S,
-        CAPTURE_SPREAD[1] * high + POINT_ROUND_TRIPS_S,
-    )
+    for end, capture in ((0, low), (1, high)):  # in place: a million points' arrays
+        capture *= CAPTURE_SPREAD[end]
+        capture += POINT_ROUND_TRIPS_S
+    return low, high
 
 
 def assumptions(plan: Plan, like: Likeness | None) -> dict[str, Any]:
@@ -454,6 +478,7 @@ def _time_budget(
     steps = (dc - previous_dc)[dc_moves]
     bias_wait = float(np.sum(settling.dc_step(steps, smallest))) if steps.size else 0.0
     operating = plan.settle.operating_point_s * float(np.count_nonzero(dc_moves | load_moves))
+    del previous_dc, dc_moves, load_key, load_moves  # per-point arrays no longer needed
     every_f = np.concatenate([sweep.frequency, rf])
     every_ripple = np.concatenate([sweep.ripple_peak, rp])
     captures, method = capture_seconds(every_f, plan)
@@ -465,10 +490,9 @@ def _time_budget(
         if floor.every_point:
             floor_hit[:] = True
         elif len(floor.frequencies):
-            hit = np.isclose(
-                sweep.frequency[:, None], np.asarray(floor.frequencies)[None, :], rtol=1e-3
-            )
-            floor_hit = hit.any(axis=1)
+            distinct, number = numbered(sweep.frequency)  # once per distinct frequency
+            hit = np.isclose(distinct[:, None], np.asarray(floor.frequencies)[None, :], rtol=1e-3)
+            floor_hit = hit.any(axis=1)[number]
         floor_s = float(np.sum(captures[:n][floor_hit]))
     from benchseq.coupling import MEASURE_BELOW_HZ
 
@@ -527,7 +551,7 @@ def check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckR
 def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckReport:
     model = InjectorModel(bench.injector, bench.generator, bench.pin)
     corners = model.corners()
-    sweep = plan.expand()
+    sweep = plan.point_values()
     n = len(sweep)
     repeats = _linearity_points(plan, sweep)
     device: DeviceLimitsLike = plan.device
@@ -535,21 +559,16 @@ def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> Check
         device.max_load_current is None or bench.load.max_current < device.max_load_current
     ):
         device = _Limits(device.absolute_max_v, device.min_operating_v, bench.load.max_current)
-    feas = model.feasibility(
-        np.concatenate([sweep.frequency, repeats["frequency"]]),
-        np.concatenate([sweep.ripple_peak, repeats["ripple_peak"]]),
-        np.concatenate([sweep.dc_level, repeats["dc_level"]]),
-        np.concatenate([sweep.load_current, repeats["load_current"]]),
-        device=device,
-        supply_protection_v=bench.supply.overvoltage_protection,
-    )
+    feas = _checked_points(model, sweep, repeats, device, bench.supply.overvoltage_protection)
     total, breakdown, method, span, ends = _time_budget(plan, bench, sweep, repeats, model, like)
-    groups = _groups(feas)
+    groups = feas.groups
     worst_ids = sorted({g.worst_point for g in groups if g.severity == "refused"})
     worst_ids += sorted(
         {g.worst_point for g in groups if g.severity == "marginal"} - set(worst_ids)
     )
-    worst = tuple(_point(feas, i, n) for i in worst_ids[:WORST_LISTED])
+    listed = np.array(worst_ids[:WORST_LISTED], dtype=np.int64)
+    figures = feas.at(listed)
+    worst = tuple(_point(figures, k, int(i), n) for k, i in enumerate(listed.tolist()))
     return CheckReport(
         plan_source=plan.source,
         plan_title=plan.title,
@@ -578,25 +597,135 @@ def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> Check
     )
 
 
-@dataclass(frozen=True)
-class _Limits:
-    absolute_max_v: float
-    min_operating_v: float
-    max_load_current: float | None
+CHECK_BLOCK = 1 << 16  # points judged at once (the per-point figures of one block)
 
 
-def _groups(feas: Feasibility) -> tuple[ReasonGroup, ...]:
+@dataclass(frozen=True, eq=False)
+class CheckedPoints:
+    """Every checked point's verdict, compactly (sweep points first, then the linearity
+    repeats): the reasons as bits of REASON_BIT per point; a point's figures and sentences
+    (a Feasibility) are computed again on request with ``at``."""
+
+    refused_bits: np.ndarray  # int16, OR of REASON_BIT
+    marginal_bits: np.ndarray  # int16, OR of REASON_BIT
+    groups: tuple[ReasonGroup, ...]
+    judge: Any = field(repr=False)  # indices -> Feasibility of those points
+
+    def __len__(self) -> int:
+        return int(self.refused_bits.size)
+
+    @property
+    def refused(self) -> np.ndarray:
+        return self.refused_bits != 0
+
+    @property
+    def marginal(self) -> np.ndarray:
+        return (self.refused_bits == 0) & (self.marginal_bits != 0)
+
+    @property
+    def ok(self) -> np.ndarray:
+        return (self.refused_bits == 0) & (self.marginal_bits == 0)
+
+    @property
+    def verdict(self) -> np.ndarray:
+        """'ok' / 'marginal' / 'refused' per point."""
+        out = np.full(len(self), "ok", dtype=object)
+        out[self.marginal] = "marginal"
+        out[self.refused] = "refused"
+        return out
+
+    def count(self, code: str, severity: str = "refused") -> int:
+        bits = self.refused_bits if severity == "refused" else self.marginal_bits
+        return int(np.count_nonzero(bits & REASON_BIT[code]))
+
+    def indices(self, code: str, severity: str = "refused") -> np.ndarray:
+        bits = self.refused_bits if severity == "refused" else self.marginal_bits
+        return np.nonzero(bits & REASON_BIT[code])[0]
+
+    def at(self, indices: Any) -> Feasibility:
+        """The full feasibility (figures, limits, sentences) of the points ``indices``."""
+        return self.judge(np.atleast_1d(np.asarray(indices, dtype=np.int64)))
+
+    def messages(self, i: int) -> list[str]:
+        """Human sentences for point ``i``'s reasons, with the numbers."""
+        return self.at([i]).messages(0)
+
+
+def _checked_points(
+    model: InjectorModel,
+    sweep: Any,
+    repeats: dict[str, np.ndarray],
+    device: DeviceLimitsLike,
+    protection: float | None,
+) -> CheckedPoints:
+    """The feasibility of every point, judged a block at a time: the verdict bits of each
+    point and, per reason, its count, first points and worst point are kept; the figures
+    are not (``CheckedPoints.at`` computes them again for the points asked)."""
+    n = len(sweep)
+    total = n + int(repeats["frequency"].size)
+    names = ("frequency", "ripple_peak", "dc_level", "load_current")
+
+    def values(start: int, stop: int) -> list[np.ndarray]:
+        if stop <= n:
+            return [getattr(sweep, name)[start:stop] for name in names]
+        return [
+            np.concatenate([getattr(sweep, name)[start:n], repeats[name][: stop - n]])
+            if start < n
+            else repeats[name][start - n : stop - n]
+            for name in names
+        ]
+
+    def judge(indices: np.ndarray) -> Feasibility:
+        where = [
+            np.where(indices < n, getattr(sweep, name)[np.minimum(indices, max(n - 1, 0))], 0.0)
+            if n
+            else np.zeros(indices.size)
+            for name in names
+        ]
+        if repeats["frequency"].size:
+            back = np.clip(indices - n, 0, repeats["frequency"].size - 1)
+            where = [
+                np.where(indices < n, w, repeats[name][back])
+                for w, name in zip(where, names, strict=True)
+            ]
+        return model.feasibility(*where, device=device, supply_protection_v=protection)
+
+    refused = np.zeros(total, dtype=np.int16)
+    marginal = np.zeros(total, dtype=np.int16)
+    found: dict[tuple[str, str], dict[str, Any]] = {}
+    for start in range(0, total, CHECK_BLOCK):
+        stop = min(start + CHECK_BLOCK, total)
+        feas = model.feasibility(
+            *values(start, stop), device=device, supply_protection_v=protection
+        )
+        refused[start:stop] = feas.refused_bits
+        marginal[start:stop] = feas.marginal_bits
+        for severity in ("refused", "marginal"):
+            for code in REASONS:
+                ids = feas.indices(code, severity)
+                if ids.size == 0:
+                    continue
+                size = np.nan_to_num(feas.severity[code][ids], nan=-np.inf)
+                j = int(np.argmax(size))
+                group = found.setdefault(
+                    (severity, code), {"count": 0, "first": [], "worst": -1, "size": -np.inf}
+                )
+                group["count"] += int(ids.size)
+                group["first"] += [start + int(i) for i in ids[: 20 - len(group["first"])]]
+                if group["worst"] < 0 or size[j] > group["size"]:
+                    group["worst"], group["size"] = start + int(ids[j]), float(size[j])
     out = []
     for severity in ("refused", "marginal"):
         for code in REASONS:
-            ids = feas.indices(code, severity)
-            if ids.size == 0:
+            kept = found.get((severity, code))
+            if kept is None:
                 continue
-            worst = int(ids[np.argmax(np.nan_to_num(feas.severity[code][ids], nan=-np.inf))])
+            worst = kept["worst"]
+            point = judge(np.array([worst]))
             text = next(
                 (
                     m
-                    for (c, _), m in zip(feas.reasons(worst), feas.messages(worst), strict=True)
+                    for (c, _), m in zip(point.reasons(0), point.messages(0), strict=True)
                     if c == code
                 ),
                 REASON_TITLES[code],
@@ -606,26 +735,34 @@ def _groups(feas: Feasibility) -> tuple[ReasonGroup, ...]:
                     code=code,
                     severity=severity,
                     title=REASON_TITLES[code],
-                    count=int(ids.size),
+                    count=kept["count"],
                     worst_point=worst,
                     worst_text=text,
-                    first_points=tuple(int(i) for i in ids[:20]),
+                    first_points=tuple(kept["first"]),
                 )
             )
-    return tuple(out)
+    return CheckedPoints(refused, marginal, tuple(out), judge)
 
 
-def _point(feas: Feasibility, i: int, n: int) -> PointVerdict:
+@dataclass(frozen=True)
+class _Limits:
+    absolute_max_v: float
+    min_operating_v: float
+    max_load_current: float | None
+
+
+def _point(feas: Feasibility, k: int, i: int, n: int) -> PointVerdict:
+    """Point ``i`` of the check, whose figures are row ``k`` of ``feas``."""
     return PointVerdict(
         index=i,
         kind="sweep" if i < n else "linearity",
-        frequency=float(feas.frequency[i]),
-        ripple_peak=float(feas.ripple_peak[i]),
-        dc_level=float(feas.dc_level[i]),
-        load_current=float(feas.dc_current[i]),
-        verdict=str(feas.verdict[i]),
-        generator_pp=float(feas.generator_pp[i]),
-        messages=tuple(feas.messages(i)),
+        frequency=float(feas.frequency[k]),
+        ripple_peak=float(feas.ripple_peak[k]),
+        dc_level=float(feas.dc_level[k]),
+        load_current=float(feas.dc_current[k]),
+        verdict=str(feas.verdict[k]),
+        generator_pp=float(feas.generator_pp[k]),
+        messages=tuple(feas.messages(k)),
     )
 
 

@@ -16,7 +16,6 @@ from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 from rich.table import Table
 
-from benchseq.records import SHOWN_COVERAGE_FACTOR
 from benchseq.units import format_si
 
 
@@ -32,6 +31,8 @@ def rejection_text(row: dict[str, Any], prefix: str = "") -> str:
 
 def expanded_text(u: float) -> str:
     """U = k·u (k = SHOWN_COVERAGE_FACTOR) from a standard uncertainty u in dB."""
+    from benchseq.records import SHOWN_COVERAGE_FACTOR  # records: the result store's columns
+
     if not math.isfinite(u):
         return ""
     big_u = SHOWN_COVERAGE_FACTOR * u
@@ -85,6 +86,8 @@ def points_table(rows: list[dict[str, Any]], title: str = "latest points") -> Ta
     """The points: planned frequency (with the generator's move in ppm, when moved towards
     a coherent capture), rejection with U = k·u (k = 2), and input-referred rejection
     when the plan declares the device's gain."""
+    from benchseq.records import SHOWN_COVERAGE_FACTOR
+
     inputs = _has_input_referred(rows)
     loads = any(math.isfinite(float(r.get("load_current", float("nan")))) for r in rows)
     table = Table(title=title, title_justify="left", expand=False)

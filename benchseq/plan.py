@@ -178,6 +178,19 @@ class Sweep:
 
 
 @dataclass(frozen=True, eq=False)
+class PointValues:
+    """The planned points' values in run order (Plan.point_values), arrays of equal length."""
+
+    frequency: np.ndarray  # Hz
+    ripple_peak: np.ndarray  # V peak at the device pin
+    dc_level: np.ndarray  # V
+    load_current: np.ndarray  # A, nan where the plan has no load axis
+
+    def __len__(self) -> int:
+        return int(self.frequency.size)
+
+
+@dataclass(frozen=True, eq=False)
 class Plan:
     """A validated plan file."""
 
@@ -221,6 +234,29 @@ class Plan:
     @property
     def point_count(self) -> int:
         return math.prod(self.axis_values(axis).size for axis in self.axes)
+
+    def point_values(self) -> PointValues:
+        """The values of expand(), in the same run order, as four arrays only (no point
+        ids or per-point convention names: what `check` needs at a million points)."""
+        counts = [self.axis_values(axis).size for axis in self.axes]
+        n = math.prod(counts)
+
+        def column(axis: str, values: np.ndarray) -> np.ndarray:
+            k = self.axes.index(axis)
+            inner = math.prod(counts[k + 1 :])
+            outer = math.prod(counts[:k])
+            return np.tile(np.repeat(np.asarray(values, dtype=float), inner), outer)
+
+        if "load" in self.axes and self.load_currents is not None:
+            load = column("load", self.load_currents)
+        else:
+            load = np.full(n, np.nan)
+        return PointValues(
+            frequency=column("frequency", self.frequencies),
+            ripple_peak=column("ripple", np.array([r.peak for r in self.ripples])),
+            dc_level=column("dc", self.dc_levels),
+            load_current=load,
+        )
 
     def expand(self) -> Sweep:
         """Every point in run order: the first axis changes slowest, the last fastest."""

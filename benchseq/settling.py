@@ -53,6 +53,7 @@ from typing import Any
 
 import numpy as np
 
+from benchseq.distinct import numbered, pairs
 from benchseq.injector import TWO_PI, InjectorModel
 
 RESIDUAL_FRACTION = 0.1  # of the target uncertainty (amplitude terms) left of a transient
@@ -231,14 +232,32 @@ class Settling:
         pin = np.asarray(pin_peak, dtype=float)
         if f.size == 0:
             return np.zeros(0)
-        emf = self.emf_for(f, pin)
         if previous is None:
             previous = np.arange(f.size) - 1
         previous = np.asarray(previous, dtype=np.int64)
-        on = previous >= 0
-        f_old = np.where(on, f[np.maximum(previous, 0)], f)
-        emf_old = np.where(on, emf[np.maximum(previous, 0)], 0.0)
-        return self.change(f_old, emf_old, f, emf, pin)
+        # A wait depends only on the change (old frequency and EMF, new ones, pin ripple):
+        # a sweep repeats the same few changes at every DC level and load, so each distinct
+        # change is computed once (the same arithmetic per change as point by point).
+        uf, fi = numbered(f)
+        up, pi = numbered(pin)
+        fk, pk, setting = pairs(fi, uf.size, pi, up.size)
+        del fi, pi
+        uf, upin = uf[fk], up[pk]
+        emf = self.emf_for(uf, upin)
+        count = uf.size
+        before = np.where(previous >= 0, setting[np.maximum(previous, 0)], count)
+        old, new, which = pairs(before, count + 1, setting, count)
+        del before, setting
+        on = old < count
+        old = np.minimum(old, count - 1)
+        waits = self.change(
+            np.where(on, uf[old], uf[new]),
+            np.where(on, emf[old], 0.0),
+            uf[new],
+            emf[new],
+            upin[new],
+        )
+        return waits[which]
 
 
 def previous_in(order: Any, count: int) -> np.ndarray:
