@@ -150,7 +150,7 @@ class Consolidation:
     max_share: float = 0.05
     min_interval_s: float = 0.0
     every_point: bool = False
-    cost_ratio: float = 2.0
+    cost_ratio: float = 1.5
     max_lag_s: float = 60.0
 
 
