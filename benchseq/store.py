@@ -2,13 +2,14 @@
 
 A point is stored when ``RunWriter.append`` returns: its record is in the journal
 (``RESULT.h5.journal``), written and fsync'd (see benchseq.journal). The HDF5 file is the
-consolidated result, brought up to date from the journal during the run and completed
-on finish: each update copies the current file to a temporary file in the same
-directory, appends the new rows there, fsyncs it and renames it over the old one, so the
-result on disk is always a whole, consistent file and a reader holding the old one open
-never blocks the writer. Readers merge the journal's points the HDF5 file does not hold
-yet, so a partial run loads in full. On "complete" the journal is removed: the HDF5 file
-then holds everything (plan, bench, identities, rows, waveforms, truth).
+consolidated result (the journal's mirror), brought up to date from the journal every few
+points during the run (``Consolidation``) and completed on finish: each update copies the
+current file to a temporary file in the same directory, appends the new rows there, fsyncs
+it and renames it over the old one, so the result on disk is always a whole, consistent file
+and a reader holding the old one open never blocks the writer. Readers merge the journal's
+points the HDF5 file does not hold yet, so a running or partial run loads in full. The
+journal is kept after "complete" too (the record a damaged file is repaired from); the
+complete HDF5 file holds everything (plan, bench, identities, rows, waveforms, truth).
 
 The HDF5 layout is described in benchseq.h5layout, the row encoding and the errors live
 in benchseq.rowcodec, the readers in benchseq.results; every public name stays importable
@@ -455,7 +456,7 @@ class RunWriter:
     def finish(
         self, status: str, traceback: str | None = None, reason: str | None = None, **items: Any
     ) -> None:
-        """End the run: record its status, complete the HDF5 file (journal removed if complete)."""
+        """End the run: record its status, complete the HDF5 file (the journal is kept)."""
         if status not in _FINISH_STATES:
             raise RowError(
                 f"finish status must be one of {', '.join(_FINISH_STATES)}, not {status!r}"

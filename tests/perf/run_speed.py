@@ -1,6 +1,7 @@
 """Benchmarks of the run on the embedded simulated bench (a script, not a test): prints figures.
 
-    python tests/perf/run_speed.py [--points 96] [--parts abcd] [--full] [--dir /tmp]
+    python tests/perf/run_speed.py [--points 96] [--parts abcde] [--full] [--dir /tmp]
+                                     [--baseline OTHER/.venv/bin/python]
 
 (a) the demo sweep (plans/demo.toml): wall time per point, split into record synthesis,
     circuit solve, analysis, storage and the rest (time.perf_counter around the package's
@@ -11,8 +12,12 @@
     simulator's truth (settle + least capture meeting the target by the Cramér–Rao bound of
     a known-frequency sine fit) and against a fixed-capture sequencer; what the sequencer
     spends that the bound does not (ranging, re-ranging, trims, extensions) is counted apart.
-(c) the cost of making one point durable: journal append + fsync, HDF5 update under each
-    consolidation policy, per point (median, p95), beside in-memory baselines.
+(c) the cost of making one point durable under each consolidation policy (HDF5 at finish
+    only, the default with points back to back and at 2 s of bench time per point on a
+    stepped clock, an update after every point): per point (mean, median, p95) and as the
+    ratio of the mean to a bare write + fsync of the same record bytes; with --baseline
+    PYTHON (another worktree's venv) that code is measured too, alternating policy by
+    policy, and both are printed side by side.
 (d) memory of sequencer + store against points (500, 1000, 2000; --full adds 10,000), each
     size in a fresh subprocess with a timeout: peak RSS (VmHWM), RSS during the run,
     tracemalloc peak, and journal/HDF5 bytes per point.
