@@ -141,62 +141,111 @@ def _scale_by_point_id(group: h5py.Group, names: Sequence[str]) -> None:
             group[name].dims[0].attach_scale(ids)
 
 
+def _append_array(group: h5py.Group, name: str, values: np.ndarray) -> None:
+    """Append ``values`` to the resizable 1-D dataset ``name`` of ``group``: one extent
+    change and one write through h5py's low-level calls. An update appends to every column
+    of a table, and the high-level ``resize`` + slice assignment costs several times more
+    per call than these (it re-derives shape, dtype and selection each time)."""
+    count = values.shape[0]
+    if not count:
+        return
+    values = np.ascontiguousarray(values)
+    dsid = h5py.h5d.open(group.id, name.encode())
+    start = dsid.shape[0]
+    dsid.set_extent((start + count,))
+    file_space = dsid.get_space()
+    file_space.select_hyperslab((start,), (count,))
+    memory_space = h5py.h5s.create_simple((count,))
+    dsid.write(memory_space, file_space, values, mtype=h5py.h5t.py_create(values.dtype))
+
+
+def _column_array(kind: str, values: list[Any]) -> np.ndarray:
+    if kind == "str":
+        return np.array(values, dtype=h5py.string_dtype())
+    return np.array(values, dtype=_DTYPES[kind])
+
+
 def _append_rows(group: h5py.Group, columns: Sequence[Column], rows: list[dict]) -> None:
-    """Append journal-encoded ``rows``, with their checksums when the group keeps them."""
+    """Append journal-encoded ``rows``, with their checksums when the group keeps them: one
+    write per column for the whole batch."""
     if not rows:
         return
     if CHECKSUM_NAME in group:
-        crc = group[CHECKSUM_NAME]
-        n = crc.shape[0]
-        crc.resize((n + len(rows),))
-        crc[n:] = np.array([row_checksum(row) for row in rows], dtype=np.uint32)
+        crcs = np.array([row_checksum(row) for row in rows], dtype=np.uint32)
+        _append_array(group, CHECKSUM_NAME, crcs)
     for column in columns:
         values = [_decode(column.kind, row[column.name]) for row in rows]
-        array = np.array(values, dtype=_DTYPES[column.kind])
-        ds = group[column.name]
-        n = ds.shape[0]
-        ds.resize((n + len(rows),))
-        ds[n:] = array
+        _append_array(group, column.name, _column_array(column.kind, values))
 
 
-def _append_waveforms(h5: h5py.File, point_id: int, parts: list[dict], blob: bytes) -> None:
-    for part in parts:
-        group = h5.require_group("waveforms").require_group(part["channel"])
-        dtype = np.dtype(part["dtype"])
-        samples = np.frombuffer(blob, dtype=dtype, count=part["length"], offset=part["at"])
-        if "samples" not in group:
-            group.attrs["meaning"] = "value = samples[start:start+length] * scale + offset"
-            group.attrs[UNITS_ATTR] = part["unit"]
-            group.create_dataset(
-                "samples", shape=(0,), maxshape=(None,), dtype=dtype, chunks=(1 << 15,),
-                compression="gzip", compression_opts=4, shuffle=True,
-            )  # fmt: skip
-            for name, kind in (("point_id", "i8"), ("start", "i8"), ("length", "i8")):
-                group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype=kind)
-            for name in ("scale", "offset", "sample_interval"):
-                group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype="f8")
-            group["sample_interval"].attrs[UNITS_ATTR] = "s"
-            _scale_by_point_id(group, _WAVE_INDEX)
-        elif not group[ID_SCALE].is_scale:  # an older file's index, being resumed or repaired
-            _rename_units(group)
-            _rename_units(group["sample_interval"])
-            _scale_by_point_id(group, _WAVE_INDEX)
-        store = group["samples"]
-        start = store.shape[0]
-        store.resize((start + samples.size,))
-        store[start:] = samples.astype(store.dtype, copy=False)
-        entry = {
-            "point_id": point_id,
-            "start": start,
-            "length": samples.size,
-            "scale": part["scale"],
-            "offset": part["offset"],
-            "sample_interval": part["sample_interval"],
-        }
-        for name, value in entry.items():
-            ds = group[name]
-            ds.resize((ds.shape[0] + 1,))
-            ds[-1] = value
+_WAVE_BATCH_BYTES = 16 << 20  # samples held before a batch of waveforms is written
+
+
+class _WaveformBatch:
+    """The waveforms of the points an update appends, written one batch per channel (the
+    samples end to end, each index dataset in one write) rather than point by point; the
+    samples held are bounded (``_WAVE_BATCH_BYTES``), so a rebuild from a long journal
+    streams."""
+
+    def __init__(self, h5: h5py.File) -> None:
+        self.h5 = h5
+        self._held: dict[str, list[tuple[int, dict, np.ndarray]]] = {}
+        self._bytes = 0
+
+    def add(self, point_id: int, parts: list[dict], blob: bytes) -> None:
+        for part in parts:
+            dtype = np.dtype(part["dtype"])
+            samples = np.frombuffer(blob, dtype=dtype, count=part["length"], offset=part["at"])
+            self._held.setdefault(part["channel"], []).append((point_id, part, samples))
+            self._bytes += samples.nbytes
+        if self._bytes >= _WAVE_BATCH_BYTES:
+            self.flush()
+
+    def flush(self) -> None:
+        for held in self._held.values():
+            group = _wave_group(self.h5, held[0][1])
+            first = h5py.h5d.open(group.id, b"samples").shape[0]
+            lengths = np.array([samples.size for _, _, samples in held], dtype=np.int64)
+            starts = first + np.concatenate(([0], np.cumsum(lengths)[:-1])).astype(np.int64)
+            dtype = group["samples"].dtype
+            _append_array(
+                group, "samples", np.concatenate([s.astype(dtype, copy=False) for *_, s in held])
+            )
+            index = {
+                "point_id": np.array([pid for pid, _, _ in held], dtype=np.int64),
+                "start": starts,
+                "length": lengths,
+                **{name: np.array([part[name] for _, part, _ in held], dtype=np.float64)
+                   for name in ("scale", "offset", "sample_interval")},
+            }  # fmt: skip
+            for name, values in index.items():
+                _append_array(group, name, values)
+        self._held = {}
+        self._bytes = 0
+
+
+def _wave_group(h5: h5py.File, part: dict) -> h5py.Group:
+    """The group of ``part``'s channel, made on first use (an older file's brought to
+    today's conventions)."""
+    group = h5.require_group("waveforms").require_group(part["channel"])
+    if "samples" not in group:
+        group.attrs["meaning"] = "value = samples[start:start+length] * scale + offset"
+        group.attrs[UNITS_ATTR] = part["unit"]
+        group.create_dataset(
+            "samples", shape=(0,), maxshape=(None,), dtype=np.dtype(part["dtype"]),
+            chunks=(1 << 15,), compression="gzip", compression_opts=4, shuffle=True,
+        )  # fmt: skip
+        for name, kind in (("point_id", "i8"), ("start", "i8"), ("length", "i8")):
+            group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype=kind)
+        for name in ("scale", "offset", "sample_interval"):
+            group.create_dataset(name, (0,), maxshape=(None,), chunks=(256,), dtype="f8")
+        group["sample_interval"].attrs[UNITS_ATTR] = "s"
+        _scale_by_point_id(group, _WAVE_INDEX)
+    elif not group[ID_SCALE].is_scale:  # an older file's index, being resumed or repaired
+        _rename_units(group)
+        _rename_units(group["sample_interval"])
+        _scale_by_point_id(group, _WAVE_INDEX)
+    return group
 
 
 def _write_meta(h5: h5py.File, meta: Mapping[str, Any]) -> None:

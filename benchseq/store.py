@@ -2,13 +2,14 @@
 
 A point is stored when ``RunWriter.append`` returns: its record is in the journal
 (``RESULT.h5.journal``), written and fsync'd (see benchseq.journal). The HDF5 file is the
-consolidated result, brought up to date from the journal during the run and completed
-on finish: each update copies the current file to a temporary file in the same
-directory, appends the new rows there, fsyncs it and renames it over the old one, so the
-result on disk is always a whole, consistent file and a reader holding the old one open
-never blocks the writer. Readers merge the journal's points the HDF5 file does not hold
-yet, so a partial run loads in full. On "complete" the journal is removed: the HDF5 file
-then holds everything (plan, bench, identities, rows, waveforms, truth).
+consolidated result (the journal's mirror), brought up to date from the journal every few
+points during the run (``Consolidation``) and completed on finish: each update copies the
+current file to a temporary file in the same directory, appends the new rows there, fsyncs
+it and renames it over the old one, so the result on disk is always a whole, consistent file
+and a reader holding the old one open never blocks the writer. Readers merge the journal's
+points the HDF5 file does not hold yet, so a running or partial run loads in full. The
+journal is kept after "complete" too (the record a damaged file is repaired from); the
+complete HDF5 file holds everything (plan, bench, identities, rows, waveforms, truth).
 
 The HDF5 layout is described in benchseq.h5layout, the row encoding and the errors live
 in benchseq.rowcodec, the readers in benchseq.results; every public name stays importable
@@ -43,7 +44,6 @@ from benchseq.h5layout import (
     FORMAT_VERSION,
     JOURNAL_SUFFIX,
     _append_rows,
-    _append_waveforms,
     _column_group,
     _h5_wave_dtypes,
     _H5State,
@@ -52,6 +52,7 @@ from benchseq.h5layout import (
     _read_h5_state,
     _result_path,
     _Unreadable,
+    _WaveformBatch,
     _write_meta,
     journal_path,
 )
@@ -130,18 +131,28 @@ FAULT_ENV = "BENCHSEQ_STORE_FAULT"
 
 @dataclass(frozen=True)
 class Consolidation:
-    """When the HDF5 file is brought up to date during a run (always on finish).
+    """When the HDF5 file is brought up to date during a run (always on finish, resume and
+    repair; the journal is the durable record and every reader merges its newer points).
 
-    After a point, the file is updated when the time since the last update is at least
-    ``min_interval_s`` and at least the last update's duration / ``max_share``: updates
-    then cost at most that share of the run's wall time however large the file grows,
-    and on a bench whose points take seconds the file is updated after every point.
+    After a point, the file is updated when both hold:
+
+    - the time since the last update is at least ``min_interval_s`` and at least the last
+      update's duration / ``max_share`` (updates take at most that share of the run's wall
+      time however large the file grows);
+    - the journal appends since the last update took at least the last update's duration /
+      ``cost_ratio`` (the update adds at most ``cost_ratio`` times the journal's own cost to
+      each point's storage: a durable point costs at most 1 + ``cost_ratio`` journal
+      appends), unless the file is ``max_lag_s`` behind (a bench whose points take many
+      seconds still gets its file updated about once a minute).
+
     ``every_point`` forces an update after each point (tests).
     """
 
     max_share: float = 0.05
     min_interval_s: float = 0.0
     every_point: bool = False
+    cost_ratio: float = 1.5
+    max_lag_s: float = 60.0
 
 
 def _utc_now() -> str:
@@ -180,6 +191,7 @@ class RunWriter:
         self._h5_meta_revision = -1
         self._last_update_end = -math.inf
         self._last_update_s = 0.0
+        self._journal_s = 0.0  # time spent in journal appends since the last update
         self._finished = False
         self._lock: WriteLock | None = None
 
@@ -444,7 +456,7 @@ class RunWriter:
     def finish(
         self, status: str, traceback: str | None = None, reason: str | None = None, **items: Any
     ) -> None:
-        """End the run: record its status, complete the HDF5 file (journal removed if complete)."""
+        """End the run: record its status, complete the HDF5 file (the journal is kept)."""
         if status not in _FINISH_STATES:
             raise RowError(
                 f"finish status must be one of {', '.join(_FINISH_STATES)}, not {status!r}"
@@ -497,6 +509,7 @@ class RunWriter:
 
     def _write(self, body: dict[str, Any], blob: bytes = b"") -> None:
         assert self._journal is not None
+        started = time.monotonic()
         try:
             self._journal.append(body, blob)
         except OSError as exc:
@@ -505,19 +518,31 @@ class RunWriter:
                 f"{self.journal_file}: could not store {what}: {exc.strerror or exc}; "
                 f"the {len(self._stored)} points stored before are intact (resume when fixed)"
             ) from None
+        self._journal_s += time.monotonic() - started
 
     # -- consolidation ------------------------------------------------------------------
     def _maybe_consolidate(self) -> None:
-        now = time.monotonic()
-        wait = max(self.policy.min_interval_s, self._last_update_s / self.policy.max_share)
-        if self.policy.every_point or now - self._last_update_end >= wait:
-            try:
-                self._consolidate()
-            except StoreWriteError as exc:  # the point is durable; readers use the journal
-                self.consolidation_error = str(exc)
+        policy = self.policy
+        if not policy.every_point:
+            since = time.monotonic() - self._last_update_end
+            if since < max(policy.min_interval_s, self._last_update_s / policy.max_share):
+                return
+            cheap_enough = self._journal_s * policy.cost_ratio >= self._last_update_s
+            if not cheap_enough and since < policy.max_lag_s:
+                return
+        try:
+            self._consolidate(durable=False)
+        except StoreWriteError as exc:  # the point is durable; readers use the journal
+            self.consolidation_error = str(exc)
 
-    def _consolidate(self, stage: str = "update") -> None:
-        """Bring the HDF5 file up to date from the journal: copy, append, fsync, rename."""
+    def _consolidate(self, stage: str = "update", *, durable: bool = True) -> None:
+        """Bring the HDF5 file up to date from the journal: copy, append, fsync, rename.
+
+        ``durable`` also fsyncs the folder after the rename. An update during a run skips
+        that: the journal holds every point, so a power cut that loses the rename leaves the
+        previous whole file, which readers merge with the journal and a resume or repair
+        brings up to date. Finish, resume and repair make the rename durable (the journal
+        may be deleted after a complete run)."""
         started = time.monotonic()
         tmp = self.path.with_name(f".{self.path.name}.{uuid.uuid4().hex[:8]}{_TMP_SUFFIX}")
         try:
@@ -530,7 +555,8 @@ class RunWriter:
             _fsync_file(tmp)
             _fault_hook(f"{stage}-written")
             os.replace(tmp, self.path)
-            jr.fsync_directory(self.path.parent)
+            if durable:
+                jr.fsync_directory(self.path.parent)
         except (OSError, RuntimeError) as exc:
             with contextlib.suppress(OSError):
                 tmp.unlink()
@@ -544,6 +570,7 @@ class RunWriter:
         self._h5_meta_revision = self._meta_revision
         self._last_update_end = time.monotonic()
         self._last_update_s = self._last_update_end - started
+        self._journal_s = 0.0
         self.consolidation_error = None
 
     def _bring_up_to_date(self, h5: h5py.File, fresh: bool) -> tuple[set[int], int | None]:
@@ -556,6 +583,7 @@ class RunWriter:
         truth_rows: list[dict] = []
         new_ids: set[int] = set()
         known = set() if fresh else self._h5_ids
+        waves = _WaveformBatch(h5)
         with open(self.journal_file, "rb") if scan else contextlib.nullcontext() as handle:
             for record in scan.records if scan else []:
                 body = record.body
@@ -570,20 +598,22 @@ class RunWriter:
                     truth_rows.append(body["truth"])
                 if body.get("waveforms"):
                     assert handle is not None  # records come only from an open journal
-                    _append_waveforms(h5, pid, body["waveforms"], jr.read_blob(handle, record))
+                    waves.add(pid, body["waveforms"], jr.read_blob(handle, record))
+        waves.flush()
         _append_rows(points, self.columns, rows)
         if truth is not None and self.truth_columns:
             _append_rows(truth, self.truth_columns, truth_rows)
-        h5.attrs["format"] = FORMAT
-        h5.attrs["format_version"] = FORMAT_VERSION
-        h5.attrs["run_id"] = self.run_id
-        h5.attrs["journal_id"] = self.journal_id
         offset = scan.valid_end if scan else None
         h5.attrs["journal_offset"] = offset if offset is not None else len(jr.FILE_MAGIC)
         h5.attrs["point_rows"] = points["point_id"].shape[0]
+        if start is None:  # a new file, or one written from another journal
+            h5.attrs["format"] = FORMAT
+            h5.attrs["format_version"] = FORMAT_VERSION
+            h5.attrs["run_id"] = self.run_id
+            h5.attrs["journal_id"] = self.journal_id
+            h5.attrs["complex_layout"] = COMPLEX_LAYOUT
         if scan is not None:
             _record_damage(h5, self.journal_file, scan, fresh)
-        h5.attrs["complex_layout"] = COMPLEX_LAYOUT
         if fresh or self._h5_meta_revision != self._meta_revision:
             _write_meta(h5, self.meta)
         return new_ids, offset
@@ -749,6 +779,8 @@ def _record_damage(h5: h5py.File, jpath: Path, scan: jr.ScanResult, fresh: bool)
     """Keep in the file the damaged journal records an update met (a torn tail excepted:
     resume cuts it), so readers report them after the journal has moved on."""
     inside = [(a, b) for a, b in scan.damaged if b < scan.size]
+    if not (fresh or inside) and DAMAGE_COUNT in h5.attrs:
+        return  # nothing new: the file keeps what earlier updates recorded
     count = 0 if fresh else int(h5.attrs.get(DAMAGE_COUNT, 0))
     ranges = [] if fresh or not count else json.loads(h5.attrs[DAMAGE_RANGES])
     if inside:

@@ -14,6 +14,7 @@ import math
 import os
 import struct
 import threading
+import time
 
 import h5py
 import numpy as np
@@ -248,6 +249,64 @@ def test_consolidation_policy_bounds_the_share_of_time(tmp_path):
     writer.finish("complete")
     with h5py.File(path, "r", locking=False) as h5:
         assert h5["points/point_id"].shape[0] == 40
+
+
+class _SteppedClock:
+    """The store's ``time`` with ``monotonic`` moved on only by the test (no wall clock)."""
+
+    def __init__(self) -> None:
+        self.now = 1000.0
+
+    def monotonic(self) -> float:
+        return self.now
+
+    def __getattr__(self, name: str):
+        return getattr(time, name)
+
+
+@pytest.mark.parametrize(("pace_s", "bound"), [(2.0, "cost"), (30.0, "lag")])
+def test_default_policy_bounds_the_mirror_cost_and_lag(tmp_path, monkeypatch, pace_s, bound):
+    """The default policy's stated bounds: HDF5 updates during the run cost at most
+    ``cost_ratio`` times the journal appends they follow, unless the file would be more than
+    ``max_lag_s`` of bench time behind; every durable point reads at every step meanwhile.
+    The clock is stepped by the test: a journal append "takes" 1 ms, an update 10 ms."""
+    clock = _SteppedClock()
+    monkeypatch.setattr(store, "time", clock)
+    path = tmp_path / "paced.h5"
+    policy = Consolidation()
+    writer = RunWriter.create(path, META, COLUMNS, truth_columns=TRUTH, policy=policy)
+    journal_append, bring = writer._journal.append, writer._bring_up_to_date
+    spent = {"journal": 0.0, "updates": []}
+
+    def slow_append(*args, **kwargs):
+        clock.now += 1e-3
+        spent["journal"] += 1e-3
+        return journal_append(*args, **kwargs)
+
+    def slow_update(*args, **kwargs):
+        clock.now += 10e-3
+        spent["updates"].append(clock.now)
+        return bring(*args, **kwargs)
+
+    monkeypatch.setattr(writer._journal, "append", slow_append)
+    monkeypatch.setattr(writer, "_bring_up_to_date", slow_update)
+    for i in range(40):
+        writer.append(i, row_for(i), truth=truth_for(i))
+        assert_same(read_results(path), range(i + 1))  # the journal's tail merged
+        clock.now += pace_s
+    updates = spent["updates"]
+    assert 1 < len(updates) < 40, "updated after every point, or never"
+    if bound == "cost":  # points come fast enough for the cost bound to decide
+        assert 10e-3 * len(updates) <= policy.cost_ratio * spent["journal"] + 10e-3
+    gaps = np.diff(updates)
+    assert np.all(gaps <= policy.max_lag_s + pace_s + 1.0)  # never far behind
+    with h5py.File(path, "r", locking=False) as h5:
+        in_file = h5["points/point_id"].shape[0]
+    assert 0 < in_file < 40
+    writer.finish("complete")
+    with h5py.File(path, "r", locking=False) as h5:
+        assert h5["points/point_id"].shape[0] == 40
+    assert_same(read_results(path), range(40))
 
 
 # -- atomic replacement -----------------------------------------------------------------------

@@ -1,6 +1,7 @@
 """Benchmarks of the run on the embedded simulated bench (a script, not a test): prints figures.
 
-    python tests/perf/run_speed.py [--points 96] [--parts abcd] [--full] [--dir /tmp]
+    python tests/perf/run_speed.py [--points 96] [--parts abcde] [--full] [--dir /tmp]
+                                     [--baseline OTHER/.venv/bin/python]
 
 (a) the demo sweep (plans/demo.toml): wall time per point, split into record synthesis,
     circuit solve, analysis, storage and the rest (time.perf_counter around the package's
@@ -11,8 +12,12 @@
     simulator's truth (settle + least capture meeting the target by the Cramér–Rao bound of
     a known-frequency sine fit) and against a fixed-capture sequencer; what the sequencer
     spends that the bound does not (ranging, re-ranging, trims, extensions) is counted apart.
-(c) the cost of making one point durable: journal append + fsync, HDF5 update under each
-    consolidation policy, per point (median, p95), beside in-memory baselines.
+(c) the cost of making one point durable under each consolidation policy (HDF5 at finish
+    only, the default with points back to back and at 2 s of bench time per point on a
+    stepped clock, an update after every point): per point (mean, median, p95) and as the
+    ratio of the mean to a bare write + fsync of the same record bytes; with --baseline
+    PYTHON (another worktree's venv) that code is measured too, alternating policy by
+    policy, and both are printed side by side.
 (d) memory of sequencer + store against points (500, 1000, 2000; --full adds 10,000), each
     size in a fresh subprocess with a timeout: peak RSS (VmHWM), RSS during the run,
     tracemalloc peak, and journal/HDF5 bytes per point.
@@ -602,80 +607,212 @@ def _rows(count: int) -> tuple[list[dict], list[dict]]:
     return rows, truths
 
 
-def part_c(folder: Path, count: int) -> None:
+BENCH_PACE_S = 2.0  # bench time per point the paced policy row simulates (a typical point)
+DURABLE_POLICIES = (
+    ("journal + fsync only (HDF5 at finish)", {"min_interval_s": 1e12}, 0.0),
+    ("default policy, points back to back", {}, 0.0),
+    (f"default policy, {BENCH_PACE_S:g} s of bench per point", {}, BENCH_PACE_S),
+    ("HDF5 update after every point", {"every_point": True}, 0.0),
+)
+
+
+class _BenchClock:
+    """The store's ``time`` module with a bench's pace added to ``monotonic``: each point
+    moves it on by the bench time a point would take, so the consolidation policy decides as
+    on a real bench while the costs measured stay real (perf_counter is untouched)."""
+
+    def __init__(self) -> None:
+        self.offset = 0.0
+
+    def monotonic(self) -> float:
+        return time.monotonic() + self.offset
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(time, name)
+
+
+def _bare_write_fsync(path: Path, records: list[bytes]) -> list[float]:
+    """Each record written with one os.write and fsync'd: the least a durable point costs."""
+    times = []
+    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+    try:
+        for record in records:
+            start = time.perf_counter()
+            os.write(fd, record)
+            os.fsync(fd)
+            times.append(time.perf_counter() - start)
+    finally:
+        os.close(fd)
+    return times
+
+
+def durability_child(folder: Path, count: int, policy: int) -> dict[str, Any]:
+    """(c) measured with the benchseq this interpreter imports (this tree's, or another
+    worktree's when run by its venv's Python): for policy number ``policy``, the cost of
+    each append beside a bare write + fsync of the same record bytes, measured just before."""
+    import benchseq.store as store
     from benchseq import journal
     from benchseq.records import POINT_COLUMNS, TRUTH_COLUMNS
     from benchseq.store import Consolidation, RunWriter, _encode_row
 
-    print(
-        f"\n== (c) cost of one durable point (RunWriter.append), {count} points each, "
-        f"real row columns ({len(POINT_COLUMNS)}) + truth, folder {folder}"
-    )
     rows, truths = _rows(count)
-    results: list[tuple[str, list[float], str]] = []
-    kept: list[dict] = []
-    times = []
-    for row in rows:
-        start = time.perf_counter()
-        kept.append(dict(row))
-        times.append(time.perf_counter() - start)
-    results.append(("in memory: list.append(copy of row)", times, ""))
+    records = [
+        journal.encode_record(
+            {
+                "kind": "point",
+                "id": i,
+                "row": _encode_row(POINT_COLUMNS, row, i, "p"),
+                "truth": _encode_row(TRUTH_COLUMNS, truths[i], i, "t"),
+            }
+        )
+        for i, row in enumerate(rows)
+    ]
+    out: dict[str, Any] = {"code": str(Path(store.__file__).resolve().parents[1]), "rows": []}
     times = []
     for i, row in enumerate(rows):
         start = time.perf_counter()
         body = {"kind": "point", "id": i, "row": _encode_row(POINT_COLUMNS, row, i, "p")}
         journal.encode_record(body, b"")
         times.append(time.perf_counter() - start)
-    results.append(("in memory: encode row + record (no I/O)", times, ""))
-    policies = (
-        ("journal + fsync only (HDF5 at finish)", Consolidation(min_interval_s=1e12)),
-        ("default policy (HDF5 when <= 5 % of time)", Consolidation()),
-        ("HDF5 update after every point", Consolidation(every_point=True)),
-    )
-    for name, policy in policies:
-        path = folder / f"durable-{len(results)}.h5"
+    out["encode_ms"] = 1e3 * statistics.median(times)
+    for n, (name, options, pace) in [(policy, DURABLE_POLICIES[policy])]:
+        bare = _bare_write_fsync(folder / f"bare-{n}.bin", records)
+        path = folder / f"durable-{n}.h5"
         writer = RunWriter.create(
             path,
             {"run_id": name},
             POINT_COLUMNS,
             force=True,
             truth_columns=TRUTH_COLUMNS,
-            policy=policy,
+            policy=Consolidation(**options),
         )
-        merges = [0]
+        updates = [0]
         original = writer._consolidate
 
-        def counted(original=original, merges=merges) -> None:
-            merges[0] += 1
-            original()
+        def counted(
+            *args: Any, original: Any = original, updates: Any = updates, **kw: Any
+        ) -> None:
+            updates[0] += 1
+            original(*args, **kw)
 
         writer._consolidate = counted  # type: ignore[method-assign]
-        times = []
-        for i, row in enumerate(rows):
+        clock = _BenchClock()
+        real_time, store.time = store.time, clock  # type: ignore[assignment]
+        try:
+            times = []
+            for i, row in enumerate(rows):
+                start = time.perf_counter()
+                writer.append(i, row, truth=truths[i])
+                times.append(time.perf_counter() - start)
+                clock.offset += pace
+            journal_bytes = writer.journal_file.stat().st_size
             start = time.perf_counter()
-            writer.append(i, row, truth=truths[i])
-            times.append(time.perf_counter() - start)
-        journal_bytes = writer.journal_file.stat().st_size
-        start = time.perf_counter()
-        writer.finish("complete")
-        finish = time.perf_counter() - start
-        note = (
-            f"{merges[0] - 1} HDF5 updates during; finish {1e3 * finish:.1f} ms; journal "
-            f"{journal_bytes / count:.0f} B/pt, HDF5 {path.stat().st_size / count:.0f} B/pt"
+            writer.finish("complete")
+            finish = time.perf_counter() - start
+        finally:
+            store.time = real_time
+        out["rows"].append(
+            {
+                "name": name,
+                "bare_ms": 1e3 * statistics.fmean(bare),
+                "median_ms": 1e3 * statistics.median(times),
+                "mean_ms": 1e3 * statistics.fmean(times),
+                "p95_ms": 1e3 * rb.percentile(times, 95),
+                "max_ms": 1e3 * max(times),
+                "updates": updates[0] - 1,  # the finish's own update apart
+                "finish_ms": 1e3 * finish,
+                "journal_b": journal_bytes / count,
+                "h5_b": path.stat().st_size / count,
+                "first_tenth_ms": 1e3 * statistics.median(times[: max(1, count // 10)]),
+                "last_tenth_ms": 1e3 * statistics.median(times[-max(1, count // 10) :]),
+            }
         )
-        results.append((name, times, note))
-    print(f"{'per point':<44}{'median ms':>10}{'p95 ms':>9}{'max ms':>9}")
-    for name, values, note in results:
-        print(
-            f"{name:<44}{1e3 * statistics.median(values):>10.3f}"
-            f"{1e3 * rb.percentile(values, 95):>9.3f}{1e3 * max(values):>9.2f}  {note}"
+    out["record_b"] = statistics.fmean(len(r) for r in records)
+    return out
+
+
+def _durability_run(python: str, folder: Path, count: int, policy: int) -> dict[str, Any] | str:
+    folder.mkdir(parents=True, exist_ok=True)
+    try:
+        done = subprocess.run(
+            [
+                python,
+                str(Path(__file__).resolve()),
+                "--durable-child",
+                str(policy),
+                "--dir",
+                str(folder),
+                "--durable-points",
+                str(count),
+            ],
+            capture_output=True,
+            text=True,
+            timeout=1800,
+            check=False,
         )
-    every = results[-1][1]
-    tenth = max(1, count // 10)
+    except subprocess.TimeoutExpired:
+        return "timed out after 1800 s"
+    if done.returncode != 0:
+        return f"exit {done.returncode}: {done.stderr.strip().splitlines()[-1:]}"
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def part_c(folder: Path, count: int, baseline: str | None) -> None:
+    """(c): the figures of this tree and, with ``baseline`` (the Python of a venv whose
+    benchseq is the code to compare with), of that code: one process per policy and code,
+    the two codes alternating policy by policy so that a change of the machine's load
+    reaches both, each ratio taken against the bare write + fsync measured in its process."""
+    from benchseq.records import POINT_COLUMNS
+
     print(
-        f"HDF5 after every point: median of the first {tenth} {1e3 * statistics.median(every[:tenth]):.2f} ms, "
-        f"of the last {tenth} {1e3 * statistics.median(every[-tenth:]):.2f} ms (the copy grows with the file)"
+        f"\n== (c) cost of one durable point (RunWriter.append), {count} points each, "
+        f"real row columns ({len(POINT_COLUMNS)}) + truth, folder {folder}"
     )
+    pythons = [("this tree", sys.executable)] + ([("baseline", baseline)] if baseline else [])
+    runs: list[tuple[str, dict[str, Any]]] = [(label, {"rows": []}) for label, _ in pythons]
+    for policy in range(len(DURABLE_POLICIES)):
+        for (label, python), (_, run) in zip(pythons, runs, strict=True):
+            got = _durability_run(python, folder / f"{label.split()[0]}-{policy}", count, policy)
+            if isinstance(got, str):
+                print(f"{label}: failed ({got})")
+                return
+            run.update({k: v for k, v in got.items() if k != "rows"})
+            run["rows"] += got["rows"]
+    for label, run in runs:
+        print(
+            f"{label}: benchseq from {run['code']}; record {run['record_b']:.0f} B/point; "
+            f"encode row + record (no I/O) {run['encode_ms']:.3f} ms"
+        )
+    good = runs
+    head = "".join(f"{label:>30}" for label, _ in good)
+    print(f"\n{'ratio: mean cost per point / bare write+fsync':<44}{head}")
+    print(f"{'of the same record bytes (both means in ms;':<44}")
+    print(f"{f' HDF5 updates during the {count} points)':<44}")
+    for i, (name, _, _) in enumerate(DURABLE_POLICIES):
+        cells = ""
+        for _, run in good:
+            row = run["rows"][i]
+            cell = (
+                f"{row['mean_ms'] / row['bare_ms']:5.1f}x "
+                f"({row['mean_ms']:.2f}/{row['bare_ms']:.2f}, {row['updates']})"
+            )
+            cells += f"{cell:>30}"
+        print(f"{name:<44}{cells}")
+    for label, run in good:
+        print(f"\n{label}, per point:")
+        print(f"{'':<44}{'median ms':>10}{'p95 ms':>9}{'max ms':>9}")
+        for row in run["rows"]:
+            print(
+                f"{row['name']:<44}{row['median_ms']:>10.3f}{row['p95_ms']:>9.3f}"
+                f"{row['max_ms']:>9.2f}  finish {row['finish_ms']:.1f} ms; journal "
+                f"{row['journal_b']:.0f} B/pt, HDF5 {row['h5_b']:.0f} B/pt"
+            )
+        every = run["rows"][-1]
+        tenth = max(1, count // 10)
+        print(
+            f"HDF5 after every point: median of the first {tenth} {every['first_tenth_ms']:.2f} "
+            f"ms, of the last {tenth} {every['last_tenth_ms']:.2f} ms (the copy grows with the file)"
+        )
 
 
 # -- (d) memory against points --------------------------------------------------------------
@@ -891,6 +1028,12 @@ def main() -> None:
         "--sizes", default="500,1000,2000", help="(d) points per run, comma-separated"
     )
     parser.add_argument("--durable-points", type=int, default=300, help="(c) points (>= 200)")
+    parser.add_argument(
+        "--baseline",
+        help="(c) also measure with this Python (a venv whose benchseq is the code to "
+        "compare with, e.g. another worktree's .venv/bin/python)",
+    )
+    parser.add_argument("--durable-child", type=int, help=argparse.SUPPRESS)
     parser.add_argument("--demo-runs", type=int, default=3, help="(a) repeats of the demo")
     parser.add_argument("--no-tracemalloc", action="store_true", help="(d) peak RSS only")
     parser.add_argument(
@@ -902,6 +1045,10 @@ def main() -> None:
     args = parser.parse_args()
     if args.memory_child:
         memory_child(args.memory_child, Path(args.dir), args.tracemalloc)
+        return
+    if args.durable_child is not None:
+        child = durability_child(Path(args.dir), args.durable_points, args.durable_child)
+        print(json.dumps(child))
         return
     sizes_ok = all(x.strip().isdigit() and 10 <= int(x) <= 20_000 for x in args.sizes.split(","))
     if (
@@ -924,7 +1071,7 @@ def main() -> None:
         if "b" in args.parts:
             part_b(folder, args.points, args.noise_trials)
         if "c" in args.parts:
-            part_c(folder, args.durable_points)
+            part_c(folder, args.durable_points, args.baseline)
         if "d" in args.parts:
             sizes = tuple(int(x) for x in args.sizes.split(",")) + (
                 (FULL_SIZE,) if args.full else ()
