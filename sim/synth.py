@@ -103,9 +103,15 @@ def _shaped_noise(
     node: NodeSignal,
     channel: ChannelSetup,
     probe: float,
+    white_rms: float = 0.0,
 ) -> np.ndarray:
     """Node noise at the scope input (V, float32), generated in the frequency domain
-    (one-sided PSD). The spectrum's shape needs no more than float32's 7 digits."""
+    (one-sided PSD). The spectrum's shape needs no more than float32's 7 digits.
+
+    ``white_rms`` (V per sample) adds the front end's white noise to the same spectrum, a
+    flat one-sided density of white_rms²·2/fs, rather than drawing it sample by sample: one
+    set of random numbers for both. Only the record's mean (the DC bin, 1/n of the white
+    power) is left out with the node noise's."""
     fs = 1.0 / dt
     size = n // 2 + 1
     f = np.arange(size, dtype=np.float32) * np.float32(fs / n)  # np.fft.rfftfreq(n, dt)
@@ -118,7 +124,7 @@ def _shaped_noise(
         )
     psd *= channel.power_response(f)
     alias = white**2 * max(0.0, 0.5 * math.pi * band - fs / 2.0) / (fs / 2.0)
-    psd += np.float32(alias * (1.0 + channel.gain_error) ** 2)
+    psd += np.float32(alias * (1.0 + channel.gain_error) ** 2 + white_rms**2 * 2.0 / fs)
     psd[0] = 0.0
     scale = np.sqrt(psd * np.float32(fs * n / 4.0))
     spectrum = np.empty(size, dtype=np.complex64)
@@ -256,13 +262,16 @@ def acquire_channel(
         node_noise_rms *= 1.0 + channel.gain_error
         white_rms = math.hypot(white_rms, node_noise_rms)
     elif node.white_noise > 0:
-        noise = _shaped_noise(rng, n, dt, node, channel, probe)
+        noise = _shaped_noise(rng, n, dt, node, channel, probe, white_rms)
+        # the front end's white noise is in it: σ below is the realised rms of both
         shaped_rms = math.sqrt(float(np.square(noise).mean(dtype=np.float64))) if n else 0.0
+        white_rms = 0.0
         noise *= np.float32(per_volt / math.sqrt(m))
         y += noise
-    noise = rng.standard_normal(n, dtype=np.float32)
-    noise *= np.float32(white_rms / math.sqrt(m) * per_volt)
-    y += noise
+    if white_rms > 0:
+        noise = rng.standard_normal(n, dtype=np.float32)
+        noise *= np.float32(white_rms / math.sqrt(m) * per_volt)
+        y += noise
     codes = y
     if m == 1:
         np.rint(codes, out=codes)
