@@ -1,6 +1,7 @@
 """The demo's wall time against an older checkout, side by side (a script, not a test).
 
     python tests/perf/demo_wall.py [--base /work/wt/base14] [--repeats 3] [--seed 0]
+    python tests/perf/demo_wall.py --agreement 6 --base CHECKOUT
 
 Prints, for this checkout and for ``--base`` (another checkout of benchseq with its own
 ``.venv``, e.g. one made before the software was made cheaper), interleaved run by run:
@@ -16,6 +17,13 @@ Prints, for this checkout and for ``--base`` (another checkout of benchseq with 
 - medians over ``--repeats`` runs of each, their ratio this/base, and the software time per
   point that a real bench would wait for in series with its own time (the wall time without
   the simulator's synthesis, encoding and circuit solve).
+
+With ``--agreement N`` it instead runs the demo on seeds 0…N−1 in both checkouts and
+compares the result files point by point: the rejection's difference d over its standard
+uncertainty (u of this checkout, and u_c = √(u² + u_base²) since the two runs' noise is
+independent), and each checkout's coverage of the simulator's truth (share within ±1.96u,
+rms of error/u; bounds at or below the truth). Use it with ``--base`` set to the commit
+before a change that should not move any number beyond its uncertainty.
 
 The simulated bench runs on a virtual clock, so all of a run's wall time is software. The
 machine's load average is printed before and after: on a shared machine take the medians of
@@ -122,8 +130,9 @@ def _python(tree: Path) -> str:
     return str(venv) if venv.exists() else sys.executable
 
 
-def _cli_wall(tree: Path, seed: int) -> float:
+def _cli_wall(tree: Path, seed: int, keep: Path | None = None) -> float:
     with tempfile.TemporaryDirectory() as folder:
+        out = keep if keep is not None else Path(folder) / "demo.h5"
         command = [
             _python(tree),
             "-m",
@@ -131,7 +140,7 @@ def _cli_wall(tree: Path, seed: int) -> float:
             "run",
             str(tree / "plans" / "demo.toml"),
             "--out",
-            str(Path(folder) / "demo.h5"),
+            str(out),
             "--force",
             "--seed",
             str(seed),
@@ -169,11 +178,65 @@ def _load(when: str) -> None:
     print(f"load average {when}: {one:.2f} {five:.2f} {fifteen:.2f} ({os.cpu_count()} CPUs)")
 
 
+def _agreement(trees: dict[str, Path], seeds: int) -> None:
+    import numpy as np
+    import pandas as pd
+
+    from benchseq.store import read_results, read_truth
+
+    frames = []
+    with tempfile.TemporaryDirectory() as folder:
+        for seed in range(seeds):
+            both = {}
+            for name, tree in trees.items():
+                out = Path(folder) / f"{name}-{seed}.h5"
+                _cli_wall(tree, seed, keep=out)
+                both[name] = read_results(out).merge(
+                    read_truth(out), on="point_id", suffixes=("", "_true")
+                )
+            merged = both["this"].merge(both["base"], on="point_id", suffixes=("", "_base"))
+            merged["seed"] = seed
+            frames.append(merged)
+    frame = pd.concat(frames, ignore_index=True)
+    values = frame[~frame["is_bound"] & ~frame["is_bound_base"]]
+    d = values["rejection_db"] - values["rejection_db_base"]
+    u, ub = values["uncertainty_db"], values["uncertainty_db_base"]
+    uc = np.sqrt(u**2 + ub**2)
+    print(
+        f"\nagreement over seeds 0–{seeds - 1}: {len(frame)} points, {len(values)} values in both"
+    )
+    print(f"  |d|/u   max {np.max(np.abs(d / u)):.2f}, beyond 4: {int(np.sum(np.abs(d / u) > 4))}")
+    print(
+        f"  |d|/u_c max {np.max(np.abs(d / uc)):.2f}, beyond 2: {int(np.sum(np.abs(d / uc) > 2))}"
+        f" (5 % of {len(values)} expected ≈ {0.05 * len(values):.1f}), beyond 4: "
+        f"{int(np.sum(np.abs(d / uc) > 4))}; rms(d/u_c) {np.sqrt(np.mean((d / uc) ** 2)):.2f}"
+    )
+    print(f"  median u: this {np.median(u):.4f} dB, base {np.median(ub):.4f} dB")
+    changed = int(np.sum(frame["is_bound"] != frame["is_bound_base"]))
+    print(f"  points a value in one and a bound in the other: {changed}")
+    for name, suffix in (("this", ""), ("base", "_base")):
+        val = frame[~frame["is_bound" + suffix]]
+        z = (val["rejection_db" + suffix] - val["rejection_db_true" + suffix]) / val[
+            "uncertainty_db" + suffix
+        ]
+        bounds = frame[frame["is_bound" + suffix]]
+        le = np.mean(bounds["bound_db" + suffix] <= bounds["rejection_db_true" + suffix])
+        print(
+            f"  {name}: truth within ±1.96u {100 * np.mean(np.abs(z) <= 1.96):.1f} % of "
+            f"{len(val)} values, beyond 4u {int(np.sum(np.abs(z) > 4))}, rms(err/u) "
+            f"{np.sqrt(np.mean(z**2)):.2f}; bounds ≤ truth "
+            + (f"{100 * le:.0f} % of {len(bounds)}" if len(bounds) else "(none)")
+        )
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--base", default="/work/wt/base14", help="checkout to compare with")
     parser.add_argument("--repeats", type=int, default=3, help="runs of each kind per checkout")
     parser.add_argument("--seed", type=int, default=0, help="simulated bench seed")
+    parser.add_argument(
+        "--agreement", type=int, default=0, help="compare result files on seeds 0…N−1 instead"
+    )
     parser.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     parser.add_argument("--root", default=str(ROOT), help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -182,6 +245,9 @@ def main() -> None:
         return
     base = Path(args.base).resolve()
     trees = {"this": ROOT, "base": base}
+    if args.agreement:
+        _agreement(trees, args.agreement)
+        return
     threads = {name: _sets_one_thread(tree) for name, tree in trees.items()}
     _load("at start")
     print(f"this: {ROOT} (one BLAS thread: {threads['this']})")
