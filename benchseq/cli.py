@@ -1122,7 +1122,35 @@ def _json_error(args: argparse.Namespace, error: object, code: int) -> int:
     return code
 
 
+# BLAS threads for the command's own process. The fits' matrix products are narrow (a
+# record's blocks times a few cos/sin columns) and memory-bound: a second OpenBLAS thread
+# only adds hand-over and, on a loaded machine, spinning (tests/perf/demo_wall.py).
+BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS")
+
+
+def one_blas_thread() -> bool:
+    """Load numpy with one BLAS thread, when nothing has loaded it yet and the user has not
+    set a thread count; returns whether it did.
+
+    OpenBLAS reads its thread count once, when numpy loads it, so this must run before the
+    first numpy import: it is called first thing in ``main`` (the `benchseq` command, which
+    also serves the simulated bench), never on importing the package. The variables are
+    removed again after the import, so the after-run command, ngspice and other children
+    inherit the user's environment unchanged."""
+    if "numpy" in sys.modules or any(name in os.environ for name in BLAS_THREAD_VARIABLES):
+        return False
+    for name in BLAS_THREAD_VARIABLES:
+        os.environ[name] = "1"
+    try:
+        import numpy  # noqa: F401  (loads OpenBLAS with the variables set)
+    finally:
+        for name in BLAS_THREAD_VARIABLES:
+            os.environ.pop(name, None)
+    return True
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    one_blas_thread()
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.quiet and args.verbose:

@@ -6,7 +6,7 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from benchseq.analysis.sinefit import SineFit, fit_sines
+from benchseq.analysis.sinefit import MultiSineFit, SineFit, fit_sines
 
 DEFAULT_ORDERS = (2, 3, 4, 5)
 NYQUIST_MARGIN = 0.95  # harmonics above this fraction of fs/2 are left out of the fit
@@ -26,6 +26,23 @@ class HarmonicFit:
     thd: float
 
 
+def harmonic_orders(
+    frequency: float, sample_rate: float, orders: Sequence[int] = DEFAULT_ORDERS
+) -> tuple[int, ...]:
+    """The orders of ``orders`` that fit below NYQUIST_MARGIN of the Nyquist frequency."""
+    return tuple(
+        int(k) for k in orders if k >= 2 and k * frequency < NYQUIST_MARGIN * sample_rate / 2
+    )
+
+
+def harmonics_from_fit(fit: MultiSineFit, orders: tuple[int, ...]) -> HarmonicFit:
+    """A HarmonicFit from a joint fit at [f, k·f for k in orders]."""
+    fundamental, *harmonics = fit.components
+    power = sum(h.amplitude**2 for h in harmonics)
+    thd = math.sqrt(power) / fundamental.amplitude if fundamental.amplitude > 0 else math.inf
+    return HarmonicFit(fundamental=fundamental, harmonics=tuple(harmonics), orders=orders, thd=thd)
+
+
 def fit_harmonics(
     samples: object,
     sample_rate: float,
@@ -34,11 +51,6 @@ def fit_harmonics(
     t0: float = 0.0,
 ) -> HarmonicFit:
     """Fit the fundamental and the given harmonic orders jointly; THD from their amplitudes."""
-    kept = tuple(
-        int(k) for k in orders if k >= 2 and k * frequency < NYQUIST_MARGIN * sample_rate / 2
-    )
+    kept = harmonic_orders(frequency, sample_rate, orders)
     fit = fit_sines(samples, sample_rate, [frequency, *(k * frequency for k in kept)], t0)
-    fundamental, *harmonics = fit.components
-    power = sum(h.amplitude**2 for h in harmonics)
-    thd = math.sqrt(power) / fundamental.amplitude if fundamental.amplitude > 0 else math.inf
-    return HarmonicFit(fundamental=fundamental, harmonics=tuple(harmonics), orders=kept, thd=thd)
+    return harmonics_from_fit(fit, kept)

@@ -16,7 +16,7 @@ import numpy as np
 
 from benchseq.analysis import _blocks
 from benchseq.analysis.errors import AnalysisError
-from benchseq.analysis.sinefit import as_records
+from benchseq.analysis.sinefit import Projection, as_records, project_records
 
 DEFAULT_NEIGHBOURS = 10  # K: neighbours at k = 2…K bins on each side
 DEFAULT_HARMONICS = 5  # harmonics of f fitted along with each neighbour
@@ -57,6 +57,26 @@ def neighbour_frequencies(
     return np.sort(cand[keep & ~near_harmonic])
 
 
+def floor_frequencies(
+    frequency: float,
+    n: int,
+    sample_rate: float,
+    neighbours: int = DEFAULT_NEIGHBOURS,
+    harmonics: int = DEFAULT_HARMONICS,
+) -> tuple[np.ndarray, np.ndarray]:
+    """What noise_floor fits on an n-sample record: the known tones [f, 2f…] and the
+    neighbours f_k (may be empty)."""
+    duration = n / sample_rate
+    near = neighbour_frequencies(frequency, duration, sample_rate, neighbours)
+    nyquist = sample_rate / 2.0
+    known = [frequency] + [
+        h * frequency
+        for h in range(2, harmonics + 1)
+        if h * frequency < nyquist - SKIP_BINS / duration
+    ]
+    return np.array(known, dtype=float), near
+
+
 def noise_floor(
     samples: object,
     sample_rate: float,
@@ -74,29 +94,34 @@ def noise_floor(
     record = as_records(samples)
     if record.shape[0] != 1:
         raise AnalysisError("noise_floor takes one record")
-    n = record.shape[1]
-    duration = n / sample_rate
-    near = neighbour_frequencies(frequency, duration, sample_rate, neighbours)
+    known, near = floor_frequencies(frequency, record.shape[1], sample_rate, neighbours, harmonics)
+    _no_neighbours(near, frequency, record.shape[1], sample_rate)
+    projection = project_records(record, sample_rate, np.concatenate([known, near]), t0)
+    return floor_from_projection(projection, known.size)
+
+
+def _no_neighbours(near: np.ndarray, frequency: float, n: int, sample_rate: float) -> None:
     if near.size == 0:
         raise AnalysisError(
-            f"no neighbour frequencies around {frequency:.6g} Hz fit in a {duration:.4g} s record "
-            f"at {sample_rate:.6g} Sa/s: capture more cycles"
+            f"no neighbour frequencies around {frequency:.6g} Hz fit in a {n / sample_rate:.4g} s "
+            f"record at {sample_rate:.6g} Sa/s: capture more cycles"
         )
-    nyquist = sample_rate / 2.0
-    known = [frequency] + [
-        h * frequency
-        for h in range(2, harmonics + 1)
-        if h * frequency < nyquist - SKIP_BINS / duration
-    ]
-    freqs = np.concatenate([known, near])
-    x = freqs / sample_rate
-    phi = _blocks.TWO_PI * np.mod(freqs * t0, 1.0)
-    proj, sums, _ = _blocks.project(record, x, phi)
+
+
+def floor_from_projection(projection: Projection, known: int) -> NoiseFloor:
+    """noise_floor from a projection onto [known tones (f first)…, neighbours…] (the one
+    pass over the record that the output's fit at f shares)."""
+    p = projection
+    n = p.n
+    x, phi, proj, sums = p.x, p.phi, p.proj, p.sums
+    frequency = float(p.frequencies[0])
+    _no_neighbours(p.frequencies[known:], frequency, n, p.sample_rate)
+    duration = n / p.sample_rate
     single = np.linalg.inv(_blocks.sine_gram(n, x[:1], phi[:1]))
     at_f = single[0, 0] + single[1, 1]  # σ_c² of the single-tone fit at f, in units of s²
-    m = len(known)
+    m = known
     scaled = []
-    for i in range(m, freqs.size):
+    for i in range(m, x.size):
         cols = np.array([*range(m), i])
         gram = _blocks.sine_gram(n, x[cols], phi[cols])
         rhs = np.empty(2 * cols.size + 1)
@@ -118,7 +143,7 @@ def noise_floor(
         mean_amplitude=RAYLEIGH_MEAN * sigma,
         density=sigma * math.sqrt(duration),
         used=len(scaled),
-        frequencies=tuple(float(f) for f in near),
+        frequencies=tuple(float(f) for f in p.frequencies[known:]),
     )
 
 

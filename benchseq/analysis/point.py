@@ -11,19 +11,31 @@ import numpy as np
 
 from benchseq.analysis.calibration import ChannelCalibration
 from benchseq.analysis.codes import CodeCheck, RangeVerdict, check_codes
-from benchseq.analysis.distortion import DEFAULT_ORDERS, HarmonicFit, fit_harmonics
+from benchseq.analysis.distortion import (
+    DEFAULT_ORDERS,
+    HarmonicFit,
+    harmonics_from_fit,
+)
+from benchseq.analysis.distortion import harmonic_orders as orders_below_nyquist
 from benchseq.analysis.errors import AnalysisError
 from benchseq.analysis.floor import (
     DEFAULT_DETECTION_K,
     DEFAULT_NEIGHBOURS,
     NoiseFloor,
-    noise_floor,
+    floor_frequencies,
+    floor_from_projection,
     value_threshold,
     widened_quantile,
 )
 from benchseq.analysis.refine import DEFAULT_MIN_SNR, FrequencyRefinement, refine_frequency
 from benchseq.analysis.rejection import BOUND_Z, Rejection, rejection
-from benchseq.analysis.sinefit import SineFit, as_records, fit_sine
+from benchseq.analysis.sinefit import (
+    SineFit,
+    as_records,
+    fit_projected,
+    fit_sines_projected,
+    project_records,
+)
 
 MIN_FLOOR_NEIGHBOURS = 4  # fewer neighbour fits than this: use the fit's own σ_c instead
 
@@ -168,17 +180,23 @@ def measure_point(
         refinement = FrequencyRefinement(frequency, False, "off", math.nan)
     f_fit = refinement.frequency
 
+    # one pass over each channel: the pin's at [f, harmonics], the output's at [f,
+    # harmonics, neighbours]; every fit below is solved from those projections
+    kept = orders_below_nyquist(f_fit, rate, harmonic_orders) if harmonic_orders else ()
+    pin_pass = project_records(as_records(pin), rate, [f_fit, *(k * f_fit for k in kept)], t0)
     harmonics = None
     thd = math.nan
     if harmonic_orders:
-        harmonics = fit_harmonics(pin, rate, f_fit, harmonic_orders, t0)
+        harmonics = harmonics_from_fit(fit_sines_projected(pin_pass), kept)
         thd = harmonics.thd
-    pin_fit = fit_sine(pin, rate, f_fit, t0)
-    out_fit = fit_sine(out, rate, f_fit, t0)
+    pin_fit = fit_projected(pin_pass, 0)
+    known, near = floor_frequencies(f_fit, out.size, rate, neighbours)
+    out_pass = project_records(as_records(out), rate, np.concatenate([known, near]), t0)
+    out_fit = fit_projected(out_pass, 0)
 
     floor: NoiseFloor | None = None
     try:
-        floor = noise_floor(out, rate, f_fit, t0, neighbours)
+        floor = floor_from_projection(out_pass, known.size)
     except AnalysisError:
         floor = None
     if floor is not None and floor.used >= MIN_FLOOR_NEIGHBOURS:

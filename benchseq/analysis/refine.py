@@ -20,6 +20,10 @@ from benchseq.analysis.sinefit import SineFit, as_records, fit_sine
 
 DEFAULT_MIN_SNR = 30.0  # A/σ_c below this: the pin channel may be too near its floor to refine
 _MAX_STEPS = 40
+# refine_frequency works on the record averaged in boxes of D samples, D as large as keeps
+# this many samples per cycle and at least _MIN_DECIMATED samples
+DECIMATED_SAMPLES_PER_CYCLE = 32
+_MIN_DECIMATED = 4096
 
 
 @dataclass(frozen=True)
@@ -123,6 +127,28 @@ class FrequencyRefinement:
     frequency_sigma: float
 
 
+def decimate_for_refinement(
+    record: np.ndarray, sample_rate: float, frequency: float, t0: float = 0.0
+) -> tuple[np.ndarray, float, float]:
+    """The record averaged over boxes of D consecutive samples, with its rate and the time
+    of its first (box-centre) sample: (record, sample_rate / D, t0 + (D − 1)/(2·fs)).
+
+    A box average passes the tone at f with gain sinc(π·f·D/fs) and divides white noise's
+    variance by D while the samples drop by D, so A²·N/σ² — and with it the Cramér–Rao bound
+    of the frequency, 12σ²/((2π)²·A²·N·T²) in cycles² [Kay, Estimation Theory, §3.10] — is
+    unchanged up to 1/sinc²: at 32 samples per cycle after decimation that is 0.3 % in
+    variance. The noise near f, which alone sets a frequency estimate's spread, passes the
+    box almost whole; what it removes lies far above f. Records too short or too coarsely
+    sampled for D ≥ 2 come back unchanged."""
+    d = int(sample_rate / (DECIMATED_SAMPLES_PER_CYCLE * frequency))
+    d = min(d, record.size // _MIN_DECIMATED)
+    if d < 2:
+        return record, sample_rate, t0
+    k = record.size // d
+    boxes = record[: k * d].reshape(k, d).mean(axis=1)
+    return boxes, sample_rate / d, t0 + 0.5 * (d - 1) / sample_rate
+
+
 def refine_frequency(
     samples: object,
     sample_rate: float,
@@ -134,16 +160,19 @@ def refine_frequency(
 
     Refuses when the channel's own three-parameter fit has A/σ_c < ``min_snr`` (it may be at
     its floor, where a free frequency locks onto noise), when the fit does not converge, or
-    when it lands more than half a bin from the start.
+    when it lands more than half a bin from the start. Both fits run on the record
+    decimated by decimate_for_refinement (σ_c at f and the frequency's bound are those of
+    the whole record), so the Gauss–Newton steps read a short record.
     """
-    record = as_records(samples)[0]
-    first = fit_sine(record, sample_rate, frequency, t0)
+    whole = as_records(samples)[0]
+    record, rate, start = decimate_for_refinement(whole, sample_rate, frequency, t0)
+    first = fit_sine(record, rate, frequency, start)
     if not first.snr >= min_snr:
         return FrequencyRefinement(frequency, False, "low_snr", math.nan)
     try:
-        free = fit_sine_free(record, sample_rate, frequency, t0)
+        free = fit_sine_free(record, rate, frequency, start)
     except FitNotConverged:
         return FrequencyRefinement(frequency, False, "not_converged", math.nan)
-    if abs(free.frequency - frequency) * record.size / sample_rate > 0.5:
+    if abs(free.frequency - frequency) * whole.size / sample_rate > 0.5:
         return FrequencyRefinement(frequency, False, "off_by_over_half_bin", math.nan)
     return FrequencyRefinement(free.frequency, True, "", free.frequency_sigma)

@@ -173,42 +173,75 @@ class _Solution:
     n: int
 
 
-def solve(
-    records: np.ndarray, sample_rate: float, frequencies: np.ndarray, t0: float = 0.0
-) -> _Solution:
-    """Least squares for columns [cos, sin] per frequency plus an offset, every record at once."""
+@dataclass(frozen=True, eq=False)
+class Projection:
+    """One pass over M records: their projections onto F frequencies, Σy and Σy². A fit at
+    any subset of those frequencies (plus the offset) follows from it without reading the
+    records again, so a point's joint harmonic fit, its single-tone fit and its noise floor
+    share one pass per channel."""
+
+    records: np.ndarray  # (M, N) float64, kept for the direct residual when Σy² cancels
+    sample_rate: float
+    frequencies: np.ndarray  # (F,) Hz
+    t0: float
+    x: np.ndarray  # (F,) cycles per sample
+    phi: np.ndarray  # (F,) phase at the first sample, rad
+    proj: np.ndarray  # (M, F) complex, Σ y e^{−jθ}
+    sums: np.ndarray  # (M,) Σ y
+    energy: np.ndarray  # (M,) Σ y²
+
+    @property
+    def n(self) -> int:
+        return int(self.records.shape[1])
+
+
+def project_records(
+    records: np.ndarray, sample_rate: float, frequencies: object, t0: float = 0.0
+) -> Projection:
+    """The one pass over ``records`` (from as_records) that every fit at ``frequencies`` needs."""
     freqs = np.atleast_1d(np.asarray(frequencies, dtype=float))
     _check_rate_frequency(sample_rate, freqs)
-    m, n = records.shape
-    nf = freqs.size
-    if n <= 2 * nf + 1:
-        raise AnalysisError(f"{n} samples cannot determine {2 * nf + 1} parameters")
     x = freqs / sample_rate
     phi = _blocks.TWO_PI * np.mod(freqs * t0, 1.0)
-    gram = _blocks.sine_gram(n, x, phi)
-    if np.linalg.cond(gram) > _MAX_CONDITION:
-        raise AnalysisError(
-            f"a {n}-sample record at {sample_rate:.6g} Sa/s cannot separate "
-            f"{freqs.tolist()} Hz from the offset (too few cycles, or too near Nyquist): "
-            "capture a longer record"
-        )
-    inverse = np.linalg.inv(gram)
     proj, sums, _ = _blocks.project(records, x, phi)
-    rhs = np.empty((m, 2 * nf + 1))
-    rhs[:, 0 : 2 * nf : 2] = proj.real
-    rhs[:, 1 : 2 * nf : 2] = -proj.imag
-    rhs[:, -1] = sums
-    coef = np.linalg.solve(gram, rhs.T).T  # (M, P)
     energy = _row_energy(records)
     if not np.all(np.isfinite(energy)):
         raise AnalysisError(
             "the record contains NaN or infinite samples (or values too large to square)"
         )
+    return Projection(records, float(sample_rate), freqs, float(t0), x, phi, proj, sums, energy)
+
+
+def solve_projected(projection: Projection, columns: object = None) -> _Solution:
+    """Least squares for [cos, sin] at the projection's frequencies ``columns`` (indices;
+    None = all) plus an offset, every record at once."""
+    p = projection
+    cols = np.arange(p.x.size) if columns is None else np.atleast_1d(np.asarray(columns))
+    x, phi = p.x[cols], p.phi[cols]
+    m, n = p.records.shape
+    nf = x.size
+    if n <= 2 * nf + 1:
+        raise AnalysisError(f"{n} samples cannot determine {2 * nf + 1} parameters")
+    gram = _blocks.sine_gram(n, x, phi)
+    if np.linalg.cond(gram) > _MAX_CONDITION:
+        raise AnalysisError(
+            f"a {n}-sample record at {p.sample_rate:.6g} Sa/s cannot separate "
+            f"{p.frequencies[cols].tolist()} Hz from the offset (too few cycles, or too near "
+            "Nyquist): capture a longer record"
+        )
+    inverse = np.linalg.inv(gram)
+    proj = p.proj[:, cols]
+    rhs = np.empty((m, 2 * nf + 1))
+    rhs[:, 0 : 2 * nf : 2] = proj.real
+    rhs[:, 1 : 2 * nf : 2] = -proj.imag
+    rhs[:, -1] = p.sums
+    coef = np.linalg.solve(gram, rhs.T).T  # (M, P)
+    energy = p.energy
     rss = energy - np.einsum("mp,mp->m", coef, rhs)
     suspect = rss < _CANCELLATION_GUARD * np.maximum(energy, np.finfo(float).tiny)
     if np.any(suspect):
         direct = _blocks.residual_sum_squares(
-            records[suspect],
+            p.records[suspect],
             x,
             phi,
             coef[suspect, 0 : 2 * nf : 2],
@@ -226,6 +259,19 @@ def solve(
         inverse_gram=inverse,
         n=n,
     )
+
+
+def solve(
+    records: np.ndarray, sample_rate: float, frequencies: np.ndarray, t0: float = 0.0
+) -> _Solution:
+    """Least squares for columns [cos, sin] per frequency plus an offset, every record at once."""
+    freqs = np.atleast_1d(np.asarray(frequencies, dtype=float))
+    _check_rate_frequency(sample_rate, freqs)
+    if records.shape[1] <= 2 * freqs.size + 1:
+        raise AnalysisError(
+            f"{records.shape[1]} samples cannot determine {2 * freqs.size + 1} parameters"
+        )
+    return solve_projected(project_records(records, sample_rate, freqs, t0))
 
 
 def _component(sol: _Solution, i: int) -> dict[str, np.ndarray]:
@@ -288,28 +334,39 @@ def fit_sine(samples: object, sample_rate: float, frequency: float, t0: float = 
     return fit_sine_batch(arr, sample_rate, frequency, t0)[0]
 
 
-def fit_sines(
-    samples: object, sample_rate: float, frequencies: Sequence[float], t0: float = 0.0
-) -> MultiSineFit:
-    """Joint fit of several known frequencies plus one offset (e.g. a fundamental and harmonics)."""
-    arr = as_records(samples)
-    if arr.shape[0] != 1:
-        raise AnalysisError(f"fit_sines takes one record; got {arr.shape[0]}")
-    freqs = np.asarray(frequencies, dtype=float)
-    if freqs.ndim != 1 or freqs.size == 0 or np.unique(freqs).size != freqs.size:
-        raise AnalysisError(f"fit_sines needs distinct frequencies, got {freqs.tolist()}")
-    sol = solve(arr, sample_rate, freqs, t0)
+def fit_projected(projection: Projection, index: int = 0) -> SineFit:
+    """The three-parameter fit of the first record at the projection's frequency ``index``
+    (what fit_sine gives at that frequency, without another pass over the record)."""
+    p = projection
+    sol = solve_projected(p, [index])
+    parts = {k: float(v[0]) for k, v in _component(sol, 0).items()}
+    return SineFit(
+        offset=float(sol.offset[0]),
+        n=sol.n,
+        frequency=float(p.frequencies[index]),
+        sample_rate=p.sample_rate,
+        t0=p.t0,
+        **parts,
+    )
+
+
+def fit_sines_projected(projection: Projection) -> MultiSineFit:
+    """The joint fit of the first record at all of the projection's frequencies (fit_sines)."""
+    p = projection
+    if p.records.shape[0] != 1:
+        raise AnalysisError(f"fit_sines takes one record; got {p.records.shape[0]}")
+    sol = solve_projected(p)
     offset = float(sol.offset[0])
     comps = []
-    for i, f in enumerate(freqs):
+    for i, f in enumerate(p.frequencies):
         parts = {k: float(v[0]) for k, v in _component(sol, i).items()}
         comps.append(
             SineFit(
                 offset=offset,
                 n=sol.n,
                 frequency=float(f),
-                sample_rate=float(sample_rate),
-                t0=float(t0),
+                sample_rate=p.sample_rate,
+                t0=p.t0,
                 **parts,
             )
         )
@@ -320,3 +377,20 @@ def fit_sines(
         noise_sigma=comps[0].noise_sigma,
         n=sol.n,
     )
+
+
+def fit_sines(
+    samples: object, sample_rate: float, frequencies: Sequence[float], t0: float = 0.0
+) -> MultiSineFit:
+    """Joint fit of several known frequencies plus one offset (e.g. a fundamental and harmonics)."""
+    arr = as_records(samples)
+    if arr.shape[0] != 1:
+        raise AnalysisError(f"fit_sines takes one record; got {arr.shape[0]}")
+    freqs = np.asarray(frequencies, dtype=float)
+    if freqs.ndim != 1 or freqs.size == 0 or np.unique(freqs).size != freqs.size:
+        raise AnalysisError(f"fit_sines needs distinct frequencies, got {freqs.tolist()}")
+    if arr.shape[1] <= 2 * freqs.size + 1:
+        raise AnalysisError(
+            f"{arr.shape[1]} samples cannot determine {2 * freqs.size + 1} parameters"
+        )
+    return fit_sines_projected(project_records(arr, sample_rate, freqs, t0))
