@@ -345,6 +345,15 @@ def _last_h5_row(path: Path, columns: Sequence[Column]) -> dict[str, Any] | None
             for name, values in arrays.items()}  # fmt: skip
 
 
+def _h5_rows(path: Path, columns: Sequence[Column]) -> list[dict[str, Any]]:
+    """Every stored row, in the order stored."""
+    with _open_h5(path, "r") as h5:
+        arrays = _column_arrays(h5["points"], columns, slice(None))
+    names = list(arrays)
+    lists = [arrays[n].tolist() for n in names]
+    return [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
+
+
 def _h5_wave_dtypes(path: Path) -> dict[str, str]:
     with _open_h5(path, "r") as h5:
         if "waveforms" not in h5:

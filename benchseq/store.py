@@ -47,6 +47,7 @@ from benchseq.h5layout import (
     _column_group,
     _h5_wave_dtypes,
     _H5State,
+    _h5_rows,
     _last_h5_row,
     _open_h5,
     _read_h5_state,
@@ -396,6 +397,13 @@ class RunWriter:
     def last_row(self) -> dict[str, Any] | None:
         """The row of the point stored last (in run order), or None."""
         return None if self._last_row is None else dict(self._last_row)
+
+    def resumed_rows(self) -> list[dict[str, Any]]:
+        """The rows stored before this writer was opened, in run order (resume brings the
+        HDF5 file up to date from the journal first); call it before appending."""
+        if not self._stored:
+            return []
+        return [row for row in _h5_rows(self.path, self.columns) if int(row["point_id"]) in self._stored]
 
     def append(
         self,

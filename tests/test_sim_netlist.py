@@ -153,6 +153,8 @@ def test_rehearsal_agrees_with_ngspice_ac_analysis_of_the_same_netlist(
         assert np.mean(b <= 0.0) >= 0.95, f"bounds above the truth: {b[b > 0]}"
 
 
+K_AMPLITUDE = 5.0  # σ_c multiples (see the faint-ripple test's docstring)
+
 FAINT_PLAN = """
 title = "faint ripple on a noisy board: where the output sinks into the floor"
 [device]
@@ -172,8 +174,17 @@ target_uncertainty = "0.5 dB"
 @pytest.mark.slow
 def test_bounds_on_a_noisy_board_stay_at_or_below_ngspice_truth(tmp_path: Path) -> None:
     """The same netlist with 2 µV/√Hz of output noise and a 4 mVpp ripple: most points end
-    as lower bounds. Every bound at or below ngspice's truth at ≥ 95 % pooled over seeds, and
-    the values resolved there within 4u (ngspice-39, the test's own deck)."""
+    as lower bounds. Every bound at or below ngspice's truth at ≥ 95 % pooled over seeds
+    (ngspice-39, the test's own deck).
+
+    The values resolved there sit just above the value threshold (A/σ_c of 5 to 15), where
+    the dB uncertainty u = σ_c/A is first-order only and a weak output lifted over the
+    threshold by noise misses by far more than 4u in dB (seen: A/σ_c 5.7 read from a true
+    2.4). What the point states exactly is σ_c, the noise per quadrature (output_floor):
+    the measured amplitude is within K_AMPLITUDE·σ_c of the true one. With σ_c estimated
+    from 2·n neighbour quadratures, (A − A_true)²/(2σ̂_c²) is at most F(2, 2n)-distributed,
+    whose tail (1 + 2x/(2n))^(−n) (Abramowitz & Stegun 26.6.4, from memory) at x = 12.5
+    and n ≥ 18 is under 1e-4 per value."""
     require_ngspice()
     text = (SCENARIOS / "netlist-ldo.toml").read_text(encoding="utf-8")
     noisy = text.replace("white_noise_nv_per_root_hz = 40", "white_noise_nv_per_root_hz = 2000")
@@ -185,21 +196,27 @@ def test_bounds_on_a_noisy_board_stay_at_or_below_ngspice_truth(tmp_path: Path) 
     plan = parse_plan(tomllib.loads(FAINT_PLAN), "faint.toml", FAINT_PLAN)
     bench = load_bench("sim:netlist-ldo")
     board = scenario.device.board_load_current  # type: ignore[attr-defined]
-    errors, excess = [], []
+    misses, excess = [], []
     for seed in SEEDS:
         outcome, path = run_prepared(
             plan, bench, tmp_path / f"faint{seed}.h5", seed=seed,
             session_factory=session_factory_for(scenario),
         )  # fmt: skip
         assert outcome.status == "complete"
-        e, b, _, _ = compare_with_truth(path, scenario, NETLIST, board)
-        errors.append(e)
+        _, b, value, truth = compare_with_truth(path, scenario, NETLIST, board)
         excess.append(b)
+        rows = read_results(path)
+        kept = ~rows["is_bound"].to_numpy(dtype=bool)
+        measured = np.abs(rows["output"].to_numpy())[kept]
+        sigma_c = rows["output_floor"].to_numpy(dtype=float)[kept]
+        # the true output amplitude from the true rejection and the measured pin ripple
+        true_amplitude = measured * 10 ** ((value - truth) / 20.0)
+        misses.append(np.abs(measured - true_amplitude) / sigma_c)
     b = np.concatenate(excess)
-    e = np.concatenate(errors)
+    m = np.concatenate(misses)
     assert b.size >= 25, "the plan should end mostly in bounds"
     assert np.mean(b <= 0.0) >= 0.95, f"bounds above the truth by {b[b > 0]} dB"
-    assert e.size == 0 or np.max(np.abs(e)) <= 4.0
+    assert m.size == 0 or np.max(m) <= K_AMPLITUDE, f"|A − A_true|/σ_c: {np.round(m, 2)}"
 
 
 @pytest.mark.slow
