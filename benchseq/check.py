@@ -576,9 +576,7 @@ def point_seconds(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Per point, the bench time (s) of its captures and round trips, low and high ends
     (settle waits, ramps and operating-point waits are counted apart)."""
-    low, high = planned_capture_s(
-        plan, bench, frequency, ripple_peak, like, dc_level, load_current
-    )
+    low, high = planned_capture_s(plan, bench, frequency, ripple_peak, like, dc_level, load_current)
     return (
         CAPTURE_SPREAD[0] * low + POINT_ROUND_TRIPS_S,
         CAPTURE_SPREAD[1] * high + POINT_ROUND_TRIPS_S,
