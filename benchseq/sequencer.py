@@ -177,7 +177,16 @@ class Sequencer:
             self._capture_prior(),
             self._operating_prior(),
             self._replanner(),
+            # a scenario's prior knows each frequency's noise better than a neighbour's
+            # measurement does; the stated assumptions do not
+            replan_decades=0.0 if self._stated() is not None else BenchTimeLeft.REPLAN_DECADES,
         )
+
+    def _stated(self) -> Any:
+        """The simulated bench's scenario as the check reads it (None: a real bench)."""
+        from benchseq.check import scenario_likeness
+
+        return scenario_likeness(self.plan, self.bench)
 
     def _replanner(self) -> Callable[[int, Any, float], float] | None:
         """Point i's captures and round trips as the check would estimate them under a
@@ -224,7 +233,7 @@ class Sequencer:
         """Each point's captures and round trips as the check estimates them (the middle of
         its range; on the simulated bench from its scenario); None (cycle-bound) when the
         bench's scope profile gives no timebase."""
-        from benchseq.check import point_seconds, scenario_likeness
+        from benchseq.check import point_seconds
 
         try:
             low, high = point_seconds(
@@ -232,7 +241,7 @@ class Sequencer:
                 self.bench,
                 self.sweep.frequency,
                 self.sweep.ripple_peak,
-                scenario_likeness(self.plan, self.bench),
+                self._stated(),
                 self.sweep.dc_level,
                 self.sweep.load_current,
             )
@@ -1174,6 +1183,7 @@ class BenchTimeLeft:
     frequency."""
 
     NEAR_DECADES = 0.3  # ratios of frequencies within this many decades weigh most
+    REPLAN_DECADES = 0.6  # points this near a measured frequency are re-planned
 
     def __init__(
         self,
@@ -1183,13 +1193,16 @@ class BenchTimeLeft:
         captures_s: Any | None = None,
         operating_s: Any = 0.0,
         replan: Callable[[int, Any, float], float] | None = None,
+        replan_decades: float = REPLAN_DECADES,
     ) -> None:
         """``settle_s``: the wait before each point (s, per point or one for all), as
         benchseq.settling.Settling.planned gives it; ``captures_s``: each point's captures
         and round trips as the check estimates them (default: cycle-bound captures);
         ``operating_s``: the operating-point change before each point (s); ``replan(i,
         noise, rejection_db)``: point i's captures and round trips under a measured noise
-        (benchseq.batches.NoiseGuess) and rejection (default: none, priors only)."""
+        (benchseq.batches.NoiseGuess) and rejection (default: none, priors only);
+        ``replan_decades``: points this near a measured frequency are re-planned under what
+        the nearest showed (0: only a measured frequency's own points)."""
         from benchseq.check import capture_seconds
 
         if captures_s is None:
@@ -1208,8 +1221,10 @@ class BenchTimeLeft:
         self._ratio_here = np.full(keys.size, np.nan)  # measured/re-planned there (log)
         self._todo = np.zeros(self.estimate.size, dtype=bool)
         self._replan = replan
+        self._replan_decades = float(replan_decades)
         self._shown: dict[int, tuple[Any, float]] = {}  # frequency key: noise, rejection
-        self._replanned: dict[int, tuple[int, float]] = {}  # point: (version, estimate)
+        self._replanned: dict[tuple[int, float, int], tuple[int, float]] = {}
+        self._ripple = np.asarray(sweep.ripple_peak, dtype=float)
         self._version = np.zeros(keys.size, dtype=np.int64)
         self._powered_up_for: int | None = None
 
@@ -1239,16 +1254,41 @@ class BenchTimeLeft:
 
     def _base(self, i: int) -> float:
         """Point i's estimate before the ratios: re-planned where its frequency was
-        measured, else the prior."""
-        key = self._key[i]
-        if key not in self._shown or self._replan is None:
-            return float(self.estimate[i])
+        measured; near a measured frequency (within replan_decades) the re-plan under what
+        the nearest showed, blended with the prior on a log scale as the ratios are
+        (weight of the distance against the prior's); else the prior."""
+        key = int(self._key[i])
+        prior = float(self.estimate[i])
+        if self._replan is None or not self._shown:
+            return prior
+        if key in self._shown:
+            return self._replanned_at(i, key)
+        near, distance = self._nearest_shown(key)
+        if distance > self._replan_decades or prior <= 0:
+            return prior
+        weight = 1.0 / (1.0 + (distance / self.NEAR_DECADES) ** 2) ** 2
+        replanned = self._replanned_at(i, near)
+        if replanned <= 0:
+            return prior
+        mixed = (weight * math.log(replanned) + 0.25 * math.log(prior)) / (weight + 0.25)
+        return math.exp(mixed)
+
+    def _nearest_shown(self, key: int) -> tuple[int, float]:
+        shown = np.fromiter(self._shown, dtype=np.int64, count=len(self._shown))
+        distance = np.abs(self._log_f[shown] - self._log_f[key])
+        k = int(np.argmin(distance))
+        return int(shown[k]), float(distance[k])
+
+    def _replanned_at(self, i: int, key: int) -> float:
+        """Point i's captures under what frequency ``key`` last showed, plus its settle."""
+        assert self._replan is not None
+        memo = (int(self._key[i]), round(float(self._ripple[i]), 12), key)
         version = int(self._version[key])
-        cached = self._replanned.get(i)
+        cached = self._replanned.get(memo)
         if cached is None or cached[0] != version:
             noise, rejection = self._shown[key]
             cached = (version, float(self._replan(i, noise, rejection)) + float(self.settle[i]))
-            self._replanned[i] = cached
+            self._replanned[memo] = cached
         return cached[1]
 
     def left(self, remaining: set[int] | None = None) -> float:
@@ -1259,19 +1299,26 @@ class BenchTimeLeft:
         else:
             index = np.fromiter(remaining, dtype=np.int64, count=len(remaining))
         known = np.isfinite(self._ratio)
-        log_ratio = np.zeros(self._log_f.size)
+        log_ratio = np.zeros(self._log_f.size)  # against the prior
+        log_here = np.zeros(self._log_f.size)  # against the re-planned estimate
         if known.any():
             distance = np.abs(self._log_f[:, None] - self._log_f[None, known])
             weight = 1.0 / (1.0 + (distance / self.NEAR_DECADES) ** 2) ** 2
             # the prior (ratio 1) weighs as a measured frequency NEAR_DECADES away: far
             # from every measured frequency the estimate falls back to the check's
             log_ratio = (weight @ self._ratio[known]) / (weight.sum(axis=1) + 0.25)
-            log_ratio[known] = self._ratio_here[known]  # measured here: the last point's own
+            log_here = (weight @ self._ratio_here[known]) / (weight.sum(axis=1) + 0.25)
+            log_ratio[known] = log_here[known] = self._ratio_here[known]  # the last point's
+        keys = self._key[index]
         base = self.estimate[index].copy()
-        if self._shown:
-            for n in np.flatnonzero(np.isin(self._key[index], list(self._shown))):
+        ratio = log_ratio[keys]
+        if self._shown and self._replan is not None:
+            shown = np.fromiter(self._shown, dtype=np.int64, count=len(self._shown))
+            gap = np.min(np.abs(self._log_f[:, None] - self._log_f[None, shown]), axis=1)
+            for n in np.flatnonzero(gap[keys] <= self._replan_decades):
                 base[n] = self._base(int(index[n]))
-        own = base * np.exp(log_ratio[self._key[index]])
+                ratio[n] = log_here[keys[n]]
+        own = base * np.exp(ratio)
         return float(np.sum(own + self.operating[index]))
 
 

@@ -70,28 +70,33 @@ def _row(rejection_db: float) -> dict[str, Any]:
 
 
 def test_a_measured_frequency_re_plans_its_other_points() -> None:
-    """The other points at a measured frequency take the re-planned estimate (here a
-    stand-in planner: 2 s for the measured point, 5 s for the later one under what it
-    showed) times what the measured point took over its own re-planned estimate (3 s
-    against 2 s: 1.5), so 7.5 s; a frequency three decades away keeps its prior."""
+    """A stand-in planner (by frequency: 2 s at 20 Hz under what the 20 Hz point showed,
+    4 s at 60 Hz, 1 s elsewhere) against priors of 0.5 s (0.25 s for the later 20 Hz
+    point). The later 20 Hz point takes the re-planned 2 s times what the measured point
+    took over its own re-planned estimate (3 s against 2 s: 1.5), so 3 s - not its prior
+    times the measured/prior ratio (0.25 × 6 = 1.5 s); 60 Hz, half a decade away, leans
+    from its prior towards its re-plan; 20 kHz, three decades away, keeps its prior."""
     plan = _plan()
     sweep = plan.expand()
     later = int(np.nonzero(np.isclose(sweep.frequency, 20.0))[0][1])
-    seen: list[tuple[int, float]] = []
+    seen: list[float] = []
 
     def replan(i: int, noise: Any, rejection_db: float) -> float:
         assert noise.white_sigma == pytest.approx(3e-5)  # the row's noise, as shown
-        seen.append((i, rejection_db))
-        return {0: 2.0, later: 5.0}.get(i, 1.0)
+        seen.append(rejection_db)
+        return {20.0: 2.0, 60.0: 4.0}.get(round(float(sweep.frequency[i]), 6), 1.0)
 
-    eta = BenchTimeLeft(plan, sweep, 0.0, np.full(len(sweep), 0.5), replan=replan)
+    prior = np.full(len(sweep), 0.5)
+    prior[later] = 0.25
+    eta = BenchTimeLeft(plan, sweep, 0.0, prior, replan=replan)
     eta.begin(list(range(len(sweep))))
     eta.learn(0, 3.0, _row(71.0))
-    assert eta.left({later}) == pytest.approx(7.5)
-    assert (later, 71.0) in seen
+    assert eta.left({later}) == pytest.approx(3.0)
+    assert seen and set(seen) == {71.0}  # the rejection the row showed
+    assert 0.5 < eta.left({1}) < 4.0 * 1.5  # 60 Hz
     assert eta.left({4}) == pytest.approx(0.5, rel=0.02)  # 20 kHz: the prior
-    eta.learn(later, 5.0, None)  # a point without a row learns its ratio only: 5 s / 5 s
-    assert eta.left({later}) == pytest.approx(5.0)
+    eta.learn(later, 2.0, None)  # a point without a row learns its ratio only: 2 s / 2 s
+    assert eta.left({later}) == pytest.approx(2.0)
 
 
 def test_the_first_point_has_no_operating_change_of_its_own() -> None:
