@@ -1175,7 +1175,9 @@ class BenchTimeLeft:
     ramp, bias-filter wait and after_operating_point wait. The operating-point part is
     known in advance and stays as planned. Once a frequency is measured, its other points
     (another ripple, DC level or load) are re-planned (``replan``) with the noise and
-    rejection its last point showed, as `check --like` does. The rest is learnt as the
+    rejection its last point showed, as `check --like` does (and, within
+    ``replan_decades`` of it, other frequencies' points under what the nearest measured
+    one showed, blended with their prior). The rest is learnt as the
     ratio measured/estimated: a point at a frequency already measured is expected to take
     its (re-planned) estimate times the ratio the last point there showed, any other its
     prior times the ratios of the measured frequencies nearest to it (on a log scale),
