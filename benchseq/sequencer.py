@@ -176,10 +176,8 @@ class Sequencer:
             ),
             self._capture_prior(),
             self._operating_prior(),
-            self._replanner(),
-            # a scenario's prior knows each frequency's noise better than a neighbour's
-            # measurement does; the stated assumptions do not
-            replan_decades=0.0 if self._stated() is not None else BenchTimeLeft.REPLAN_DECADES,
+            # no re-planning from measured noise (replan=self._replanner()): measured, it
+            # made the time left worse (DEVELOPERS.md, "The bench time left")
         )
 
     def _stated(self) -> Any:
@@ -1186,6 +1184,7 @@ class BenchTimeLeft:
 
     NEAR_DECADES = 0.3  # ratios of frequencies within this many decades weigh most
     REPLAN_DECADES = 0.6  # points this near a measured frequency are re-planned
+    MEAN_RATIOS = True
 
     def __init__(
         self,
@@ -1221,6 +1220,7 @@ class BenchTimeLeft:
         self._log_f = np.log10(np.maximum(keys, 1e-30))
         self._ratio = np.full(keys.size, np.nan)  # measured/prior there (log)
         self._ratio_here = np.full(keys.size, np.nan)  # measured/re-planned there (log)
+        self._count = np.zeros(keys.size, dtype=np.int64)  # points measured there
         self._todo = np.zeros(self.estimate.size, dtype=bool)
         self._replan = replan
         self._replan_decades = float(replan_decades)
@@ -1250,8 +1250,16 @@ class BenchTimeLeft:
                 self._version[key] += 1
         base = self._base(i)
         if base > 0 and own > 0 and self.estimate[i] > 0:
-            self._ratio[key] = math.log(own / float(self.estimate[i]))  # for other frequencies
-            self._ratio_here[key] = math.log(own / base)  # for this one's other points
+            # the mean over the points measured at this frequency: one point's top-ups
+            # scatter with the noise it met, and its ratio would carry that to the rest
+            n = self._count[key] = self._count[key] + 1
+            prior = math.log(own / float(self.estimate[i]))  # for other frequencies
+            here = math.log(own / base)  # for this one's other points
+            if n == 1 or not self.MEAN_RATIOS:
+                self._ratio[key], self._ratio_here[key] = prior, here
+            else:
+                self._ratio[key] += (prior - self._ratio[key]) / n
+                self._ratio_here[key] += (here - self._ratio_here[key]) / n
         self._todo[i] = False
 
     def _base(self, i: int) -> float:
