@@ -128,30 +128,33 @@ def predicted_bench_times(
     white_sigma: Any,
     coloured: Any,
     pin_sigma: Any,
-    target_db: float,
+    target_db: Any,
     min_cycles: int,
     max_time_s: float,
     lean: bool = False,
 ) -> np.ndarray:
     """``predicted_plan(...).bench_time`` for many points at once (arrays; ``pin_sigma``
-    NaN where the guess has none), from the same two-step choice."""
+    NaN where the guess has none; ``target_db`` one value or one per point), from the same
+    two-step choice."""
     from benchseq.analysis.capture_many import plan_capture_many
 
-    f, p, o, w, c, s = (
+    f, p, o, w, c, s, t = (
         np.asarray(x, dtype=float)
-        for x in (frequency, pin, output, white_sigma, coloured, pin_sigma)
+        for x in (frequency, pin, output, white_sigma, coloured, pin_sigma, target_db)
     )
-    whole = plan_capture_many(scope, f, p, o, target_db, min_cycles, max_time_s, w, c, s, lean=lean)
+    whole = plan_capture_many(scope, f, p, o, t, min_cycles, max_time_s, w, c, s, lean=lean)
     bench = whole.bench_time.copy()
     again = ~whole.cycles_bound
     if np.any(again):
-        f, p, o, w, c, s = (np.broadcast_to(x, bench.shape)[again] for x in (f, p, o, w, c, s))
+        f, p, o, w, c, s, t = (
+            np.broadcast_to(x, bench.shape)[again] for x in (f, p, o, w, c, s, t)
+        )
         bench[again] = plan_capture_many(
             scope,
             f,
             p,
             o,
-            target_db,
+            t,
             min_cycles,
             max_time_s,
             w,

@@ -20,7 +20,7 @@ import numpy as np
 
 from benchseq.bench import Bench, describe_band
 from benchseq.distinct import first_of, numbered, pairs
-from benchseq.errors import BadInput, FileKeyError
+from benchseq.errors import BadInput, BenchseqError, FileKeyError
 from benchseq.injector import (
     REASON_BIT,
     REASON_TITLES,
@@ -239,18 +239,21 @@ def capture_seconds(frequency: np.ndarray, plan: Plan) -> tuple[np.ndarray, str]
     )
 
 
-# What the sequencer spends on a point besides the planned capture and the settle wait,
-# measured from simulated runs' bench time split by activity (tests/perf/eta_accuracy.py
-# prints the split and these figures' fit): the first batch that ranges both channels, the
-# trim recapture, top-ups and range retries make a point's captures take between
-# CAPTURE_SPREAD[0] and CAPTURE_SPREAD[1] times its planned bench time (re-arms included);
-# instrument round trips (generator set, trigger, waveform reads, pin DC check) add
-# POINT_ROUND_TRIPS_S per point; power-up (outputs on, first ranges) RUN_START_S once, and
-# the AC-coupling corner measurement AC_CORNER_S when the plan reaches low enough for it.
-CAPTURE_SPREAD = (1.3, 2.6)
+# What the sequencer spends on a point besides the planned capture and the settle wait.
+# The planned capture is the planner's at the noise part of u the run's top-ups aim at
+# (noise_target_db: the channel match takes its share of the target). A point's captures
+# take between CAPTURE_SPREAD[0] and CAPTURE_SPREAD[1] times that (re-arms included): at
+# least the plan (the pool met the target as planned), at most a trim's recapture of the
+# first batch (benchseq.batches.PROBE_SHARE of the plan) on top of a pool topped up
+# TOP_UP_MARGIN past its need (tests/perf/eta_accuracy.py prints the bench time split by
+# activity beside it); instrument round trips (generator set, trigger, waveform reads, pin
+# DC check) add POINT_ROUND_TRIPS_S per point; power-up (outputs on, first ranges)
+# RUN_START_S once, and the AC-coupling corner measurement AC_CORNER_S when the plan
+# reaches low enough for it.
+CAPTURE_SPREAD = (1.0, 1.6)  # (1 + PROBE_SHARE 0.5) x TOP_UP_MARGIN 1.05, rounded up
 POINT_ROUND_TRIPS_S = 0.002
-RUN_START_S = 0.3
-AC_CORNER_S = 2.9
+RUN_START_S = 0.1
+AC_CORNER_S = 3.2
 # Without a previous result: the noise and the device's rejection the estimate assumes.
 ASSUMED_NOISE_V = 40e-6  # V rms per sample at the output channel's scope input (front end)
 # the device's output noise: white density with a 1/f rise below a corner (a low-noise
@@ -324,6 +327,99 @@ def load_likeness(path: str | Path, plan: Plan, bench: Bench) -> Likeness:
     )
 
 
+@dataclass(frozen=True)
+class ScenarioLikeness:
+    """What a simulated bench's scenario states of each point (for the time estimate): the
+    device's rejection at the point's DC level and load (its model's transfer), the output
+    channel's noise (the scope's front-end noise at the range the output needs, the 8-bit
+    converter's quantisation, the device's output noise density with its 1/f corner) and
+    the pin channel's (front end at the pin's range through its probe, the injector's own
+    noise). A real bench has no scenario: the estimate assumes, or uses --like."""
+
+    source: str
+    scenario: Any  # benchseq.sim.scenario.Scenario
+    ranges: tuple[float, ...]  # the scope's full-scale ranges, pp V at its input
+    output_probe: float
+    pin_probe: float
+    bandwidth_limit: float | None  # Hz
+    notes: tuple[str, ...] = ()
+
+    def rejection_db(self, frequency: float, dc_level: float, load_current: float) -> float:
+        from benchseq.sim.devices import OperatingPoint, rejection_db
+
+        device = self.scenario.device
+        drawn = load_current if math.isfinite(load_current) else 0.0
+        op = OperatingPoint(dc_level, device.board_load_current + drawn)
+        value = float(rejection_db(device, np.array([frequency]), op)[0])
+        return value if math.isfinite(value) else ASSUMED_REJECTION_DB[0]
+
+    def _front_end(self, full_scale: float, probe: float) -> float:
+        """V rms per sample at the probe tip on a range (pp V at the tip)."""
+        scope = self.scenario.scope
+        at_input = full_scale / probe
+        noise = math.hypot(scope.noise_per_division * at_input / scope.divisions, scope.noise_floor)
+        if self.bandwidth_limit is not None:
+            noise *= math.sqrt(min(1.0, self.bandwidth_limit / scope.analog_bandwidth))
+        step = at_input / 256.0  # the 8-bit converter's code step: step²/12 of noise
+        return probe * math.hypot(noise, step / math.sqrt(12.0))
+
+    def _ranged(self, amplitude: float, probe: float, extra: float) -> float:
+        """The white noise per sample (V at the tip) on the range the run settles on: the
+        smallest holding the sine and 4σ of noise at the run's fill of full scale."""
+        from benchseq import analysis
+        from benchseq.sequencer import RANGE_FILL
+
+        tips = [r * probe for r in self.ranges]
+        sigma = math.hypot(self._front_end(min(tips), probe), extra)
+        for _ in range(3):  # the range sets the noise, the noise the range
+            full = analysis.suggest_range(2.0 * (amplitude + 4.0 * sigma), tips, RANGE_FILL)
+            sigma = math.hypot(self._front_end(full, probe), extra)
+        return sigma
+
+    def noise(self, frequency: float, pin_peak: float, output_peak: float) -> Any:
+        from benchseq import batches
+
+        truth = self.scenario
+        device = truth.device
+        white = float(getattr(device, "white_noise", 0.0))
+        corner = float(getattr(device, "flicker_corner", 0.0))
+        band = float(getattr(device, "noise_bandwidth", math.inf))
+        coloured = (
+            white**2 * (1.0 + corner / max(frequency, 1e-3)) / (1.0 + (frequency / band) ** 2)
+        )
+        injector = truth.pin_noise * math.sqrt(0.5 * math.pi * truth.pin_noise_bandwidth)
+        return batches.NoiseGuess(
+            self._ranged(output_peak, self.output_probe, 0.0),
+            coloured,
+            self._ranged(pin_peak, self.pin_probe, injector),
+        )
+
+
+def scenario_likeness(plan: Plan, bench: Bench) -> ScenarioLikeness | None:
+    """The bench's scenario when it is the simulated bench (None for a real bench, or when
+    the scenario cannot be read: the run would refuse it, and the estimate assumes)."""
+    if bench.simulation is None:
+        return None
+    from benchseq.drivers.factory import profile_for
+    from benchseq.sim.scenario import load_scenario
+
+    try:
+        scenario = load_scenario(bench.simulation)
+        caps = profile_for(bench.instruments["scope"], bench).capabilities
+    except (BenchseqError, KeyError, OSError, ValueError):
+        return None
+    if caps is None or not getattr(caps, "ranges", None):
+        return None
+    return ScenarioLikeness(
+        f"the simulated bench's scenario {scenario.name!r}",
+        scenario,
+        tuple(float(r) for r in caps.ranges),
+        float(bench.scope.output.probe),
+        float(bench.scope.pin.probe),
+        bench.scope.bandwidth_limit,
+    )
+
+
 def scope_timebase(plan: Plan, bench: Bench) -> Any:
     """The bench scope's timebase limits (from its profile) with the plan's averaging cap."""
     from benchseq import analysis
@@ -340,36 +436,80 @@ def scope_timebase(plan: Plan, bench: Bench) -> Any:
     )
 
 
+def match_uncertainty(bench: Bench, frequency: np.ndarray) -> np.ndarray:
+    """Per frequency, the channel match's relative u (k = 1) the run's budget will carry:
+    the bench calibration's where it covers the frequency, else the uncalibrated channels'
+    and probes' tolerances (as the run puts them in each point's budget)."""
+    f = np.asarray(frequency, dtype=float)
+    tolerance = float(bench.scope.tolerances().uncertainty)
+    out = np.full(f.shape, tolerance)
+    if bench.scope.calibration is not None:
+        from benchseq.calibrate import load_calibration
+
+        try:
+            table = load_calibration(bench.scope.calibration).table
+        except BadInput:  # the run refuses it before anything is switched on
+            return out
+        for k in range(f.size):
+            found = table.lookup(float(f[k]))
+            if found.inside:
+                out[k] = found.uncertainty
+    return out
+
+
+def noise_target_db(target_db: float, match_u: float) -> float:
+    """What the run's top-ups aim the noise part of u at (benchseq.batches.top_up): what the
+    channel match leaves of the target, u_n² = u_t² − u_match², but at least NOISE_SHARE of
+    the target (where the match alone uses up the target)."""
+    from benchseq import analysis, batches
+
+    budget = target_db**2 - analysis.db_uncertainty(match_u) ** 2
+    return math.sqrt(max(budget, (batches.NOISE_SHARE * target_db) ** 2))
+
+
 def planned_capture_s(
     plan: Plan,
     bench: Bench,
     frequency: np.ndarray,
     ripple_peak: np.ndarray,
-    like: Likeness | None = None,
+    like: Likeness | ScenarioLikeness | None = None,
+    dc_level: np.ndarray | None = None,
+    load_current: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Per point, the capture planner's bench time (re-arms included; noise-bound or
-    cycle-bound, whichever the point needs) under the low and the high end's assumptions:
-    a previous result's noise and rejection at the nearest frequency (both ends), else
-    ASSUMED_NOISE_V with ASSUMED_REJECTION_DB's two values."""
+    cycle-bound, whichever the point needs, at the noise part of u the run aims at) under
+    the low and the high end's assumptions: a previous result's noise and rejection at the
+    nearest frequency, or the simulated bench's scenario at the point (DC level and load
+    current, default: none given, the scenario's rejection at 5 V without load), both ends
+    alike; else ASSUMED_NOISE_V with ASSUMED_REJECTION_DB's two values."""
     from benchseq import batches
 
-    rules = plan.capture
     timebase = scope_timebase(plan, bench)
+    rules = plan.capture
     f = np.asarray(frequency, dtype=float).ravel()
     pin = np.asarray(ripple_peak, dtype=float).ravel()
     if f.size == 0:
         return np.zeros(0), np.zeros(0)
+    if isinstance(like, ScenarioLikeness):
+        return _scenario_capture_s(plan, bench, timebase, f, pin, like, dc_level, load_current)
     # the planner runs once per (frequency, ripple), rounded to 1 µHz and 1 pV: points of
     # one such key take the first one's estimate (many points share a frequency and ripple)
     rep, inverse = _first_of_keys(f, pin)
     fr, pr = f[rep], pin[rep]
     # what the estimate assumes depends on the frequency alone: once per distinct one
     fu, fi = numbered(fr)
+    # the noise part of u the run aims at, after the channel match's part (per frequency)
+    target = np.array(
+        [
+            noise_target_db(rules.target_uncertainty_db, float(m))
+            for m in match_uncertainty(bench, fu).tolist()
+        ]
+    )[fi]
     ends = []
     for end in (0, 1):
         white, coloured, pin_sigma, scale = [], [], [], []
         for fk in fu.tolist():
-            if like is not None:
+            if isinstance(like, Likeness):
                 noise, rejection = like.at(fk)
                 guess = noise or batches.NoiseGuess(ASSUMED_NOISE_V)
             else:
@@ -390,7 +530,7 @@ def planned_capture_s(
                 np.array(white)[fi],
                 np.array(coloured)[fi],
                 np.array(pin_sigma)[fi],
-                rules.target_uncertainty_db,
+                target,
                 rules.min_cycles,
                 rules.max_time_s,
                 lean=True,
@@ -413,30 +553,127 @@ def _first_of_keys(f: np.ndarray, pin: np.ndarray) -> tuple[np.ndarray, np.ndarr
     return first_of(key, int(key.max()) + 1), key
 
 
+def _scenario_capture_s(
+    plan: Plan,
+    bench: Bench,
+    timebase: Any,
+    f: np.ndarray,
+    pin: np.ndarray,
+    like: ScenarioLikeness,
+    dc_level: np.ndarray | None,
+    load_current: np.ndarray | None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """planned_capture_s on the simulated bench: its scenario's noise and rejection at each
+    point's frequency, ripple, DC level and load (once per distinct such point)."""
+    dc = np.full(f.shape, 5.0) if dc_level is None else np.asarray(dc_level, dtype=float)
+    load = (
+        np.full(f.shape, np.nan) if load_current is None else np.asarray(load_current, dtype=float)
+    )
+    out = np.zeros((2, f.size))
+    match = match_uncertainty(bench, f)
+    cache: dict[tuple[float, ...], float] = {}
+    for k in range(f.size):
+        key = (
+            round(float(f[k]), 6),
+            round(float(pin[k]), 12),
+            float(match[k]),
+            round(float(dc[k]), 6),
+            round(float(load[k]), 9),
+        )
+        if key not in cache:
+            rejection = like.rejection_db(float(f[k]), float(dc[k]), float(load[k]))
+            output = float(pin[k]) * 10 ** (-rejection / 20.0)
+            guess = like.noise(float(f[k]), float(pin[k]), output)
+            cache[key] = _planned_s(
+                timebase, plan, float(f[k]), float(pin[k]), guess, rejection, match[k]
+            )
+        out[:, k] = cache[key]  # the scenario states one noise and rejection: both ends alike
+    return out[0], out[1]
+
+
+def _planned_s(
+    timebase: Any,
+    plan: Plan,
+    frequency: float,
+    pin: float,
+    guess: Any,
+    rejection_db: float,
+    match_u: float,
+) -> float:
+    """The capture planner's bench time for one point under one noise and rejection."""
+    from benchseq import batches
+
+    rules = plan.capture
+    expected = batches.predicted_plan(
+        timebase,
+        frequency,
+        pin,
+        max(pin * 10 ** (-rejection_db / 20.0), 1e-12),
+        guess,
+        noise_target_db(rules.target_uncertainty_db, float(match_u)),
+        rules.min_cycles,
+        rules.max_time_s,
+        lean=True,
+    )
+    return float(expected.bench_time)
+
+
+def measured_point_s(
+    plan: Plan,
+    bench: Bench,
+    frequency: float,
+    ripple_peak: float,
+    guess: Any,
+    rejection_db: float,
+    timebase: Any = None,
+) -> float:
+    """One point's captures and round trips (the middle of the range) under the noise and
+    rejection a measured point showed (benchseq.batches.NoiseGuess.from_point);
+    ``timebase``: scope_timebase(plan, bench), given when called often."""
+    timebase = timebase if timebase is not None else scope_timebase(plan, bench)
+    match = float(match_uncertainty(bench, np.array([frequency]))[0])
+    planned = _planned_s(timebase, plan, frequency, ripple_peak, guess, rejection_db, match)
+    return math.sqrt(CAPTURE_SPREAD[0] * CAPTURE_SPREAD[1]) * planned + POINT_ROUND_TRIPS_S
+
+
 def point_seconds(
     plan: Plan,
     bench: Bench,
     frequency: np.ndarray,
     ripple_peak: np.ndarray,
-    like: Likeness | None = None,
+    like: Likeness | ScenarioLikeness | None = None,
+    dc_level: np.ndarray | None = None,
+    load_current: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Per point, the bench time (s) of its captures and round trips, low and high ends
     (settle waits, ramps and operating-point waits are counted apart)."""
-    low, high = planned_capture_s(plan, bench, frequency, ripple_peak, like)
+    low, high = planned_capture_s(plan, bench, frequency, ripple_peak, like, dc_level, load_current)
     for end, capture in ((0, low), (1, high)):  # in place: a million points' arrays
         capture *= CAPTURE_SPREAD[end]
         capture += POINT_ROUND_TRIPS_S
     return low, high
 
 
-def assumptions(plan: Plan, like: Likeness | None) -> dict[str, Any]:
+def assumptions(plan: Plan, like: Likeness | ScenarioLikeness | None) -> dict[str, Any]:
     """What the estimate assumed, for the report and its JSON."""
     out: dict[str, Any] = {
         "capture_spread": list(CAPTURE_SPREAD),
         "round_trips_per_point_s": POINT_ROUND_TRIPS_S,
         "target_uncertainty_db": plan.capture.target_uncertainty_db,
     }
-    if like is None:
+    if isinstance(like, ScenarioLikeness):
+        truth = like.scenario
+        out.update(
+            source="scenario",
+            scenario=truth.name,
+            device_model=str(getattr(truth.device, "kind", "")),
+            scope_noise_floor_v_rms=truth.scope.noise_floor,
+            scope_noise_per_division=truth.scope.noise_per_division,
+            output_noise_density_v_per_rthz=getattr(truth.device, "white_noise", None),
+            flicker_corner_hz=getattr(truth.device, "flicker_corner", None),
+            notes=list(like.notes),
+        )
+    elif like is None:
         out.update(
             source="assumed",
             noise_v_rms=ASSUMED_NOISE_V,
@@ -456,7 +693,7 @@ def _time_budget(
     sweep: Any,
     repeats: dict[str, np.ndarray],
     model: InjectorModel,
-    like: Likeness | None = None,
+    like: Likeness | ScenarioLikeness | None = None,
 ) -> tuple[float, dict[str, float], str, tuple[float, float], dict[str, dict[str, float]]]:
     n = len(sweep)
     settling = Settling(plan.settle, model, plan.capture.target_uncertainty_db)
@@ -482,7 +719,15 @@ def _time_budget(
     every_f = np.concatenate([sweep.frequency, rf])
     every_ripple = np.concatenate([sweep.ripple_peak, rp])
     captures, method = capture_seconds(every_f, plan)
-    low, high = point_seconds(plan, bench, every_f, every_ripple, like)
+    low, high = point_seconds(
+        plan,
+        bench,
+        every_f,
+        every_ripple,
+        like,
+        np.concatenate([dc, repeats["dc_level"]]),
+        np.concatenate([load, repeats["load_current"]]),
+    )
     floor = getattr(plan, "floor", None)
     floor_s = 0.0
     floor_hit = np.zeros(n, dtype=bool)
@@ -528,7 +773,7 @@ def _time_budget(
     method = (
         "capture planner's noise-bound captures"
         + (
-            f" with the noise and rejection measured in {like.source}"
+            f" with the noise and rejection {'stated by' if isinstance(like, ScenarioLikeness) else 'measured in'} {like.source}"
             if like
             else f" assuming {format_si(ASSUMED_NOISE_V, 'V', 2)} rms scope noise per sample, "
             f"{format_si(ASSUMED_DENSITY, 'V', 2)}/√Hz output noise with a 1/f corner at "
@@ -541,14 +786,22 @@ def _time_budget(
     return total, breakdown, method, span, ends
 
 
-def check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckReport:
+def check_plan(
+    plan: Plan, bench: Bench, like: Likeness | None = None, scenario: bool = True
+) -> CheckReport:
     """Feasibility of every planned point (and linearity repeat), bench time, reasons.
-    ``like``: a previous result's noise and rejection for the time estimate."""
+    ``like``: a previous result's noise and rejection for the time estimate; without it,
+    on the simulated bench, its scenario's (``scenario=False``: the stated assumptions)."""
     with injector_guard(bench):
-        return _check_plan(plan, bench, like)
+        source: Likeness | ScenarioLikeness | None = like
+        if source is None and scenario:
+            source = scenario_likeness(plan, bench)
+        return _check_plan(plan, bench, source)
 
 
-def _check_plan(plan: Plan, bench: Bench, like: Likeness | None = None) -> CheckReport:
+def _check_plan(
+    plan: Plan, bench: Bench, like: Likeness | ScenarioLikeness | None = None
+) -> CheckReport:
     model = InjectorModel(bench.injector, bench.generator, bench.pin)
     corners = model.corners()
     sweep = plan.point_values()

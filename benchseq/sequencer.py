@@ -214,7 +214,35 @@ class Sequencer:
             ),
             self._capture_prior(),
             self._operating_prior(),
+            # no re-planning from measured noise (replan=self._replanner()): measured, it
+            # made the time left worse (DEVELOPERS.md, "The bench time left")
         )
+
+    def _stated(self) -> Any:
+        """The simulated bench's scenario as the check reads it (None: a real bench)."""
+        from benchseq.check import scenario_likeness
+
+        return scenario_likeness(self.plan, self.bench)
+
+    def _replanner(self) -> Callable[[int, Any, float], float] | None:
+        """Point i's captures and round trips as the check would estimate them under a
+        noise and rejection measured (None when the bench's scope profile gives no
+        timebase): the bench time left re-plans a measured frequency's other points."""
+        from benchseq.check import measured_point_s, scope_timebase
+
+        try:
+            timebase = scope_timebase(self.plan, self.bench)
+        except (BenchseqError, KeyError, OSError, ValueError):
+            return None
+        f, ripple = self.sweep.frequency, self.sweep.ripple_peak
+
+        def replan(i: int, noise: Any, rejection_db: float) -> float:
+            return measured_point_s(
+                self.plan, self.bench, float(f[i]), float(ripple[i]), noise, rejection_db,
+                timebase,
+            )  # fmt: skip
+
+        return replan
 
     def _operating_prior(self) -> np.ndarray:
         """Per point, the bench time of the operating-point change before it in run order
@@ -239,12 +267,19 @@ class Sequencer:
 
     def _capture_prior(self) -> np.ndarray | None:
         """Each point's captures and round trips as the check estimates them (the middle of
-        its range); None (cycle-bound) when the bench's scope profile gives no timebase."""
+        its range; on the simulated bench from its scenario); None (cycle-bound) when the
+        bench's scope profile gives no timebase."""
         from benchseq.check import point_seconds
 
         try:
             low, high = point_seconds(
-                self.plan, self.bench, self.sweep.frequency, self.sweep.ripple_peak
+                self.plan,
+                self.bench,
+                self.sweep.frequency,
+                self.sweep.ripple_peak,
+                self._stated(),
+                self.sweep.dc_level,
+                self.sweep.load_current,
             )
         except (BenchseqError, KeyError, OSError, ValueError):  # a driver class, no profile
             return None
@@ -287,7 +322,7 @@ class Sequencer:
                 guide.add(row)
                 if int(row["point_id"]) in self._has_repeats:
                     self._rows[int(row["point_id"])] = row
-                self._eta.learn(i, float(row["bench_time"]))
+                self._eta.learn(i, float(row["bench_time"]), row)
                 counts["measured"] += 1
                 counts["bounds"] += int(bool(row["is_bound"]))
                 counts["flagged"] += int(bool(row["flags"]))
@@ -1172,16 +1207,23 @@ class BenchTimeLeft:
     """The bench time the points still to measure will take, learnt as the run goes.
 
     Each point's prior is the check's estimate (benchseq.check.point_seconds: the middle
-    of its capture range), the settle wait before it and, where the operating point
-    changes before it, the DC ramp, bias-filter wait and after_operating_point wait. The
-    operating-point part is known in advance and stays as planned; the rest is learnt as
-    the ratio measured/estimated: a point at a frequency already measured is expected to
-    take its prior times the ratio the last point there showed (so a larger ripple, whose
-    prior is shorter, stays shorter), any other its prior times the ratios of the measured
-    frequencies nearest to it (on a log scale), since noise and rejection, which set a
-    capture's length, change smoothly with frequency."""
+    of its capture range, from the simulated bench's scenario or the stated assumptions),
+    the settle wait before it and, where the operating point changes before it, the DC
+    ramp, bias-filter wait and after_operating_point wait. The operating-point part is
+    known in advance and stays as planned. Once a frequency is measured, its other points
+    (another ripple, DC level or load) are re-planned (``replan``) with the noise and
+    rejection its last point showed, as `check --like` does (and, within
+    ``replan_decades`` of it, other frequencies' points under what the nearest measured
+    one showed, blended with their prior). The rest is learnt as the
+    ratio measured/estimated: a point at a frequency already measured is expected to take
+    its (re-planned) estimate times the ratio the last point there showed, any other its
+    prior times the ratios of the measured frequencies nearest to it (on a log scale),
+    since noise and rejection, which set a capture's length, change smoothly with
+    frequency."""
 
     NEAR_DECADES = 0.3  # ratios of frequencies within this many decades weigh most
+    REPLAN_DECADES = 0.6  # points this near a measured frequency are re-planned
+    MEAN_RATIOS = True
 
     def __init__(
         self,
@@ -1190,17 +1232,24 @@ class BenchTimeLeft:
         settle_s: Any,
         captures_s: Any | None = None,
         operating_s: Any = 0.0,
+        replan: Callable[[int, Any, float], float] | None = None,
+        replan_decades: float = REPLAN_DECADES,
     ) -> None:
         """``settle_s``: the wait before each point (s, per point or one for all), as
         benchseq.settling.Settling.planned gives it; ``captures_s``: each point's captures
         and round trips as the check estimates them (default: cycle-bound captures);
-        ``operating_s``: the operating-point change before each point (s)."""
+        ``operating_s``: the operating-point change before each point (s); ``replan(i,
+        noise, rejection_db)``: point i's captures and round trips under a measured noise
+        (benchseq.batches.NoiseGuess) and rejection (default: none, priors only);
+        ``replan_decades``: points this near a measured frequency are re-planned under what
+        the nearest showed (0: only a measured frequency's own points)."""
         from benchseq.check import capture_seconds
 
         if captures_s is None:
             captures_s, _ = capture_seconds(np.asarray(sweep.frequency), plan)
         captures = np.asarray(captures_s, dtype=float)
-        self.estimate = captures + np.asarray(settle_s, dtype=float)
+        self.settle = np.broadcast_to(np.asarray(settle_s, dtype=float), captures.shape)
+        self.estimate = captures + self.settle
         self.operating = np.broadcast_to(
             np.asarray(operating_s, dtype=float), self.estimate.shape
         ).copy()
@@ -1208,20 +1257,88 @@ class BenchTimeLeft:
             np.round(np.asarray(sweep.frequency, dtype=float), 6), return_inverse=True
         )
         self._log_f = np.log10(np.maximum(keys, 1e-30))
-        self._ratio = np.full(keys.size, np.nan)  # measured/estimated there (log)
+        self._ratio = np.full(keys.size, np.nan)  # measured/prior there (log)
+        self._ratio_here = np.full(keys.size, np.nan)  # measured/re-planned there (log)
+        self._count = np.zeros(keys.size, dtype=np.int64)  # points measured there
         self._todo = np.zeros(self.estimate.size, dtype=bool)
+        self._replan = replan
+        self._replan_decades = float(replan_decades)
+        self._shown: dict[int, tuple[Any, float]] = {}  # frequency key: noise, rejection
+        self._replanned: dict[tuple[int, float, int], tuple[int, float]] = {}
+        self._ripple = np.asarray(sweep.ripple_peak, dtype=float)
+        self._version = np.zeros(keys.size, dtype=np.int64)
+        self._powered_up_for: int | None = None
 
     def begin(self, todo: list[int]) -> None:
         """The points this session will measure (by position in the sweep)."""
         self._todo[:] = False
         self._todo[np.asarray(todo, dtype=np.int64)] = True
+        # the power-up sets the first point's operating point: not in that point's time
+        self._powered_up_for = int(todo[0]) if todo else None
 
-    def learn(self, i: int, bench_time: float) -> None:
-        own = max(float(bench_time) - float(self.operating[i]), 0.0)
+    def learn(self, i: int, bench_time: float, row: dict[str, Any] | None = None) -> None:
+        """Point i took ``bench_time`` (s, its operating-point change included); ``row``:
+        its stored row, whose noise and rejection re-plan its frequency's other points."""
+        before = 0.0 if i == self._powered_up_for else float(self.operating[i])
+        own = max(float(bench_time) - before, 0.0)
         key = self._key[i]
-        if self.estimate[i] > 0 and own > 0:
-            self._ratio[key] = math.log(own / float(self.estimate[i]))
+        if row is not None and self._replan is not None:
+            shown = _shown_by(row)
+            if shown is not None:
+                self._shown[key] = shown
+                self._version[key] += 1
+        base = self._base(i)
+        if base > 0 and own > 0 and self.estimate[i] > 0:
+            # the mean over the points measured at this frequency: one point's top-ups
+            # scatter with the noise it met, and its ratio would carry that to the rest
+            n = self._count[key] = self._count[key] + 1
+            prior = math.log(own / float(self.estimate[i]))  # for other frequencies
+            here = math.log(own / base)  # for this one's other points
+            if n == 1 or not self.MEAN_RATIOS:
+                self._ratio[key], self._ratio_here[key] = prior, here
+            else:
+                self._ratio[key] += (prior - self._ratio[key]) / n
+                self._ratio_here[key] += (here - self._ratio_here[key]) / n
         self._todo[i] = False
+
+    def _base(self, i: int) -> float:
+        """Point i's estimate before the ratios: re-planned where its frequency was
+        measured; near a measured frequency (within replan_decades) the re-plan under what
+        the nearest showed, blended with the prior on a log scale as the ratios are
+        (weight of the distance against the prior's); else the prior."""
+        key = int(self._key[i])
+        prior = float(self.estimate[i])
+        if self._replan is None or not self._shown:
+            return prior
+        if key in self._shown:
+            return self._replanned_at(i, key)
+        near, distance = self._nearest_shown(key)
+        if distance > self._replan_decades or prior <= 0:
+            return prior
+        weight = 1.0 / (1.0 + (distance / self.NEAR_DECADES) ** 2) ** 2
+        replanned = self._replanned_at(i, near)
+        if replanned <= 0:
+            return prior
+        mixed = (weight * math.log(replanned) + 0.25 * math.log(prior)) / (weight + 0.25)
+        return math.exp(mixed)
+
+    def _nearest_shown(self, key: int) -> tuple[int, float]:
+        shown = np.fromiter(self._shown, dtype=np.int64, count=len(self._shown))
+        distance = np.abs(self._log_f[shown] - self._log_f[key])
+        k = int(np.argmin(distance))
+        return int(shown[k]), float(distance[k])
+
+    def _replanned_at(self, i: int, key: int) -> float:
+        """Point i's captures under what frequency ``key`` last showed, plus its settle."""
+        assert self._replan is not None
+        memo = (int(self._key[i]), round(float(self._ripple[i]), 12), key)
+        version = int(self._version[key])
+        cached = self._replanned.get(memo)
+        if cached is None or cached[0] != version:
+            noise, rejection = self._shown[key]
+            cached = (version, float(self._replan(i, noise, rejection)) + float(self.settle[i]))
+            self._replanned[memo] = cached
+        return cached[1]
 
     def left(self, remaining: set[int] | None = None) -> float:
         """Bench time (s) of ``remaining`` (positions; default: the points not yet learnt
@@ -1231,16 +1348,47 @@ class BenchTimeLeft:
         else:
             index = np.fromiter(remaining, dtype=np.int64, count=len(remaining))
         known = np.isfinite(self._ratio)
-        log_ratio = np.zeros(self._log_f.size)
+        log_ratio = np.zeros(self._log_f.size)  # against the prior
+        log_here = np.zeros(self._log_f.size)  # against the re-planned estimate
         if known.any():
             distance = np.abs(self._log_f[:, None] - self._log_f[None, known])
             weight = 1.0 / (1.0 + (distance / self.NEAR_DECADES) ** 2) ** 2
             # the prior (ratio 1) weighs as a measured frequency NEAR_DECADES away: far
             # from every measured frequency the estimate falls back to the check's
             log_ratio = (weight @ self._ratio[known]) / (weight.sum(axis=1) + 0.25)
-            log_ratio[known] = self._ratio[known]  # measured here: the last point's own
-        own = self.estimate[index] * np.exp(log_ratio[self._key[index]])
+            log_here = (weight @ self._ratio_here[known]) / (weight.sum(axis=1) + 0.25)
+            log_ratio[known] = log_here[known] = self._ratio_here[known]  # the last point's
+        keys = self._key[index]
+        base = self.estimate[index].copy()
+        ratio = log_ratio[keys]
+        if self._shown and self._replan is not None:
+            shown = np.fromiter(self._shown, dtype=np.int64, count=len(self._shown))
+            gap = np.min(np.abs(self._log_f[:, None] - self._log_f[None, shown]), axis=1)
+            for n in np.flatnonzero(gap[keys] <= self._replan_decades):
+                base[n] = self._base(int(index[n]))
+                ratio[n] = log_here[keys[n]]
+        own = base * np.exp(ratio)
         return float(np.sum(own + self.operating[index]))
+
+
+def _shown_by(row: dict[str, Any]) -> tuple[Any, float] | None:
+    """The noise (batches.NoiseGuess) and rejection (dB; the bound where not detected) a
+    stored row showed; None when it does not tell."""
+    try:
+        noise = batches.NoiseGuess.from_point(
+            float(row["output_floor"]),
+            float(row["output_noise"]),
+            float(row["pin_sigma"]),
+            float(row["sample_interval"]),
+            int(row["record_length"]),
+            int(row["averages"]),
+        )
+        rejection = float(row["bound_db"] if row["is_bound"] else row["rejection_db"])
+    except (KeyError, TypeError, ValueError):
+        return None
+    if noise is None or not math.isfinite(rejection):
+        return None
+    return noise, rejection
 
 
 class _StopRun(Exception):

@@ -19,7 +19,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from benchseq.bench import load_bench
+from benchseq.check import check_plan, noise_target_db, scenario_likeness
 from benchseq.cli import main
+from benchseq.plan import load_plan
 from benchseq.runner import start_run
 
 RUN_LIMIT_S = 180.0
@@ -69,17 +72,21 @@ def plan_path(tmp_path: Path) -> Path:
 def test_check_range_holds_the_bench_time_over_seeds(
     plan_path: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
+    """Both ranges: from the simulated bench's scenario (what `check` uses on it) and from
+    the stated assumptions (what it uses on a real bench without --like)."""
     assert main(["check", str(plan_path), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
-    low, high = report["estimated_time_range_s"]
+    assert report["estimate_assumes"]["source"] == "scenario"
+    assumed = check_plan(load_plan(plan_path), load_bench(None), scenario=False)
     took = []
     for seed in SEEDS:
         outcome, _ = start_run(str(plan_path), None, str(tmp_path / f"e{seed}.h5"), seed=seed)
         assert outcome.status == "complete"
         took.append(outcome.bench_time)
     scatter = float(np.std(took, ddof=1))
-    for seed, seconds in zip(SEEDS, took, strict=True):
-        assert low - K * scatter <= seconds <= high + K * scatter, (seed, seconds, low, high)
+    for low, high in (report["estimated_time_range_s"], assumed.estimated_range_s):
+        for seed, seconds in zip(SEEDS, took, strict=True):
+            assert low - K * scatter <= seconds <= high + K * scatter, (seed, seconds, low, high)
 
 
 def test_check_json_carries_the_range_and_what_it_assumed(
@@ -89,10 +96,14 @@ def test_check_json_carries_the_range_and_what_it_assumed(
     report = json.loads(capsys.readouterr().out)
     low, high = report["estimated_time_range_s"]
     assert 0 < low <= report["estimated_time_s"] <= high
-    assumed = report["estimate_assumes"]
+    stated = report["estimate_assumes"]  # the simulated bench: its scenario, said so
+    assert stated["source"] == "scenario" and stated["scenario"] == "demo"
+    assert "scenario 'demo'" in report["capture_estimate"]
+    assert "time_breakdown_s" in report and "capture_estimate" in report  # kept keys
+    real = check_plan(load_plan(plan_path), load_bench(None), scenario=False).to_dict()
+    assumed = real["estimate_assumes"]  # as on a bench without a scenario
     assert assumed["source"] == "assumed"
     assert assumed["noise_v_rms"] > 0 and len(assumed["rejection_db"]) == 2
-    assert "time_breakdown_s" in report and "capture_estimate" in report  # kept keys
     previous = tmp_path / "previous.h5"
     outcome, _ = start_run(str(plan_path), None, str(previous), seed=5)
     assert outcome.status == "complete"
@@ -128,3 +139,40 @@ def test_log_lines_show_a_finish_consistent_with_the_time_left(
             gap += 86400.0
         # the shown finish is truncated to its minute: the true one is up to 60 s later
         assert -rounding - 1.0 <= left - gap <= 60.0 + rounding + 1.0, m.group(0)
+
+
+def test_noise_target_leaves_the_channel_match_its_share() -> None:
+    """Uncorrelated parts of u add in quadrature (GUM, JCGM 100:2008, 5.1.2): with the
+    uncalibrated channel match at 1.35 % (k = 1), i.e. 0.11726 dB (20/ln 10 dB per unit
+    relative), a 0.2 dB target leaves √(0.2² − 0.11726²) = 0.16202 dB for the noise (hand
+    calculation). Where the match alone exceeds the target (0.1 dB), the run aims the noise
+    at half the target, 0.05 dB (DEVELOPERS.md, "top-ups")."""
+    assert noise_target_db(0.2, 0.0135) == pytest.approx(0.16202, abs=2e-5)
+    assert noise_target_db(0.1, 0.0135) == pytest.approx(0.05, abs=1e-9)
+    assert noise_target_db(0.2, 0.0) == pytest.approx(0.2, abs=1e-12)
+
+
+def test_scenario_states_the_demo_noise_and_rejection(plan_path: Path) -> None:
+    """The demo scenario's stated numbers (sim/scenarios/demo.toml), worked by hand:
+    rejection at 10 Hz, 5 V in, the board's 50 mA: headroom 5 − 3.3 − (0.08 + 2.4 Ω × 50 mA)
+    = 1.5 V, loop gain 10^(80/20) × 1.5/(1.5 + 0.1) = 9375 (the error amplifier's 200 Hz
+    pole moves it by 0.1 %), feed-through 66 Ω/(66 Ω + 2 Ω) = 0.9706 (the 2.2 µF is 7.2 kΩ at
+    10 Hz), so 20·log10(9376/0.9706) = 79.70 dB. Output channel noise on the 8 mV range
+    (1 mV/div, probe ×1): √((0.03 × 1 mV)² + (100 µV)²) = 104.4 µV, × √(20 MHz/200 MHz) =
+    33.0 µV behind the bandwidth limit, with the 8-bit step's 8 mV/256/√12 = 9.02 µV:
+    34.2 µV. The device's density at 100 Hz: (40 nV/√Hz)² × (1 + 300/100) = 6.4e-15 V²/Hz."""
+    scenario = scenario_likeness(load_plan(plan_path), load_bench(None))
+    assert scenario is not None
+    assert scenario.rejection_db(10.0, 5.0, float("nan")) == pytest.approx(79.70, abs=0.05)
+    noise = scenario.noise(100.0, 0.05, 0.05 * 10 ** (-79.0 / 20.0))
+    assert noise.white_sigma == pytest.approx(34.2e-6, rel=0.01)
+    assert noise.coloured == pytest.approx(6.4e-15, rel=0.01)
+    # a real bench (no scenario) has none
+    real = load_bench(None)
+    assert scenario_likeness(load_plan(plan_path), _without_simulation(real)) is None
+
+
+def _without_simulation(bench):  # type: ignore[no-untyped-def]
+    import dataclasses
+
+    return dataclasses.replace(bench, simulation=None)

@@ -60,6 +60,61 @@ def test_estimates_learn_from_measured_points() -> None:
     assert eta.left({far}) == pytest.approx(float(eta.estimate[far]), rel=0.02)
 
 
+def _row(rejection_db: float) -> dict[str, Any]:
+    """A stored row's noise and rejection fields (what a measured point shows)."""
+    return {
+        "output_floor": 1e-7, "output_noise": 3e-5, "pin_sigma": 1e-6,
+        "sample_interval": 1e-4, "record_length": 10_000, "averages": 4,
+        "rejection_db": rejection_db, "bound_db": float("nan"), "is_bound": False,
+    }  # fmt: skip
+
+
+def test_a_measured_frequency_re_plans_its_other_points() -> None:
+    """A stand-in planner (by frequency: 2 s at 20 Hz under what the 20 Hz point showed,
+    4 s at 60 Hz, 1 s elsewhere) against priors of 0.5 s (0.25 s for the later 20 Hz
+    point). The later 20 Hz point takes the re-planned 2 s times what the measured point
+    took over its own re-planned estimate (3 s against 2 s: 1.5), so 3 s - not its prior
+    times the measured/prior ratio (0.25 × 6 = 1.5 s); 60 Hz, half a decade away, leans
+    from its prior towards its re-plan; 20 kHz, three decades away, keeps its prior."""
+    plan = _plan()
+    sweep = plan.expand()
+    later = int(np.nonzero(np.isclose(sweep.frequency, 20.0))[0][1])
+    seen: list[float] = []
+
+    def replan(i: int, noise: Any, rejection_db: float) -> float:
+        assert noise.white_sigma == pytest.approx(3e-5)  # the row's noise, as shown
+        seen.append(rejection_db)
+        return {20.0: 2.0, 60.0: 4.0}.get(round(float(sweep.frequency[i]), 6), 1.0)
+
+    prior = np.full(len(sweep), 0.5)
+    prior[later] = 0.25
+    eta = BenchTimeLeft(plan, sweep, 0.0, prior, replan=replan)
+    eta.begin(list(range(len(sweep))))
+    eta.learn(0, 3.0, _row(71.0))
+    assert eta.left({later}) == pytest.approx(3.0)
+    assert seen and set(seen) == {71.0}  # the rejection the row showed
+    assert 0.5 < eta.left({1}) < 4.0 * 1.5  # 60 Hz
+    assert eta.left({4}) == pytest.approx(0.5, rel=0.02)  # 20 kHz: the prior
+    eta.learn(later, 2.0, None)  # a point without a row learns its ratio only: 2 s / 2 s
+    # the ratio at a frequency is the geometric mean over its points: √(1.5 × 1) × 2 s
+    assert eta.left({later}) == pytest.approx(2.0 * 1.5**0.5)
+
+
+def test_the_first_point_has_no_operating_change_of_its_own() -> None:
+    """The power-up ramps to the first point's DC level and waits after_operating_point
+    before that point starts, so its bench time holds none of it: 2 s against a 1 s prior
+    is a ratio of 2 at its frequency whatever the operating-point part (5 s) is."""
+    plan = _plan()
+    sweep = plan.expand()
+    later = int(np.nonzero(np.isclose(sweep.frequency, 20.0))[0][1])
+    operating = np.zeros(len(sweep))
+    operating[0] = 5.0
+    eta = BenchTimeLeft(plan, sweep, 0.0, np.ones(len(sweep)), operating)
+    eta.begin(list(range(len(sweep))))
+    eta.learn(0, 2.0)
+    assert eta.left({later}) == pytest.approx(2.0 + operating[later])
+
+
 SEEDS = [1, 2, 3, 4]
 K = 4.0  # coverage factor of the limit
 

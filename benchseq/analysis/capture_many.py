@@ -45,7 +45,7 @@ def plan_capture_many(
     frequency: Any,
     pin_amplitude: Any,
     output_amplitude: Any,
-    target_uncertainty_db: float,
+    target_uncertainty_db: Any,
     min_cycles: int,
     max_time_s: float,
     noise_sigma: Any,
@@ -56,8 +56,8 @@ def plan_capture_many(
 ) -> ManyPlans:
     """plan_capture(scope, f, pin, out, target, min_cycles, max_time_s, noise_sigma=σ,
     density_at_f=S, pin_noise_sigma=σ_pin (NaN: None, the pin takes σ), max_record_time
-    (NaN: None), lean) for each point of the broadcast arrays."""
-    f, pin, out, sigma, coloured, pin_sigma, longest_asked = (
+    (NaN: None), lean) for each point of the broadcast arrays (the target too)."""
+    f, pin, out, sigma, coloured, pin_sigma, longest_asked, target = (
         np.ravel(a)
         for a in np.broadcast_arrays(
             *(
@@ -78,7 +78,7 @@ def plan_capture_many(
         raise AnalysisError(
             "capture planning needs a positive frequency and positive expected amplitudes"
         )
-    if target_uncertainty_db <= 0 or min_cycles < 1 or max_time_s <= 0:
+    if not np.all(target > 0) or min_cycles < 1 or max_time_s <= 0:
         raise AnalysisError("target uncertainty, minimum cycles and maximum time must be positive")
     if np.any(coloured < 0):
         raise AnalysisError("a noise density cannot be negative")
@@ -104,7 +104,7 @@ def plan_capture_many(
             coloured[part],
             np.where(np.isnan(pin_sigma[part]), sigma[part], pin_sigma[part]),
             longest_asked[part],
-            float(target_uncertainty_db),
+            target[part],
             int(min_cycles),
             float(max_time_s),
             lean,
@@ -136,14 +136,15 @@ def _block(
     coloured: np.ndarray,
     pin_sigma: np.ndarray,
     longest_asked: np.ndarray,
-    target: float,
+    target_row: np.ndarray,
     min_cycles: int,
     max_time: float,
     lean: bool,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     rearm = float(scope.rearm_time)
     max_averages = max(int(scope.max_averages), 1)
-    budget = target**2 - 0.0
+    target = target_row[:, None]
+    budget = target**2
     db2 = DB_PER_NEPER**2
     # timebases in plan_capture's order: interval (outer), then record length
     dt = np.repeat(intervals, lengths.size)[None, :]
@@ -170,7 +171,7 @@ def _block(
     nyquist = 0.5 / dt
     weight = (pin_sigma[:, None] ** 2 / nyquist + 0.0) / pin[:, None] ** 2
     weight = weight + (sigma[:, None] ** 2 / nyquist + coloured[:, None]) / out[:, None] ** 2
-    needed = db2 * weight / budget if budget > 0 else np.full(weight.shape, np.inf)
+    needed = db2 * weight / budget
     finite = np.isfinite(needed)
     with np.errstate(invalid="ignore", over="ignore"):
         total = np.maximum(1.0, np.ceil(needed / duration * (1 - 1e-12)))
@@ -212,7 +213,7 @@ def _block(
             & meets
             & best_meets[:, None]
             & (bench <= (best_bench * (1 + 1e-9))[:, None])
-            & (u <= np.maximum(best_u, LEAN_MARGIN * target)[:, None])
+            & (u <= np.maximum(best_u, LEAN_MARGIN * target_row)[:, None])
             & (dt * col * LEAN_SAMPLES_PER_CYCLE <= 1.0 + 1e-9)
         )
         has = np.any(fewest, axis=1)

@@ -1,17 +1,19 @@
 """How honest the bench time estimates are, on the simulated bench (in-process).
 
-For each plan: `check`'s estimate (its range and middle, from stated assumptions, and
-again with --like a previous run of the same plan at another seed) beside the simulated
+For each plan: `check`'s estimate (its range and middle, from the stated assumptions, from
+the simulated bench's scenario, and with --like a previous run of the same plan at another
+seed) beside the simulated
 bench time the run took, and the running estimate's error (bench time left shown against
 what the rest of the run then took) once 10 %, 25 % and 50 % of the points are stored.
 Plans: plans/demo.toml, plans/overnight.toml (on the demo bench with an electronic load;
 ``--points N`` runs its first N points in run order, default 102: both ripples at the first
 load and DC level; ``--stratified`` spreads them over frequency as tests/perf/run_speed.py
 does, which jumps frequency from point to point far more than a run does), a
-high-frequency-only plan and a multi-operating-point plan. Also prints the bench time
-split by activity of the demo run, from which benchseq.check's per-point overheads come.
+high-frequency-only plan and a multi-operating-point plan. Also prints each plan's bench
+time split by activity (first seed) beside the scenario estimate's breakdown.
 
     .venv/bin/python tests/perf/eta_accuracy.py [--points 102] [--stratified] [--seeds 0 1]
+        [--assumed-prior]
 """
 
 from __future__ import annotations
@@ -86,9 +88,21 @@ class Watch:
         sequencer.emit = watch
 
 
-def _run(plan: Any, bench: Any, folder: Path, name: str, keep: Any, seed: int) -> tuple[Any, Watch]:
+def _run(
+    plan: Any, bench: Any, folder: Path, name: str, keep: Any, seed: int, assumed: bool = False
+) -> tuple[Any, Watch]:
+    """One run; ``assumed``: its time left starts from the stated assumptions (as on a
+    real bench) instead of the simulated bench's scenario."""
+    import benchseq.check as check
+
     path = folder / f"{name}-{seed}.h5"
-    outcome, watch = run_sweep(plan, bench, path, keep=keep, seed=seed, attach=Watch)
+    stated = check.scenario_likeness
+    if assumed:
+        check.scenario_likeness = lambda plan, bench: None  # type: ignore[assignment]
+    try:
+        outcome, watch = run_sweep(plan, bench, path, keep=keep, seed=seed, attach=Watch)
+    finally:
+        check.scenario_likeness = stated  # type: ignore[assignment]
     return outcome, watch, path
 
 
@@ -121,6 +135,12 @@ def main() -> None:
         "the first ones in run order (whose frequency rises point to point, as in a run)",
     )
     parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1])
+    parser.add_argument(
+        "--assumed-prior",
+        action="store_true",
+        help="the running estimate starts from the stated assumptions, as on a real bench "
+        "(default: from the simulated bench's scenario, as a run on it does)",
+    )
     args = parser.parse_args()
     print(f"load average: {' '.join(f'{x:.2f}' for x in __import__('os').getloadavg())}")
     with tempfile.TemporaryDirectory() as tmp:
@@ -141,18 +161,24 @@ def main() -> None:
             ("three DC x two ripples", _own(OPERATING, "operating.toml"), demo_bench, None),
         ]  # fmt: skip
         print(
-            f"{'plan':28s} {'seed':>4s} {'bench s':>8s} {'check low–high (mid)':>26s} {'mid err':>8s}"
-            f" {'--like low–high (mid)':>26s} {'mid err':>8s}  running err @10/25/50 %"
+            f"{'plan':28s} {'seed':>4s} {'bench s':>8s} {'assumed low–high (mid)':>24s} {'mid err':>8s}"
+            f" {'scenario low–high (mid)':>24s} {'mid err':>8s}"
+            f" {'--like low–high (mid)':>24s} {'mid err':>8s}  running err @10/25/50 %"
         )
         for name, plan, bench, subset in cases:
             previous = None
             for seed in args.seeds:
                 wall = time.perf_counter()
-                outcome, watch, path = _run(plan, bench, folder, name.split()[0], subset, seed)
+                outcome, watch, path = _run(
+                    plan, bench, folder, name.split()[0], subset, seed, args.assumed_prior
+                )
                 took = outcome.bench_time
-                report = check_plan(_subset_plan(plan, subset), bench)
+                report = check_plan(_subset_plan(plan, subset), bench, scenario=False)
                 lo, hi = report.estimated_range_s
                 mid = report.estimated_time_s
+                stated = check_plan(_subset_plan(plan, subset), bench)
+                slo, shi = stated.estimated_range_s
+                smid = stated.estimated_time_s
                 like_text = "—"
                 like_err = "—"
                 if previous is not None:
@@ -161,12 +187,16 @@ def main() -> None:
                     )
                     llo, lhi = liked.estimated_range_s
                     like_text = f"{llo:.1f}–{lhi:.1f} ({liked.estimated_time_s:.1f})"
+                    like_text = (
+                        like_text if len(like_text) <= 24 else f"({liked.estimated_time_s:.1f})"
+                    )
                     like_err = f"{(liked.estimated_time_s / took - 1) * 100:+.0f} %"
                 running = _running_errors(watch)
                 print(
                     f"{name:28s} {seed:4d} {took:8.1f} "
-                    f"{f'{lo:.1f}–{hi:.1f} ({mid:.1f})':>26s} {(mid / took - 1) * 100:+7.0f} %"
-                    f" {like_text:>26s} {like_err:>8s}  "
+                    f"{f'{lo:.1f}–{hi:.1f} ({mid:.1f})':>24s} {(mid / took - 1) * 100:+7.0f} %"
+                    f" {f'{slo:.1f}–{shi:.1f} ({smid:.1f})':>24s} {(smid / took - 1) * 100:+7.0f} %"
+                    f" {like_text:>24s} {like_err:>8s}  "
                     + " / ".join(
                         f"{running[s][0] * 100:+.0f} % ({running[s][1]:+.1f} s)"
                         for s in (10, 25, 50)
@@ -174,14 +204,25 @@ def main() -> None:
                     )
                     + f"   [{time.perf_counter() - wall:.0f} s wall]"
                 )
-                if name == "demo" and seed == args.seeds[0]:
-                    split = {k: round(v, 2) for k, v in watch.split.totals().items()}
+                if seed == args.seeds[0]:
+                    split = {k: round(v, 2) for k, v in watch.split.totals().items() if v}
                     outside = {k: round(v, 2) for k, v in watch.split.outside.items()}
                     n = len(watch.shown)
                     print(
-                        f"  demo split by activity over {n} points: {split}; outside points: {outside}"
+                        f"  split by activity over {n} points: {split}; outside points: {outside};"
+                        f" scenario's estimate: {_rounded(stated.range_breakdown)}"
                     )
                 previous = path
+
+
+def _rounded(ends: dict[str, dict[str, float]]) -> str:
+    """check's breakdown, low end – high end per activity (s), non-zero parts only."""
+    low, high = ends.get("low", {}), ends.get("high", {})
+    return ", ".join(
+        f"{k} {low[k]:.2f}" + (f"–{high[k]:.2f}" if abs(high[k] - low[k]) > 5e-3 else "")
+        for k in low
+        if low[k] or high.get(k)
+    )
 
 
 def _subset_plan(plan: Any, keep: Any) -> Any:
