@@ -133,8 +133,14 @@ def _many(scope: ScopeTimebase, p: dict, rules: dict, keep) -> object:
 
 
 @FAST
-@given(_scopes(), _points(10), RULES)
-def test_predicted_bench_times_match_predicted_plan(scope, points, rules) -> None:
+@given(_scopes(), _points(10), RULES, st.booleans())
+def test_predicted_bench_times_match_predicted_plan(scope, points, rules, per_point) -> None:
+    """Also with one target per point (check aims each point's noise at what its frequency's
+    channel match leaves of the target)."""
+    n = len(points["f"])
+    targets = [
+        rules["target"] * (1.0 + 0.5 * (k % 3)) if per_point else rules["target"] for k in range(n)
+    ]
     expected = []
     for k in range(len(points["f"])):
         psig = points["psig"][k]
@@ -148,7 +154,7 @@ def test_predicted_bench_times_match_predicted_plan(scope, points, rules) -> Non
                 points["pin"][k],
                 points["out"][k],
                 guess,
-                rules["target"],
+                targets[k],
                 rules["min_cycles"],
                 rules["max_time"],
                 lean=rules["lean"],
@@ -164,7 +170,7 @@ def test_predicted_bench_times_match_predicted_plan(scope, points, rules) -> Non
         np.array(points["sigma"]),
         np.array(points["col"]),
         np.array(points["psig"]),
-        rules["target"],
+        np.array(targets) if per_point else rules["target"],
         rules["min_cycles"],
         rules["max_time"],
         lean=rules["lean"],

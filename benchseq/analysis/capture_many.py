@@ -70,6 +70,7 @@ def plan_capture_many(
                     density_at_f,
                     pin_noise_sigma,
                     max_record_time,
+                    target_uncertainty_db,
                 )
             )
         )
