@@ -25,9 +25,13 @@ EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
 def _console(stderr: bool = False) -> Any:
     from rich.console import Console
 
-    # Messages on stderr are never wrapped by rich (soft_wrap): a path or a key in an error
-    # stays on one line, whole, for a terminal to wrap and a script or a log to read.
-    return Console(stderr=stderr, highlight=False, soft_wrap=stderr)
+    # Messages on stderr, and everything written to a file or a pipe, are never wrapped by
+    # rich (soft_wrap): a path, a key or a value with its unit stays on one line, whole, for
+    # a terminal to wrap and a script or a log to read ("bench time 20.8 s" was split
+    # before its unit in a redirected run's summary).
+    stream = sys.stderr if stderr else sys.stdout
+    piped = not (hasattr(stream, "isatty") and stream.isatty())
+    return Console(stderr=stderr, highlight=False, soft_wrap=stderr or piped)
 
 
 def _escape(value: object) -> str:
