@@ -221,7 +221,9 @@ def ac_reference(
     netlist_text: str, nodes: Sequence[str], freqs: Iterable[float]
 ) -> dict[str, np.ndarray]:
     """``ac_analysis`` through the stored answers (see the module docstring)."""
-    frequencies = [float(f) for f in freqs]
+    # 12 significant digits: a frequency grid from np.logspace differs in its last bit
+    # between numpy builds, and the deck (and so the stored answer's key) must not.
+    frequencies = [float(f"{float(f):.12g}") for f in freqs]
     deck = f"{netlist_text}\nnodes {' '.join(nodes)}\nfreqs {frequencies!r}"
 
     def live() -> dict:

@@ -78,3 +78,17 @@ def test_injector_json_and_plot(tmp_path: Path, capsys: pytest.CaptureFixture[st
     assert low < 1e3 < high
     assert main(["injector", "--ripple", "100 mA"]) == 2
     assert "voltage" in capsys.readouterr().err
+
+
+def test_piped_output_keeps_each_value_with_its_unit(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Written to a pipe or a file (capsys is neither a terminal), the head lines are not
+    wrapped at the terminal width: a 50-column width must not split the bench-time range,
+    whose line is longer than that, so a log or a script reads "… s on the bench" whole."""
+    monkeypatch.setenv("COLUMNS", "50")
+    assert main(["check", str(PLANS / "demo.toml")]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    head = [line for line in lines if "on the bench" in line]
+    assert len(head) == 1
+    assert head[0].startswith("16 points; ") and len(head[0]) > 50
