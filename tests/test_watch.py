@@ -304,6 +304,14 @@ def test_missing_or_damaged_file_refused_before_serving(
     assert sorted(p.name for p in tmp_path.iterdir()) == ["damaged.h5"]
 
 
+def _ctrl_c_as_at_a_terminal() -> None:
+    """In the child before it starts: SIGINT to its default. A process started in the
+    background by a shell without job control inherits SIGINT ignored (POSIX, Shell
+    Command Language §2.11), and Python then installs no KeyboardInterrupt for it; the
+    test wants the command as a user at a terminal starts it."""
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def test_command_prints_url_and_ends_cleanly_on_ctrl_c(tmp_path: Path) -> None:
     path = write_result(tmp_path / "done.h5", [row(k, 10.0**k, 70.0 - 10 * k) for k in range(1, 5)])
     before = _fingerprint(tmp_path)
@@ -313,6 +321,7 @@ def test_command_prints_url_and_ends_cleanly_on_ctrl_c(tmp_path: Path) -> None:
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
+        preexec_fn=_ctrl_c_as_at_a_terminal,
         env=env,
     ) as process:
         assert process.stdout is not None and process.stderr is not None
