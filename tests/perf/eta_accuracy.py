@@ -226,7 +226,8 @@ def _rounded(ends: dict[str, dict[str, float]]) -> str:
 
 
 def _subset_plan(plan: Any, keep: Any) -> Any:
-    """The plan restricted to ``keep`` for the check (its expand() gives those points)."""
+    """The plan restricted to ``keep`` for the check (its expand() and point_values() give
+    those points)."""
     if keep is None:
         return plan
     from _runbench import subset_sweep
@@ -239,6 +240,20 @@ def _subset_plan(plan: Any, keep: Any) -> Any:
 
         def expand(self) -> Any:
             return sweep
+
+        def point_values(self) -> Any:  # what check expands since it works over arrays
+            from benchseq.plan import PointValues
+
+            return PointValues(
+                frequency=sweep.frequency,
+                ripple_peak=sweep.ripple_peak,
+                dc_level=sweep.dc_level,
+                load_current=sweep.load_current,
+            )
+
+        @property
+        def point_count(self) -> int:
+            return len(sweep)
 
     return Subset()
 
