@@ -38,6 +38,7 @@ benchseq.store brings the file up to date from the journal; benchseq.results rea
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -287,15 +288,27 @@ class _H5State:
     journal_damage: tuple[int, list[list[int]]] | None = None  # (records, byte ranges)
 
 
+def _whole_text(value: str, what: str) -> str:
+    """``value`` unless it holds bytes that were not UTF-8 (h5py hands an attribute's
+    undecodable bytes over as lone surrogates): a damaged text is an error, not a label."""
+    if any("\udc80" <= ch <= "\udcff" for ch in value):
+        raise ValueError(f"{what} is not valid text")
+    return value
+
+
 def _group_columns(group: h5py.Group, where: str) -> list[Column]:
     try:
         names = json.loads(group.attrs["columns"])
         return [
-            Column.from_stored(n, str(group[n].attrs["kind"]), units_of(group[n]),
-                               str(group[n].attrs["description"]))
+            Column.from_stored(
+                _whole_text(n, "a column name"),
+                _whole_text(str(group[n].attrs["kind"]), f"{n}'s kind"),
+                _whole_text(units_of(group[n]), f"{n}'s units"),
+                _whole_text(str(group[n].attrs["description"]), f"{n}'s description"),
+            )
             for n in names
-        ]  # fmt: skip
-    except (KeyError, ValueError, TypeError) as exc:
+        ]
+    except (KeyError, ValueError, TypeError, OSError) as exc:
         raise BadResultFile(f"{where}: damaged column table ({exc})") from None
 
 
@@ -310,7 +323,11 @@ def _read_h5_state(path: Path) -> _H5State | None:
     except OSError as exc:
         raise _Unreadable(f"{path} is not a readable HDF5 file ({exc})") from None
     with h5:
-        if h5.attrs.get("format") != FORMAT:
+        try:
+            stated = h5.attrs.get("format")
+        except (KeyError, ValueError, OSError) as exc:  # a damaged attribute heap
+            raise _Unreadable(f"{path}: damaged HDF5 attributes ({exc})") from None
+        if stated != FORMAT:
             raise BadResultFile(f"{path} is an HDF5 file but not a benchseq result")
         try:
             meta = json.loads(h5["meta/json"].asstr()[()])
@@ -329,9 +346,18 @@ def _read_h5_state(path: Path) -> _H5State | None:
 
 
 def _column_arrays(group: h5py.Group, columns: Sequence[Column], rows: slice) -> dict:
+    """The columns' values at ``rows``. Every column has the point_id scale's length, and no
+    table can hold more rows than its file has bytes (8 bytes a row at the least): a
+    damaged shape is a ValueError here, before it can ask for gigabytes."""
     out: dict[str, np.ndarray] = {}
+    length = group[ID_SCALE].shape[0] if ID_SCALE in group else None
+    limit = os.path.getsize(group.file.filename) // 8 + 1
     for c in columns:
         ds = group[c.name]
+        if not isinstance(ds, h5py.Dataset) or ds.ndim < 1:
+            raise ValueError(f"{c.name} is not a table column")
+        if ds.shape[0] > limit or (length is not None and ds.shape[0] != length):
+            raise ValueError(f"{c.name} claims {ds.shape[0]} rows, the table {length}")
         out[c.name] = ds.asstr()[rows] if c.kind == "str" else ds[rows]
     return out
 

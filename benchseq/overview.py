@@ -290,7 +290,7 @@ def is_calibration_file(path: str) -> bool:
     try:
         with h5py.File(path, "r", locking=False) as h5:
             return h5.attrs.get("format") == FORMAT
-    except (OSError, ValueError):
+    except (OSError, ValueError, KeyError, TypeError):  # not HDF5, or damaged: not ours
         return False
 
 

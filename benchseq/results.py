@@ -226,7 +226,8 @@ def _frame(sources: _Sources, group: str, columns: Sequence[Column], key: str) -
             if group in h5:
                 try:
                     found = _column_arrays(h5[group], columns, slice(None))
-                except (OSError, KeyError, ValueError) as exc:  # damaged storage under h5py
+                except (OSError, KeyError, ValueError, TypeError, MemoryError) as exc:
+                    # damaged storage under h5py (a chunk, a datatype, a shape)
                     raise BadResultFile(
                         f"{sources.path}: the HDF5 table /{group} cannot be read ({exc}): the "
                         "file is damaged (its journal, where kept beside it, still holds every "

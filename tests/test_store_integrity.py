@@ -287,6 +287,42 @@ def test_unreadable_hdf5_storage_is_an_error_naming_the_table(
     assert "Traceback" not in err
 
 
+def _damage_units(h5: h5py.File) -> None:
+    # bytes that are not UTF-8 in a UTF-8 string attribute: one bit of "p" in "V (peak)"
+    units = h5["points/pin"].attrs["units"]
+    raw = units.encode("utf-8").replace(b"(p", b"(\x8f")
+    h5["points/pin"].attrs.create("units", raw, dtype=h5py.string_dtype("utf-8"))
+
+
+def _damage_shape(h5: h5py.File) -> None:
+    # a column that claims far more rows than the file could hold (a damaged dataspace)
+    h5["points/pin_sigma"].resize((10**9,))
+
+
+def _damage_kind(h5: h5py.File) -> None:
+    # a column name that leads to a stored datatype instead of a dataset
+    del h5["points/pin_sigma"]
+    h5["points/pin_sigma"] = np.dtype("f8")
+
+
+@pytest.mark.parametrize("damage", [_damage_units, _damage_shape, _damage_kind])
+def test_a_damaged_column_is_an_error_naming_the_file(
+    damage, complete_run: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Damage the command-line fuzzing of result files met (tests/perf/fuzz_inputs.py:
+    a flipped bit in an attribute's text, a dataspace, an object's type) ends `show` and
+    `report` with exit 2 and a message naming the file, never a traceback, a 30 GiB
+    allocation or a label with undecodable text in it."""
+    out = _copy_result(complete_run, tmp_path)
+    with h5py.File(out, "r+", locking=False) as h5:
+        damage(h5)
+    code, _, err = _cli(capsys, "show", str(out))
+    assert code == 2 and "done.h5" in err and "damaged" in err
+    code, _, err = _cli(capsys, "report", str(out), "--format", "csv", "-o", str(tmp_path / "r.csv"))
+    assert code == 2 and "done.h5" in err
+    assert not (tmp_path / "r.csv").exists()
+
+
 def test_a_damaged_journal_is_reported_not_skipped(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
