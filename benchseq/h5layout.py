@@ -345,6 +345,11 @@ def _read_h5_state(path: Path) -> _H5State | None:
             raise _Unreadable(f"{path}: damaged benchseq result ({exc})") from None
 
 
+# what numpy calls each column kind's stored values (h5py reads variable-length text as
+# objects; bool is HDF5's enum of 0 and 1)
+_NUMPY_KINDS = {"f8": "f", "i8": "iu", "c16": "c", "bool": "b", "str": "OSU"}
+
+
 def _column_arrays(group: h5py.Group, columns: Sequence[Column], rows: slice) -> dict:
     """The columns' values at ``rows``. Every column has the point_id scale's length, and no
     table can hold more rows than its file has bytes (8 bytes a row at the least): a
@@ -358,6 +363,8 @@ def _column_arrays(group: h5py.Group, columns: Sequence[Column], rows: slice) ->
             raise ValueError(f"{c.name} is not a table column")
         if ds.shape[0] > limit or (length is not None and ds.shape[0] != length):
             raise ValueError(f"{c.name} claims {ds.shape[0]} rows, the table {length}")
+        if ds.dtype.kind not in _NUMPY_KINDS[c.kind]:
+            raise ValueError(f"{c.name} holds {ds.dtype}, not {c.kind} values")
         out[c.name] = ds.asstr()[rows] if c.kind == "str" else ds[rows]
     return out
 

@@ -226,14 +226,14 @@ def _frame(sources: _Sources, group: str, columns: Sequence[Column], key: str) -
             if group in h5:
                 try:
                     found = _column_arrays(h5[group], columns, slice(None))
+                    found, damaged = _verified(sources, h5[group], columns, key, found)
                 except (OSError, KeyError, ValueError, TypeError, MemoryError) as exc:
-                    # damaged storage under h5py (a chunk, a datatype, a shape)
+                    # damaged storage under h5py (a chunk, a datatype, a shape, a link)
                     raise BadResultFile(
                         f"{sources.path}: the HDF5 table /{group} cannot be read ({exc}): the "
                         "file is damaged (its journal, where kept beside it, still holds every "
                         "stored point as written)"
                     ) from None
-                found, damaged = _verified(sources, h5[group], columns, key, found)
                 notices += damaged
                 for name, values in found.items():
                     arrays[name].append(values)

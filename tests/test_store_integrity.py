@@ -305,7 +305,16 @@ def _damage_kind(h5: h5py.File) -> None:
     h5["points/pin_sigma"] = np.dtype("f8")
 
 
-@pytest.mark.parametrize("damage", [_damage_units, _damage_shape, _damage_kind])
+def _damage_dtype(h5: h5py.File) -> None:
+    # a complex column whose datatype reads as three-field records (a damaged datatype)
+    old = h5["points/pin"]
+    rows, attrs = old.shape[0], {k: v for k, v in old.attrs.items() if k in ("kind", "units", "description")}
+    del h5["points/pin"]
+    new = h5["points"].create_dataset("pin", (rows,), dtype=[("a", "f8"), ("b", "f8"), ("c", "f8")])
+    new.attrs.update(attrs)
+
+
+@pytest.mark.parametrize("damage", [_damage_units, _damage_shape, _damage_kind, _damage_dtype])
 def test_a_damaged_column_is_an_error_naming_the_file(
     damage, complete_run: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
