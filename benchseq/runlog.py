@@ -45,11 +45,13 @@ def operating_point_text(row: dict[str, Any]) -> str:
 
 def point_line(row: dict[str, Any], done: int, total: int) -> str:
     """One stored point: index of total, point id, frequency, operating point, the
-    rejection (a value with U, or the lower bound) and the flags."""
+    rejection (a value with U and its coverage factor, or the lower bound) and the flags."""
     value = rejection_text(row)
     spread = expanded_text(float(row.get("uncertainty_db", float("nan"))))
     if not row.get("is_bound") and spread:
-        value += f" ± {spread}"
+        from benchseq.records import SHOWN_COVERAGE_FACTOR
+
+        value += f" ± {spread} (k = {SHOWN_COVERAGE_FACTOR:g})"
     flags = str(row.get("flags", "")).strip() or "-"
     return (
         f"point {done}/{total} (#{row.get('point_id')}) {frequency_text(row)} "

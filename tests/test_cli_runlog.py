@@ -109,6 +109,9 @@ def test_redirected_run_prints_a_line_per_point_and_writes_the_run_log(
     for match in points:  # the value the file holds, with U, in each line
         row = frame[frame["point_id"] == int(match.group(3))].iloc[0]
         assert f"{row['rejection_db']:.2f} dB ± " in match.group(4)
+        # every ± says its coverage (JCGM 100 §6.2: U = k·u is stated with its k)
+        spread = f"{2 * row['uncertainty_db']:.2f} dB (k = 2)"
+        assert f"dB ± {spread}" in match.group(4) or row["is_bound"]
         assert f"DC {row['dc_level']:g} V" in match.group(4)
         assert ("1 kHz" if row["frequency_planned"] == 1e3 else "10 kHz") in match.group(4)
     operating = _lines(done.stderr, OPERATING_LINE)
