@@ -159,7 +159,11 @@ class _LiveDisplay:
             return
         if self.display is None:
             self.display = RunDisplay(
-                self.console, event.total or 0, event.bench_time_left, event.done
+                self.console,
+                event.total or 0,
+                event.bench_time_left,
+                event.done,
+                wall_time_left=getattr(event, "wall_time_left", None),
             )
             self.display.__enter__()
         self.display.handle(event)

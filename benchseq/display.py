@@ -69,6 +69,13 @@ def duration_text(seconds: float) -> str:
     return f"{hours} h {minutes:02d} min"
 
 
+def finish_part(wall_left: float | None) -> str:
+    """', finish ≈ 02:47' from the wall time left at the run's pace; '' when not known."""
+    if wall_left is None or not math.isfinite(wall_left):
+        return ""
+    return f", {finish_text(wall_left)}"
+
+
 def finish_text(seconds_left: float, now: dt.datetime | None = None) -> str:
     """'finish ≈ 02:47' (local clock time ``seconds_left`` from ``now``); the day is named
     when the finish is not today ('finish ≈ Sun 02:47'), the date beyond a week."""
@@ -124,7 +131,13 @@ class RunDisplay:
     """Event sink rendering progress and the latest points."""
 
     def __init__(
-        self, console: Console, total: int, bench_time_left: float, done: int = 0, keep: int = 8
+        self,
+        console: Console,
+        total: int,
+        bench_time_left: float,
+        done: int = 0,
+        keep: int = 8,
+        wall_time_left: float | None = None,
     ) -> None:
         self.console = console
         self.total = total
@@ -143,8 +156,8 @@ class RunDisplay:
             "sweep",
             total=total,
             completed=done,
-            left=f"planned bench time ≈ {duration_text(bench_time_left)}, "
-            f"{finish_text(bench_time_left)}",
+            left=f"planned bench time ≈ {duration_text(bench_time_left)}"
+            + (f", {finish_text(wall_time_left)}" if wall_time_left is not None else ""),
         )
         self.live = Live(self._render(), console=console, refresh_per_second=4, transient=False)
 
@@ -174,7 +187,8 @@ class RunDisplay:
             self.progress.update(
                 self.task,
                 completed=done,
-                left=f"bench time left ≈ {duration_text(left)}, {finish_text(left)}",
+                left=f"bench time left ≈ {duration_text(left)}"
+                + finish_part(getattr(event, "wall_time_left", None)),
             )
         elif event.kind == "point_started":
             self.progress.update(self.task, completed=event.done)

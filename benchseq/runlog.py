@@ -17,7 +17,7 @@ from typing import Any
 from benchseq.display import (
     duration_text,
     expanded_text,
-    finish_text,
+    finish_part,
     frequency_text,
     rejection_text,
 )
@@ -86,7 +86,8 @@ class ProgressLog:
             line = point_line(event.row, event.done, event.total)
             if event.done < event.total:  # what is left, learnt from the points so far
                 left = float(getattr(event, "bench_time_left", 0.0))
-                line += f"; bench time left ≈ {duration_text(left)}, {finish_text(left)}"
+                line += f"; bench time left ≈ {duration_text(left)}"
+                line += finish_part(getattr(event, "wall_time_left", None))
             self.logger.info("%s", line)
         elif kind == "warning":
             self.logger.warning("%s", event.message)

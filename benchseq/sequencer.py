@@ -54,6 +54,10 @@ class Event:
     done: int = 0
     total: int = 0
     bench_time_left: float = 0.0
+    # the same at the wall-clock pace the run has kept so far (wall s per bench s, learnt
+    # over the session): the finish's clock time; None until known. On a real bench the
+    # two clocks are one; the simulated bench's bench time runs ahead of the wall.
+    wall_time_left: float | None = None
 
 
 EventSink = Callable[[Event], None]
@@ -93,6 +97,14 @@ class Carry:
                 int(row["averages"]),
             ),
         )
+
+
+def _at_pace(bench_left: float, bench_spent: float, wall_spent: float) -> float | None:
+    """``bench_left`` in wall seconds at the pace kept so far (wall_spent / bench_spent);
+    None before the bench time has moved."""
+    if not (bench_spent > 0 and wall_spent >= 0 and math.isfinite(bench_left)):
+        return None
+    return bench_left * wall_spent / bench_spent
 
 
 class CarryGuide:
@@ -168,6 +180,7 @@ class Sequencer:
         self.session = session
         self.writer = writer
         self.emit = emit or (lambda event: None)
+        self.wall_clock: Callable[[], float] = time.monotonic  # the finish's pace (Event)
         self.stop = stop or StopControl()
         self.keep_waveforms = keep_waveforms
         self.seed = seed
@@ -294,14 +307,18 @@ class Sequencer:
         counts = {"measured": 0, "bounds": 0, "flagged": 0}
         status, reason = "complete", "all points stored"
         bench_start = self.session.clock.now()
+        wall_start = self.wall_clock()
+        real_time = bool(getattr(self.session.clock, "real_time", True))
         self.writer.update_meta(status="running")
+        planned_left = self.planned_bench_time * len(todo) / max(total, 1)
         self.emit(
             Event(
                 "state",
                 f"{len(todo)} of {total} points to measure",
                 done=total - len(todo),
                 total=total,
-                bench_time_left=self.planned_bench_time * len(todo) / max(total, 1),
+                bench_time_left=planned_left,
+                wall_time_left=planned_left if real_time else None,
             )
         )
         self._eta.begin(todo)
@@ -326,6 +343,7 @@ class Sequencer:
                 counts["measured"] += 1
                 counts["bounds"] += int(bool(row["is_bound"]))
                 counts["flagged"] += int(bool(row["flags"]))
+                left = self._eta.left()
                 self.emit(
                     Event(
                         "point_stored",
@@ -333,7 +351,12 @@ class Sequencer:
                         row=row,
                         done=len(stored) + position + 1,
                         total=total,
-                        bench_time_left=self._eta.left(),
+                        bench_time_left=left,
+                        wall_time_left=_at_pace(
+                            left,
+                            self.session.clock.now() - bench_start,
+                            self.wall_clock() - wall_start,
+                        ),
                     )
                 )
                 self._check_stop_rules(row)

@@ -67,6 +67,8 @@ class SafeStateReport:
 class MonotonicClock:
     """Real time for real benches: now() in s (monotonic), sleep(s)."""
 
+    real_time = True  # bench time is wall time
+
     def now(self) -> float:
         return time.monotonic()
 

@@ -37,6 +37,8 @@ NODES = ("pin", "output", "ground")
 class VirtualClock:
     """Bench time in seconds; ``sleep`` advances it at once (no real waiting)."""
 
+    real_time = False  # bench time runs ahead of the wall
+
     def __init__(self, start: float = 0.0) -> None:
         self._now = start
         self._lock = threading.Lock()

@@ -15,6 +15,7 @@ import re
 import subprocess
 import sys
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -118,10 +119,11 @@ def test_check_json_carries_the_range_and_what_it_assumed(
 def test_log_lines_show_a_finish_consistent_with_the_time_left(
     plan_path: Path, tmp_path: Path
 ) -> None:
-    """finish − the line's clock stamp = the time left shown, to the rounding of the two
-    shown figures (the finish to the minute, the time left to its last digit) plus 1 s
-    between reading the clock for the finish and stamping the line; a finish past
-    midnight wraps."""
+    """finish − the line's clock stamp is the time left at the wall-clock pace the run has
+    kept: on the simulated bench, whose bench time runs ahead of the wall, never more than
+    the bench time left shown, to the rounding of the two shown figures (the finish to the
+    minute, the time left to its last digit) plus 1 s between reading the clock for the
+    finish and stamping the line; a finish past midnight wraps."""
     done = subprocess.run(
         [sys.executable, "-m", "benchseq", "run", str(plan_path), "--out", str(tmp_path / "r.h5")],
         capture_output=True, text=True, cwd=tmp_path, timeout=RUN_LIMIT_S,
@@ -138,7 +140,35 @@ def test_log_lines_show_a_finish_consistent_with_the_time_left(
         if gap < -120.0:  # the finish is after midnight
             gap += 86400.0
         # the shown finish is truncated to its minute: the true one is up to 60 s later
-        assert -rounding - 1.0 <= left - gap <= 60.0 + rounding + 1.0, m.group(0)
+        assert -60.0 - 1.0 <= gap <= left + rounding + 1.0, m.group(0)
+
+
+def test_finish_is_paced_by_the_wall_clock_the_run_keeps(
+    plan_path: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The finish's clock time comes from the wall time the bench time left will take at
+    the pace the run has kept (wall s per bench s since it began). A wall clock that runs
+    at a quarter of the simulated bench's pace (a fixed, known pace: no real time is read)
+    gives a wall time left of exactly a quarter of the bench time left at every point; a
+    simulated bench states no finish before its first point (its pace is not yet known)."""
+    import benchseq.runner as runner
+    from benchseq.runner import start_run
+
+    class QuarterPace(runner.Sequencer):  # type: ignore[misc,valid-type]
+        def __init__(self, *args: Any, **kwargs: Any) -> None:
+            super().__init__(*args, **kwargs)
+            self.wall_clock = lambda: 1000.0 + 0.25 * self.session.clock.now()
+
+    monkeypatch.setattr(runner, "Sequencer", QuarterPace)
+    events: list[Any] = []
+    outcome, _ = start_run(str(plan_path), None, str(tmp_path / "paced.h5"), emit=events.append)
+    assert outcome.status == "complete"
+    start = next(e for e in events if e.kind == "state" and "points to measure" in e.message)
+    assert start.bench_time_left > 0 and start.wall_time_left is None
+    stored = [e for e in events if e.kind == "point_stored"]
+    assert len(stored) == 8
+    for event in stored:
+        assert event.wall_time_left == pytest.approx(0.25 * event.bench_time_left, abs=1e-9)
 
 
 def test_noise_target_leaves_the_channel_match_its_share() -> None:
