@@ -61,17 +61,23 @@ def _result_notices() -> Iterator[None]:
     """Print what reading or repairing a result file noticed (damage, repairs) as notices."""
     from benchseq.store import ResultWarning
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ResultWarning)
-        try:
-            yield
-        finally:
-            said = dict.fromkeys(str(w.message) for w in caught if w.category is ResultWarning)
-            for notice in said:
-                _console(stderr=True).print(f"[bold yellow]notice:[/] {_escape(notice)}")
-            for w in caught:
-                if w.category is not ResultWarning:
-                    warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    caught: list[warnings.WarningMessage] = []
+    try:
+        with warnings.catch_warnings(record=True) as recording:
+            warnings.simplefilter("always", ResultWarning)
+            try:
+                yield
+            finally:
+                caught = list(recording)
+    finally:
+        said = dict.fromkeys(str(w.message) for w in caught if w.category is ResultWarning)
+        for notice in said:
+            _console(stderr=True).print(f"[bold yellow]notice:[/] {_escape(notice)}")
+        # other warnings go on as they came, once the recording has ended: re-issued
+        # inside it, each was recorded again behind the loop and the loop never ended
+        for w in caught:
+            if w.category is not ResultWarning:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
 
 
 def _repair_for_reading(path: str) -> None:

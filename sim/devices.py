@@ -231,6 +231,19 @@ _QUANTITY_KEYS: dict[str, dict[str, str]] = {
         "flicker_corner": "Hz",
     },
 }
+# quantities the models divide by (corner frequencies, a capacitance in series with the
+# output, a current that scales the loop gain): zero is refused as well as a negative value
+_POSITIVE_KEYS = frozenset(
+    {
+        "error_amp_bandwidth",
+        "second_pole",
+        "noise_bandwidth",
+        "output_capacitance",
+        "reference_load_current",
+        "rejection_pole",
+        "gain_bandwidth",
+    }
+)
 _NUMBER_KEYS: dict[str, dict[str, float]] = {
     # plain numbers with their unit in the key name -> scale to SI
     "regulator": {"output_esl_nh": 1e-9, "white_noise_nv_per_root_hz": 1e-9},
@@ -262,7 +275,10 @@ def device_from_section(section: Section, folder: Path | None = None) -> Device:
     for key, dimension in _QUANTITY_KEYS[model].items():
         if section.has(key):
             values[_RENAMES.get(key, key)] = section.quantity(
-                key, dimension, nonnegative=dimension not in ("dB",)
+                key,
+                dimension,
+                positive=key in _POSITIVE_KEYS,
+                nonnegative=dimension not in ("dB",),
             )
     for key, scale in _NUMBER_KEYS[model].items():
         if section.has(key):

@@ -243,3 +243,28 @@ def test_a_run_on_a_scenario_file_resumes_from_another_folder(
     assert code == 0, err
     assert len(read_results(path)) == 2
     assert read_meta(path)["simulation"] == str(mine)
+
+
+def test_a_warning_met_by_a_command_is_passed_on_once(monkeypatch: pytest.MonkeyPatch) -> None:
+    """A command records the result store's notices and passes every other warning on when
+    it ends. Passed on while the recording still ran, each warning was recorded again
+    behind the loop passing them on, which never ended: a run whose simulated device gave
+    NaN warnings stored every point, then grew in memory until the kernel killed it. The
+    passing on is counted (bounded at 10) so the old fault fails instead of hanging."""
+    import warnings
+
+    from benchseq import cli
+
+    calls: list[object] = []
+    passed_on = warnings.warn_explicit
+
+    def counted(*args: object, **kwargs: object) -> None:
+        calls.append(args[0])
+        if len(calls) > 10:
+            raise RuntimeError("the same warning passed on without end")
+        passed_on(*args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(warnings, "warn_explicit", counted)
+    with pytest.warns(UserWarning, match="from inside the command"), cli._result_notices():
+        warnings.warn("from inside the command", UserWarning, stacklevel=1)
+    assert len(calls) == 1

@@ -39,6 +39,28 @@ def test_unknown_key_names_file_and_key() -> None:
         load_scenario("nowhere")
 
 
+@pytest.mark.parametrize(
+    ("model", "key", "value"),
+    [
+        ("regulator", "error_amp_bandwidth", "0 Hz"),
+        ("regulator", "second_pole", "0 Hz"),
+        ("regulator", "output_capacitance", "0 F"),
+        ("amplifier", "gain_bandwidth", "0 Hz"),
+        ("amplifier", "rejection_pole", "0 Hz"),
+    ],
+)
+def test_a_device_quantity_the_model_divides_by_cannot_be_zero(
+    model: str, key: str, value: str
+) -> None:
+    """A corner frequency of 0 Hz made every transfer NaN (a/0): the simulated run then
+    stored garbage as bounds, and the NaN warnings hung the command (found by the command-
+    line fuzzing of scenario files, tests/perf/fuzz_inputs.py). It is refused naming the
+    file and the key."""
+    data = {"scenario": {"name": "x"}, "device": {"model": model, key: value}}
+    with pytest.raises(FileKeyError, match=rf"x.toml: device.{key}: must be greater than zero"):
+        parse_scenario(data, "x.toml")
+
+
 def test_rejection_peak_of_demo_leaves_some_points_floor_limited() -> None:
     """The demo device peaks at no more than about 90 dB (so the floor shows somewhere)."""
     sim = SimulatedBench.from_scenario("demo")
