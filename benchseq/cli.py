@@ -573,8 +573,10 @@ def _verdict_markup(verdict: Any) -> str:
 
 def cmd_show(args: argparse.Namespace) -> int:
     from benchseq.overview import is_calibration_file, render_result
+    from benchseq.results import check_readable
     from benchseq.store import read_meta, read_results
 
+    check_readable(args.result)  # a damaged file that would crash libhdf5 is refused
     if is_calibration_file(args.result):
         return _show_calibration(args)
     with _result_notices():
@@ -619,6 +621,7 @@ def _show_calibration(args: argparse.Namespace) -> int:
 
 def cmd_report(args: argparse.Namespace) -> int:
     from benchseq.report import format_name, write_report
+    from benchseq.results import check_readable
 
     fmt = format_name(args.format, args.out)
     model = None
@@ -631,6 +634,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         raise BadInput("--subcircuit goes with --model FILE.cir")
     for result in args.results:
         _refuse_same_file(result, args.out, "the report file")
+    for result in args.results:
+        check_readable(result)
     with _result_notices():
         for result in args.results:
             _repair_for_reading(result)
@@ -649,6 +654,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
     from pathlib import Path
 
     from benchseq.compare import compare_files, render_comparisons, write_plot
+    from benchseq.results import check_readable
 
     model = None
     if args.model is not None:
@@ -667,6 +673,8 @@ def cmd_compare(args: argparse.Namespace) -> int:
         if not args.plot.lower().endswith(".png"):
             raise BadInput(f"--plot {args.plot}: give a .png file name")
         check_output(Path(args.plot), args.results)
+    for result in args.results:
+        check_readable(result)
     with _result_notices():
         for result in args.results:
             _repair_for_reading(result)
