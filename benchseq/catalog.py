@@ -214,8 +214,9 @@ def read_run(path: Path, sha: str) -> tuple[Any, dict[str, Any], list[str]]:
     import numpy as np
     import pandas as pd
 
-    from benchseq.results import ResultWarning, read_meta, read_results
+    from benchseq.results import ResultWarning, check_readable, read_meta, read_results
 
+    check_readable(path)  # a file that would crash libhdf5 is skipped, not the build ended
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", ResultWarning)
         meta = read_meta(path)
