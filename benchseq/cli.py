@@ -234,10 +234,12 @@ class _Progress:
 def cmd_replay(args: argparse.Namespace) -> int:
     from pathlib import Path
 
+    from benchseq.results import check_readable
     from benchseq.writelock import refuse_non_regular
 
     refuse_non_regular(Path(args.result))
     _refuse_same_file(args.result, args.out, "the output file")
+    check_readable(args.result)  # a damaged file that would crash libhdf5 is refused
     if args.reanalyse:
         from benchseq.reanalyse import reanalyse, render_reanalysis
 

@@ -675,6 +675,9 @@ def open_server(path: str | Path, host: str = "127.0.0.1", port: int = 0) -> Wat
     (BadInput when the address cannot be bound). The caller runs ``serve_forever``."""
     if not 0 <= port <= 65535:
         raise BadInput(f"--port {port}: give 0 (any free port) to 65535")
+    from benchseq.results import check_readable
+
+    check_readable(path)  # a damaged file that would crash libhdf5 is refused, once
     watcher = Watcher(path)
     watcher.first()
     try:
