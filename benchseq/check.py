@@ -1202,8 +1202,8 @@ def render_check(report: CheckReport) -> Any:
     from rich.text import Text
 
     head = Text()
-    head.append(f"{report.plan_title}  ", style="bold")
-    head.append(f"on {report.bench_name}\n")
+    head.append(f"{report.plan_title}\n", style="bold")
+    head.append(f"bench: {report.bench_name}\n")
     head.append(f"{report.point_count} points")
     if report.repeat_count:
         head.append(f" + {report.repeat_count} linearity repeats")
