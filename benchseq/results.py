@@ -433,7 +433,11 @@ def check_readable(path: str | Path) -> None:
     target = Path(path)
     if not hasattr(os, "fork") or not target.is_file():
         return
-    pid = os.fork()
+    with warnings.catch_warnings():
+        # Python 3.12+ warns that fork() in a threaded process may deadlock the child; this
+        # child only reads one file with h5py, and a child that hangs is ended (below)
+        warnings.filterwarnings("ignore", message=r".*fork\(\)", category=DeprecationWarning)
+        pid = os.fork()
     if pid == 0:  # the child: read, say nothing, leave without running any cleanup
         import faulthandler
 
