@@ -395,7 +395,7 @@ def read_waveforms(path: str | Path, point_id: int) -> dict[str, StoredWaveform]
 
 
 # -- reading a damaged file without crashing ---------------------------------------------------
-PROBE_LIMIT_S = 120.0  # a child still reading after this long is ended, and the read goes on
+PROBE_LIMIT_S = 120.0  # a child still reading after this long (plus 0.1 s per MB) is ended
 
 
 def _read_everything(path: Path) -> None:
@@ -425,7 +425,8 @@ def check_readable(path: str | Path) -> None:
     libhdf5 can end the process with SIGSEGV on some damaged object headers (a flipped byte
     in a few of every thousand places of a result file), which no Python code can catch.
     The file is read once in a forked child first; if the child dies by a signal the file
-    is refused, naming its journal where one is kept. Errors the library reports are left
+    is refused, naming its journal where one is kept; so is a file whose reading does not
+    end (some damage makes libhdf5 spin). Errors the library reports are left
     to the readers, which name them. Without fork (not POSIX), or for anything but a
     regular file, nothing is done."""
     import time
@@ -451,25 +452,32 @@ def check_readable(path: str | Path) -> None:
             code = 1  # an error the readers will report properly
         finally:
             os._exit(code)
-    deadline = time.monotonic() + PROBE_LIMIT_S
+    # the limit grows with the file (10 MB/s at the least: a slow network share)
+    deadline = time.monotonic() + PROBE_LIMIT_S + target.stat().st_size / 10e6
     while True:
         done, status = os.waitpid(pid, os.WNOHANG)
         if done:
             break
-        if time.monotonic() > deadline:
+        if time.monotonic() > deadline:  # some damage makes libhdf5 read without end
             os.kill(pid, 9)
             os.waitpid(pid, 0)
-            return
+            raise BadResultFile(
+                f"{target}: reading it did not end within {PROBE_LIMIT_S:g} s: the file is "
+                f"damaged{_journal_hint(target)}"
+            )
         time.sleep(0.01)
     if os.WIFSIGNALED(status):
-        journal = journal_path(target)
-        kept = (
-            f"; its journal {journal} still holds every stored point as written: move the "
-            f"damaged file aside (rename it) and `benchseq show {target}` rebuilds it"
-            if journal.exists()
-            else ""
-        )
         raise BadResultFile(
             f"{target}: the HDF5 library crashed reading it (signal "
-            f"{os.WTERMSIG(status)}): the file is damaged{kept}"
+            f"{os.WTERMSIG(status)}): the file is damaged{_journal_hint(target)}"
         )
+
+
+def _journal_hint(target: Path) -> str:
+    journal = journal_path(target)
+    if not journal.exists():
+        return ""
+    return (
+        f"; its journal {journal} still holds every stored point as written: move the "
+        f"damaged file aside (rename it) and `benchseq show {target}` rebuilds it"
+    )

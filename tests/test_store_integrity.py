@@ -361,6 +361,24 @@ def test_a_file_that_crashes_the_hdf5_library_is_refused_and_rebuilt_from_its_jo
     assert len(json.loads(printed)["points"]) == 3
 
 
+def test_a_file_whose_reading_never_ends_is_refused(
+    complete_run: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """Some single-byte damage makes libhdf5 read without end (met at one byte of a demo
+    result). The child that reads first is ended at its limit (here 0.2 s instead of
+    120 s; the child blocks until a signal that never comes) and the file refused."""
+    from benchseq import results
+
+    out = _copy_result(complete_run, tmp_path)
+    monkeypatch.setattr(results, "_read_everything", lambda path: signal.pause())
+    monkeypatch.setattr(results, "PROBE_LIMIT_S", 0.2)
+    code, _, err = _cli(capsys, "show", str(out))
+    assert code == 2 and "did not end" in err and "done.h5.journal" in err
+
+
 def test_a_damaged_journal_is_reported_not_skipped(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
