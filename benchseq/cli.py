@@ -169,7 +169,7 @@ class _LiveDisplay:
                 event.total or 0,
                 event.bench_time_left,
                 event.done,
-                wall_time_left=getattr(event, "wall_time_left", None),
+                wall_time_left=event.wall_time_left,
             )
             self.display.__enter__()
         self.display.handle(event)

@@ -157,7 +157,7 @@ class RunDisplay:
             total=total,
             completed=done,
             left=f"planned bench time ≈ {duration_text(bench_time_left)}"
-            + (f", {finish_text(wall_time_left)}" if wall_time_left is not None else ""),
+            + finish_part(wall_time_left),
         )
         self.live = Live(self._render(), console=console, refresh_per_second=4, transient=False)
 
@@ -188,7 +188,7 @@ class RunDisplay:
                 self.task,
                 completed=done,
                 left=f"bench time left ≈ {duration_text(left)}"
-                + finish_part(getattr(event, "wall_time_left", None)),
+                + finish_part(event.wall_time_left),
             )
         elif event.kind == "point_started":
             self.progress.update(self.task, completed=event.done)

@@ -361,8 +361,10 @@ def _column_arrays(group: h5py.Group, columns: Sequence[Column], rows: slice) ->
         ds = group[c.name]
         if not isinstance(ds, h5py.Dataset) or ds.ndim < 1:
             raise ValueError(f"{c.name} is not a table column")
-        if ds.shape[0] > limit or (length is not None and ds.shape[0] != length):
-            raise ValueError(f"{c.name} claims {ds.shape[0]} rows, the table {length}")
+        if ds.shape[0] > limit:
+            raise ValueError(f"{c.name} claims {ds.shape[0]} rows, more than the file holds")
+        if length is not None and ds.shape[0] != length:
+            raise ValueError(f"{c.name} has {ds.shape[0]} rows, the table {length}")
         if ds.dtype.kind not in _NUMPY_KINDS[c.kind]:
             raise ValueError(f"{c.name} holds {ds.dtype}, not {c.kind} values")
         out[c.name] = ds.asstr()[rows] if c.kind == "str" else ds[rows]

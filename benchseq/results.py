@@ -429,6 +429,7 @@ def check_readable(path: str | Path) -> None:
     end (some damage makes libhdf5 spin). Errors the library reports are left
     to the readers, which name them. Without fork (not POSIX), or for anything but a
     regular file, nothing is done."""
+    import signal
     import time
 
     target = Path(path)
@@ -453,16 +454,17 @@ def check_readable(path: str | Path) -> None:
         finally:
             os._exit(code)
     # the limit grows with the file (10 MB/s at the least: a slow network share)
-    deadline = time.monotonic() + PROBE_LIMIT_S + target.stat().st_size / 10e6
+    limit_s = PROBE_LIMIT_S + target.stat().st_size / 10e6
+    deadline = time.monotonic() + limit_s
     while True:
         done, status = os.waitpid(pid, os.WNOHANG)
         if done:
             break
         if time.monotonic() > deadline:  # some damage makes libhdf5 read without end
-            os.kill(pid, 9)
+            os.kill(pid, signal.SIGKILL)
             os.waitpid(pid, 0)
             raise BadResultFile(
-                f"{target}: reading it did not end within {PROBE_LIMIT_S:g} s: the file is "
+                f"{target}: reading it did not end within {limit_s:.0f} s: the file is "
                 f"damaged{_journal_hint(target)}"
             )
         time.sleep(0.01)
